@@ -1,0 +1,166 @@
+//! The resampling engine: a table `[H, W, D]` (channels last, D contiguous) to `[H', W', D]`,
+//! by two separable passes over per-axis weight tables. No file knowledge lives here.
+
+pub mod kernels;
+pub mod options;
+pub mod weights;
+
+use rayon::prelude::*;
+
+pub use options::{Antialias, Coords, Edges, Kernel, Options, DEFAULT_CUBIC_A};
+pub use weights::{axis_weights, AxisWeights};
+
+/// An element type the engine computes in.
+pub trait Sample:
+    Copy + Send + Sync + Default + std::ops::Add<Output = Self> + std::ops::Mul<Output = Self> + 'static
+{
+    fn from_f64(v: f64) -> Self;
+}
+
+impl Sample for f32 {
+    fn from_f64(v: f64) -> Self {
+        v as f32
+    }
+}
+
+impl Sample for f64 {
+    fn from_f64(v: f64) -> Self {
+        v
+    }
+}
+
+/// Why a resampling request was refused.
+#[derive(Debug, Clone, PartialEq, Eq, thiserror::Error)]
+pub enum ResampleError {
+    #[error("grid sizes must be at least 1x1 (got {0}x{1} to {2}x{3})")]
+    EmptyGrid(usize, usize, usize, usize),
+    #[error("table holds {found} values but a {h}x{w} grid of width {d} needs {expected}")]
+    LengthMismatch {
+        found: usize,
+        expected: usize,
+        h: usize,
+        w: usize,
+        d: usize,
+    },
+    #[error("the area kernel is defined with half-pixel coordinates only")]
+    AreaNeedsHalfPixel,
+    #[error("cubic parameter a must be finite")]
+    BadCubicA,
+}
+
+/// Check options and sizes without doing any work.
+pub fn validate(
+    src: (usize, usize),
+    dst: (usize, usize),
+    opts: &Options,
+) -> Result<(), ResampleError> {
+    if src.0 == 0 || src.1 == 0 || dst.0 == 0 || dst.1 == 0 {
+        return Err(ResampleError::EmptyGrid(src.0, src.1, dst.0, dst.1));
+    }
+    if opts.kernel == Kernel::Area && opts.coords != Coords::HalfPixel {
+        return Err(ResampleError::AreaNeedsHalfPixel);
+    }
+    if !opts.cubic_a.is_finite() {
+        return Err(ResampleError::BadCubicA);
+    }
+    Ok(())
+}
+
+/// Resample `src`, a row-major `[h, w, d]` grid, to `[oh, ow, d]`.
+pub fn resample<T: Sample>(
+    src: &[T],
+    (h, w): (usize, usize),
+    d: usize,
+    (oh, ow): (usize, usize),
+    opts: &Options,
+) -> Result<Vec<T>, ResampleError> {
+    validate((h, w), (oh, ow), opts)?;
+    if src.len() != h * w * d {
+        return Err(ResampleError::LengthMismatch {
+            found: src.len(),
+            expected: h * w * d,
+            h,
+            w,
+            d,
+        });
+    }
+    if (h, w) == (oh, ow) || d == 0 {
+        return Ok(src.to_vec());
+    }
+    let across = axis_weights(w, ow, opts);
+    let down = axis_weights(h, oh, opts);
+    Ok(apply(src, (h, w), d, &down, &across))
+}
+
+/// Apply precomputed weight tables: first along rows (W → W'), then down columns (H → H').
+pub fn apply<T: Sample>(
+    src: &[T],
+    (h, w): (usize, usize),
+    d: usize,
+    down: &AxisWeights,
+    across: &AxisWeights,
+) -> Vec<T> {
+    let ow = across.output;
+    let oh = down.output;
+    let horizontal = if w == ow {
+        None
+    } else {
+        let wx: Vec<T> = across.weight.iter().map(|&v| T::from_f64(v)).collect();
+        let mut tmp = vec![T::default(); h * ow * d];
+        tmp.par_chunks_mut(ow * d)
+            .zip(src.par_chunks(w * d))
+            .for_each(|(out_row, in_row)| {
+                for (o, cell) in out_row.chunks_exact_mut(d).enumerate() {
+                    let taps = o * across.taps..(o + 1) * across.taps;
+                    let idx = &across.index[taps.clone()];
+                    let wts = &wx[taps];
+                    combine(
+                        cell,
+                        idx.iter()
+                            .zip(wts)
+                            .map(|(&i, &wt)| (&in_row[i * d..(i + 1) * d], wt)),
+                    );
+                }
+            });
+        Some(tmp)
+    };
+    let rows = horizontal.as_deref().unwrap_or(src);
+    if h == oh {
+        return horizontal.unwrap_or_else(|| src.to_vec());
+    }
+    let wy: Vec<T> = down.weight.iter().map(|&v| T::from_f64(v)).collect();
+    let row_len = ow * d;
+    let mut out = vec![T::default(); oh * row_len];
+    out.par_chunks_mut(row_len)
+        .enumerate()
+        .for_each(|(o, out_row)| {
+            let taps = o * down.taps..(o + 1) * down.taps;
+            let idx = &down.index[taps.clone()];
+            let wts = &wy[taps];
+            // Each vertical tap scales a whole source row: one long contiguous loop per tap.
+            combine(
+                out_row,
+                idx.iter()
+                    .zip(wts)
+                    .map(|(&i, &wt)| (&rows[i * row_len..(i + 1) * row_len], wt)),
+            );
+        });
+    out
+}
+
+/// `dst = Σ weight · source` over the taps, element-wise; the loops vectorise over D.
+#[inline]
+fn combine<'a, T: Sample>(dst: &mut [T], mut taps: impl Iterator<Item = (&'a [T], T)>) {
+    let Some((first, w0)) = taps.next() else {
+        dst.fill(T::default());
+        return;
+    };
+    for (o, &s) in dst.iter_mut().zip(first) {
+        *o = w0 * s;
+    }
+    for (source, wt) in taps {
+        for (o, &s) in dst.iter_mut().zip(source) {
+            *o = *o + wt * s;
+        }
+    }
+}

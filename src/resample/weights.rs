@@ -1,0 +1,162 @@
+//! Per-axis weight tables: for every output coordinate, the source indices it reads and their
+//! weights. Computed once per axis in f64, apart from the loops that apply them.
+
+use super::kernels;
+use super::options::{Coords, Edges, Kernel, Options};
+
+/// The taps of one axis: `taps` (index, weight) pairs per output coordinate, padded with zero
+/// weights so every output has the same count.
+#[derive(Debug, Clone, PartialEq)]
+pub struct AxisWeights {
+    pub input: usize,
+    pub output: usize,
+    pub taps: usize,
+    pub index: Vec<usize>,
+    pub weight: Vec<f64>,
+}
+
+impl AxisWeights {
+    /// The (index, weight) pairs of output coordinate `o`.
+    pub fn taps_of(&self, o: usize) -> impl Iterator<Item = (usize, f64)> + '_ {
+        let r = o * self.taps..(o + 1) * self.taps;
+        self.index[r.clone()]
+            .iter()
+            .copied()
+            .zip(self.weight[r].iter().copied())
+    }
+
+    /// Whether this axis maps every output to the same-numbered input with weight 1.
+    pub fn is_identity(&self) -> bool {
+        self.input == self.output
+            && (0..self.output).all(|o| {
+                self.taps_of(o)
+                    .all(|(i, w)| (i == o && w == 1.0) || w == 0.0)
+                    && self.taps_of(o).any(|(i, w)| i == o && w == 1.0)
+            })
+    }
+}
+
+/// The source coordinate (in sample units, sample centres at integers) of output `o`.
+pub fn source_coordinate(o: usize, input: usize, output: usize, coords: Coords) -> f64 {
+    match coords {
+        Coords::HalfPixel => (o as f64 + 0.5) * (input as f64 / output as f64) - 0.5,
+        Coords::AlignCorners if output > 1 => {
+            o as f64 * (input as f64 - 1.0) / (output as f64 - 1.0)
+        }
+        Coords::AlignCorners => 0.0,
+    }
+}
+
+/// Build the weight table of one axis going from `input` to `output` samples.
+/// `input` and `output` must be at least 1 (the caller checks).
+pub fn axis_weights(input: usize, output: usize, opts: &Options) -> AxisWeights {
+    let mut rows: Vec<Vec<(usize, f64)>> = (0..output)
+        .map(|o| match opts.kernel {
+            Kernel::Nearest => nearest_taps(o, input, output, opts.coords),
+            Kernel::Area => area_taps(o, input, output),
+            _ => kernel_taps(o, input, output, opts),
+        })
+        .collect();
+    let taps = rows.iter().map(Vec::len).max().unwrap_or(1).max(1);
+    let mut index = Vec::with_capacity(output * taps);
+    let mut weight = Vec::with_capacity(output * taps);
+    for row in &mut rows {
+        let pad_index = row.last().map_or(0, |t| t.0);
+        row.resize(taps, (pad_index, 0.0));
+        for &(i, w) in row.iter() {
+            index.push(i);
+            weight.push(w);
+        }
+    }
+    AxisWeights {
+        input,
+        output,
+        taps,
+        index,
+        weight,
+    }
+}
+
+/// ONNX `round_prefer_floor`: the nearest sample, a tie going to the lower one.
+fn nearest_taps(o: usize, input: usize, output: usize, coords: Coords) -> Vec<(usize, f64)> {
+    let x = source_coordinate(o, input, output, coords);
+    let i = (x - 0.5).ceil().clamp(0.0, (input - 1) as f64) as usize;
+    vec![(i, 1.0)]
+}
+
+/// The fraction of output cell `o`'s footprint `[o·in/out, (o+1)·in/out)` each source cell
+/// covers.
+fn area_taps(o: usize, input: usize, output: usize) -> Vec<(usize, f64)> {
+    let step = input as f64 / output as f64;
+    let lo = o as f64 * step;
+    let hi = (o as f64 + 1.0) * step;
+    let first = lo.floor() as usize;
+    let last = ((hi.ceil() as usize).max(first + 1)).min(input);
+    (first..last)
+        .filter_map(|j| {
+            let overlap = hi.min(j as f64 + 1.0) - lo.max(j as f64);
+            (overlap > 0.0).then_some((j, overlap / step))
+        })
+        .collect()
+}
+
+/// Linear, cubic and Lanczos taps: every integer j strictly within the (stretched) support of
+/// the source coordinate, weighted by the kernel at (j - x) / stretch.
+fn kernel_taps(o: usize, input: usize, output: usize, opts: &Options) -> Vec<(usize, f64)> {
+    let (support, kernel): (f64, Box<dyn Fn(f64) -> f64>) = match opts.kernel {
+        Kernel::Bilinear => (1.0, Box::new(kernels::triangle)),
+        Kernel::Bicubic => {
+            let a = opts.cubic_a;
+            (2.0, Box::new(move |x| kernels::cubic(x, a)))
+        }
+        Kernel::Lanczos3 => (3.0, Box::new(kernels::lanczos3)),
+        Kernel::Nearest | Kernel::Area => unreachable!("handled by their own tap builders"),
+    };
+    let antialias = opts.antialias_applies(input, output);
+    let stretch = if antialias && output < input {
+        input as f64 / output as f64
+    } else {
+        1.0
+    };
+    let x = source_coordinate(o, input, output, opts.coords);
+    let reach = support * stretch;
+    let lo = (x - reach).floor() as i64 + 1;
+    let hi = (x + reach).ceil() as i64 - 1;
+    let mut taps: Vec<(i64, f64)> = (lo..=hi)
+        .map(|j| (j, kernel((j as f64 - x) / stretch)))
+        .collect();
+    // Stretched kernels (and Lanczos, whose lobes do not sum to 1) are normalised over all
+    // their taps, as the ONNX antialiased coefficients are.
+    if antialias || opts.kernel == Kernel::Lanczos3 {
+        let sum: f64 = taps.iter().map(|t| t.1).sum();
+        if sum != 0.0 {
+            taps.iter_mut().for_each(|t| t.1 /= sum);
+        }
+    }
+    let last = input as i64 - 1;
+    let inside = |j: i64| (0..=last).contains(&j);
+    let renormalised = match opts.edges {
+        Edges::Renormalize => {
+            let kept: Vec<(usize, f64)> = taps
+                .iter()
+                .filter(|t| inside(t.0))
+                .map(|&(j, w)| (j as usize, w))
+                .collect();
+            let sum: f64 = kept.iter().map(|t| t.1).sum();
+            (sum != 0.0).then(|| kept.into_iter().map(|(j, w)| (j, w / sum)).collect())
+        }
+        Edges::Clamp => None,
+    };
+    renormalised.unwrap_or_else(|| {
+        // Clamp: an out-of-range tap reads the border sample; merge taps on the same sample.
+        let mut merged: Vec<(usize, f64)> = Vec::with_capacity(taps.len());
+        for (j, w) in taps {
+            let j = j.clamp(0, last) as usize;
+            match merged.last_mut() {
+                Some(m) if m.0 == j => m.1 += w,
+                _ => merged.push((j, w)),
+            }
+        }
+        merged
+    })
+}
