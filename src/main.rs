@@ -1,1 +1,16 @@
-fn main() {}
+//! The posgrid binary: parse, run, print an error once with its exit code.
+
+use clap::Parser;
+
+fn main() {
+    posgrid::write::install_interrupt_handler();
+    let cli = posgrid::cli::Cli::parse();
+    let code = match posgrid::cli::run(cli) {
+        Ok(code) => code,
+        Err(e) => {
+            eprintln!("posgrid: error: {e}");
+            e.exit_code()
+        }
+    };
+    std::process::exit(code);
+}

@@ -1,0 +1,297 @@
+//! The command line: flags parsed with clap, the library called, results printed. Errors are
+//! printed once, by `main`, with their exit code.
+
+use std::io::IsTerminal;
+use std::path::PathBuf;
+
+use clap::{Args, Parser, Subcommand};
+
+use crate::checkpoint::Checkpoint;
+use crate::discover::{self, Hints};
+use crate::error::{Error, Result, EXIT_NO_TABLE, EXIT_OK};
+use crate::plan::{Request, Target};
+use crate::report::{self, ScanReport};
+use crate::resample::{Antialias, Coords, Edges, Kernel, Options, DEFAULT_CUBIC_A};
+use crate::resize::{self, ResizeJob};
+
+const EXIT_CODES: &str = "\
+Exit codes:
+  0    success, or nothing to do (tables already at the target grid)
+  2    usage: a bad flag or value, or options that do not fit together
+  3    invalid input: the file cannot be read or is not a valid checkpoint
+  4    no position table found, a named tensor is missing, or a table is ambiguous
+  5    the output cannot be written (exists, is the input, no space, ...); nothing is left behind
+  6    a table is refused: non-finite values, integer dtype, or over the memory guard
+  130  interrupted by SIGINT or SIGTERM; nothing is left behind";
+
+/// Resample the position tables of vision-transformer checkpoints to a new patch grid.
+#[derive(Debug, Parser)]
+#[command(name = "posgrid", version, after_long_help = EXIT_CODES)]
+#[command(
+    long_about = "Resample the position tables of vision-transformer checkpoints to a new \
+patch grid, so a model pre-trained at one input size loads and fine-tunes at another. posgrid \
+finds the tables whatever their names, keeps the class slots, follows the ONNX Resize conventions \
+exactly, and writes a patched checkpoint that is byte-identical everywhere else."
+)]
+pub struct Cli {
+    #[command(subcommand)]
+    pub command: Command,
+}
+
+#[derive(Debug, Subcommand)]
+pub enum Command {
+    /// List the position tables of a checkpoint: slots, grid, patch size, kind, companions.
+    #[command(after_long_help = concat!("Examples:\n  posgrid scan model.safetensors\n  posgrid scan model.safetensors --json | jq '.tables[].grid'\n\n", "Exit codes: 0 tables found; 3 invalid file; 4 no table, or an ambiguous one."))]
+    Scan(ScanArgs),
+    /// Write a copy of a checkpoint whose position tables are resampled to a new grid.
+    #[command(after_long_help = concat!("Examples:\n  posgrid resize vit-224.safetensors -o vit-384.safetensors --image 384\n  posgrid resize ckpt.safetensors -o out.safetensors --grid 24x32 --kernel bilinear\n  posgrid resize ckpt.safetensors -o out.safetensors --grid 24 --dry-run --json\n\n", "Exit codes: 0 written or nothing to do; 2 usage; 3 invalid input; 4 no or ambiguous table;\n5 cannot write (nothing left behind); 6 table refused; 130 interrupted."))]
+    Resize(Box<ResizeArgs>),
+}
+
+/// How discovery reads the file; the same flags for every command.
+#[derive(Debug, Args, Clone)]
+pub struct DiscoveryArgs {
+    /// The source grid as HxW (or N for NxN), when the row count alone does not tell it.
+    #[arg(long, value_name = "HxW", value_parser = parse_grid)]
+    pub source_grid: Option<(usize, usize)>,
+    /// The number of leading class slots (class token, distillation token, ...).
+    #[arg(long, value_name = "N")]
+    pub slots: Option<usize>,
+    /// The patch size in pixels, when no patch-projection kernel tells it.
+    #[arg(long, value_name = "P", value_parser = clap::value_parser!(u32).range(1..))]
+    pub patch: Option<u32>,
+    /// Only this table (repeatable). Also forces a tensor discovery did not pick by name.
+    #[arg(long = "tensor", value_name = "NAME")]
+    pub tensors: Vec<String>,
+}
+
+impl DiscoveryArgs {
+    fn hints(&self) -> Hints {
+        Hints {
+            source_grid: self.source_grid,
+            slots: self.slots,
+            patch: self.patch.map(|p| p as usize),
+            tensors: self.tensors.clone(),
+        }
+    }
+}
+
+#[derive(Debug, Args)]
+pub struct ScanArgs {
+    /// The checkpoint (.safetensors).
+    pub checkpoint: PathBuf,
+    /// Print one JSON object on stdout instead of the summary.
+    #[arg(long)]
+    pub json: bool,
+    #[command(flatten)]
+    pub discovery: DiscoveryArgs,
+}
+
+#[derive(Debug, Args)]
+#[command(group(clap::ArgGroup::new("target").required(true).args(["grid", "image"])))]
+pub struct ResizeArgs {
+    /// The checkpoint to read (.safetensors). It is never changed.
+    pub checkpoint: PathBuf,
+    /// Where to write the patched checkpoint.
+    #[arg(short, long, value_name = "OUT")]
+    pub output: PathBuf,
+    /// Target patch grid: HxW, or N for NxN.
+    #[arg(long, value_name = "HxW", value_parser = parse_grid)]
+    pub grid: Option<(usize, usize)>,
+    /// Target input image size in pixels: HxW, or N for NxN. The grid is image / patch size.
+    #[arg(long, value_name = "HxW", value_parser = parse_grid)]
+    pub image: Option<(usize, usize)>,
+    #[command(flatten)]
+    pub discovery: DiscoveryArgs,
+    /// Interpolation kernel.
+    #[arg(long, default_value = "bicubic", value_parser = parse_text::<Kernel>,
+          long_help = "Interpolation kernel: nearest (ONNX nearest, round_prefer_floor), bilinear (ONNX linear), \
+bicubic (ONNX cubic with --cubic-a), lanczos3 (normalised three-lobe Lanczos), area (box average over each \
+output cell; half-pixel only).")]
+    pub kernel: Kernel,
+    /// Coordinate mapping: half-pixel or align-corners.
+    #[arg(long, default_value = "half-pixel", value_parser = parse_text::<Coords>,
+          long_help = "Coordinate mapping from output to source: half-pixel, x_src = (x + 0.5) * in/out - 0.5 \
+(ONNX half_pixel); align-corners, x_src = x * (in - 1)/(out - 1) (ONNX align_corners).")]
+    pub coords: Coords,
+    /// Out-of-range taps: clamp (border value) or renormalize (drop and rescale).
+    #[arg(long, default_value = "clamp", value_parser = parse_text::<Edges>,
+          long_help = "Kernel taps outside the grid: clamp reads the border value (ONNX exclude_outside = 0); \
+renormalize drops them and rescales the rest to sum to 1 (ONNX exclude_outside = 1).")]
+    pub edges: Edges,
+    /// Antialiasing: off, on, or auto (on for a shrinking axis).
+    #[arg(long, default_value = "auto", value_parser = parse_text::<Antialias>,
+          long_help = "Antialiasing: on stretches the kernel by the shrink factor on a shrinking axis and \
+normalises its weights (ONNX antialias = 1); off never; auto is on for an axis that shrinks, off for one that grows.")]
+    pub antialias: Antialias,
+    /// The bicubic parameter a (ONNX cubic_coeff_a).
+    #[arg(long, default_value_t = DEFAULT_CUBIC_A, allow_negative_numbers = true, value_name = "A")]
+    pub cubic_a: f64,
+    /// Print what would change, write nothing.
+    #[arg(long)]
+    pub dry_run: bool,
+    /// Print one JSON object on stdout instead of the summary.
+    #[arg(long)]
+    pub json: bool,
+    /// Replace OUT if it exists.
+    #[arg(long)]
+    pub force: bool,
+    /// Print nothing on success (errors still go to stderr).
+    #[arg(short, long)]
+    pub quiet: bool,
+    /// Skip syncing the output to disk before the rename (still atomic; for scratch outputs).
+    #[arg(
+        long,
+        long_help = "Skip syncing the output to disk before the rename. The rename is still atomic, \
+so the output is whole or absent; but after a power loss a recent output may be lost. For scratch outputs that \
+can be regenerated."
+    )]
+    pub no_sync: bool,
+    /// Resize tables that hold NaN or infinity instead of refusing them.
+    #[arg(long)]
+    pub allow_nonfinite: bool,
+    /// Refuse a table whose output would need more memory than this (e.g. 512M, 8G).
+    #[arg(long, value_name = "SIZE", value_parser = parse_size, default_value = "4G")]
+    pub memory_limit: u64,
+}
+
+fn parse_text<T: std::str::FromStr<Err = String>>(s: &str) -> std::result::Result<T, String> {
+    s.parse()
+}
+
+/// `HxW`, `H×W` or `N` (square), each side at least 1.
+pub fn parse_grid(s: &str) -> std::result::Result<(usize, usize), String> {
+    let side = |t: &str| -> std::result::Result<usize, String> {
+        match t.trim().parse::<usize>() {
+            Ok(0) => Err(format!("\"{s}\": sides must be at least 1")),
+            Ok(v) => Ok(v),
+            Err(_) => Err(format!(
+                "\"{s}\" is not HxW or N (for example 24x24, 384 or 24x32)"
+            )),
+        }
+    };
+    match s.split_once(['x', 'X', '×']) {
+        Some((h, w)) => Ok((side(h)?, side(w)?)),
+        None => side(s).map(|n| (n, n)),
+    }
+}
+
+/// A byte count with an optional K, M, G or T suffix (powers of 1024; `B`, `iB` accepted).
+pub fn parse_size(s: &str) -> std::result::Result<u64, String> {
+    let t = s.trim();
+    let t = t
+        .strip_suffix("iB")
+        .or_else(|| t.strip_suffix('B'))
+        .unwrap_or(t);
+    let (digits, shift) = match t.chars().last() {
+        Some('K' | 'k') => (&t[..t.len() - 1], 10),
+        Some('M' | 'm') => (&t[..t.len() - 1], 20),
+        Some('G' | 'g') => (&t[..t.len() - 1], 30),
+        Some('T' | 't') => (&t[..t.len() - 1], 40),
+        _ => (t, 0),
+    };
+    let n: u64 = digits
+        .trim()
+        .parse()
+        .map_err(|_| format!("\"{s}\" is not a size such as 512M or 4G"))?;
+    n.checked_mul(1u64 << shift)
+        .ok_or_else(|| format!("\"{s}\" is too large"))
+}
+
+/// Run a parsed command line; returns the exit code for a run that did not fail.
+pub fn run(cli: Cli) -> Result<i32> {
+    match cli.command {
+        Command::Scan(args) => scan(args),
+        Command::Resize(args) => resize_cmd(*args),
+    }
+}
+
+fn print_json<T: serde::Serialize>(value: &T) {
+    println!(
+        "{}",
+        serde_json::to_string_pretty(value).expect("reports serialise")
+    );
+}
+
+fn scan(args: ScanArgs) -> Result<i32> {
+    let ckpt = Checkpoint::open(&args.checkpoint)?;
+    let found = discover::discover(&ckpt, &args.discovery.hints())?;
+    let report = ScanReport::new(&args.checkpoint, &ckpt, found);
+    if args.json {
+        print_json(&report);
+    } else {
+        print!("{}", report::scan_text(&report));
+    }
+    Ok(if report.is_conclusive() {
+        EXIT_OK
+    } else {
+        EXIT_NO_TABLE
+    })
+}
+
+fn resize_cmd(args: ResizeArgs) -> Result<i32> {
+    if !args.cubic_a.is_finite() {
+        return Err(Error::Usage("--cubic-a must be a finite number".into()));
+    }
+    let target = match (args.grid, args.image) {
+        (Some((h, w)), None) => Target::Grid(h, w),
+        (None, Some((h, w))) => Target::Image(h, w),
+        _ => {
+            return Err(Error::Usage(
+                "give exactly one of --grid and --image".into(),
+            ))
+        }
+    };
+    let job = ResizeJob {
+        input: args.checkpoint.clone(),
+        output: args.output.clone(),
+        hints: args.discovery.hints(),
+        request: Request {
+            target,
+            tensors: args.discovery.tensors.clone(),
+            options: Options {
+                kernel: args.kernel,
+                coords: args.coords,
+                edges: args.edges,
+                antialias: args.antialias,
+                cubic_a: args.cubic_a,
+            },
+            allow_nonfinite: args.allow_nonfinite,
+            memory_limit: args.memory_limit,
+        },
+        dry_run: args.dry_run,
+        force: args.force,
+        sync: !args.no_sync,
+        progress: !args.quiet && !args.json && std::io::stderr().is_terminal(),
+    };
+    let report = resize::run(&job)?;
+    if args.json {
+        print_json(&report);
+    } else if !args.quiet {
+        print!("{}", report::resize_text(&report));
+    }
+    Ok(EXIT_OK)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn grids_and_sizes_parse() {
+        assert_eq!(parse_grid("24x32"), Ok((24, 32)));
+        assert_eq!(parse_grid("384"), Ok((384, 384)));
+        assert!(parse_grid("0x4").is_err());
+        assert!(parse_grid("ax4").is_err());
+        assert_eq!(parse_size("4G"), Ok(4 << 30));
+        assert_eq!(parse_size("512MiB"), Ok(512 << 20));
+        assert_eq!(parse_size("100"), Ok(100));
+        assert!(parse_size("lots").is_err());
+    }
+
+    #[test]
+    fn command_line_is_consistent() {
+        use clap::CommandFactory;
+        Cli::command().debug_assert();
+    }
+}

@@ -1,0 +1,176 @@
+//! Reports: the JSON objects scripts read (field names are a contract) and the short text
+//! summaries people read.
+
+use std::fmt::Write as _;
+use std::path::{Path, PathBuf};
+
+use serde::Serialize;
+
+use crate::checkpoint::Checkpoint;
+use crate::discover::{Discovery, Kind};
+use crate::resize::ResizeReport;
+
+/// The result of `scan`.
+#[derive(Debug, Clone, Serialize)]
+pub struct ScanReport {
+    pub file: PathBuf,
+    pub format: &'static str,
+    pub tensor_count: usize,
+    pub file_size: u64,
+    #[serde(flatten)]
+    pub discovery: Discovery,
+}
+
+impl ScanReport {
+    pub fn new(path: &Path, ckpt: &Checkpoint, discovery: Discovery) -> Self {
+        ScanReport {
+            file: path.to_path_buf(),
+            format: ckpt.format().name(),
+            tensor_count: ckpt.tensors().len(),
+            file_size: ckpt.file_len(),
+            discovery,
+        }
+    }
+
+    /// Whether a script should treat the scan as a failure: nothing found, or ambiguity.
+    pub fn is_conclusive(&self) -> bool {
+        !self.discovery.tables.is_empty() && self.discovery.ambiguous.is_empty()
+    }
+}
+
+fn plural(n: usize, one: &str, many: &str) -> String {
+    format!("{n} {}", if n == 1 { one } else { many })
+}
+
+/// The readable summary of a scan.
+pub fn scan_text(r: &ScanReport) -> String {
+    let mut s = String::new();
+    let d = &r.discovery;
+    let _ = writeln!(
+        s,
+        "{} ({}, {}, {:.1} MiB): {}",
+        r.file.display(),
+        r.format,
+        plural(r.tensor_count, "tensor", "tensors"),
+        r.file_size as f64 / (1 << 20) as f64,
+        plural(d.tables.len(), "position table", "position tables"),
+    );
+    for t in &d.tables {
+        let kind = match (t.kind, t.sincos_first_axis) {
+            (Kind::Sincos, Some(a)) => format!("sincos ({a:?} axis first)").to_lowercase(),
+            (Kind::Sincos, None) => "sincos".into(),
+            (Kind::Learned, _) => "learned".into(),
+        };
+        let _ = writeln!(s, "  {}", t.name);
+        let _ = writeln!(
+            s,
+            "      {} {:?}  {} + {}x{} grid, dim {}, {}",
+            t.dtype,
+            t.shape,
+            plural(t.slots, "slot", "slots"),
+            t.grid[0],
+            t.grid[1],
+            t.dim,
+            kind
+        );
+        match (&t.patch, &t.patch_source) {
+            (Some(p), Some(src)) => {
+                let _ = writeln!(
+                    s,
+                    "      patch {p} px (from {src}), image {}x{} px",
+                    t.grid[0] * p,
+                    t.grid[1] * p
+                );
+            }
+            _ => {
+                let _ = writeln!(s, "      patch unknown (pass --patch P to size by image)");
+            }
+        }
+        if !t.companions.is_empty() {
+            let _ = writeln!(s, "      companions: {}", t.companions.join(", "));
+        }
+        if let Some(c) = &t.copy_of {
+            let _ = writeln!(s, "      copy of {c}");
+        }
+        for n in &t.notes {
+            let _ = writeln!(s, "      note: {n}");
+        }
+    }
+    for skipped in &d.skipped {
+        let _ = writeln!(
+            s,
+            "  not a grid table: {} ({})",
+            skipped.name, skipped.reason
+        );
+    }
+    for w in &d.warnings {
+        let _ = writeln!(s, "warning: {w}");
+    }
+    s
+}
+
+/// The readable summary of a resize.
+pub fn resize_text(r: &ResizeReport) -> String {
+    let mut s = String::new();
+    if r.nothing_to_do {
+        let _ = writeln!(
+            s,
+            "{}: already at the target grid ({}); nothing written",
+            r.input.display(),
+            r.already_at_target.join(", ")
+        );
+        return s;
+    }
+    for t in &r.tables {
+        let mut options = format!("{}, {}, {}", t.kernel, t.coords, t.edges);
+        if let Some(a) = t.cubic_a {
+            let _ = write!(options, ", a = {a}");
+        }
+        if t.antialias {
+            options.push_str(", antialiased");
+        }
+        let _ = writeln!(
+            s,
+            "{}: {}x{} -> {}x{} ({} kept; {}; {} {:?} -> {:?})",
+            t.name,
+            t.from[0],
+            t.from[1],
+            t.to[0],
+            t.to[1],
+            plural(t.slots, "slot", "slots"),
+            options,
+            t.dtype,
+            t.shape,
+            t.new_shape
+        );
+        if let Some(f) = t.fidelity {
+            let _ = writeln!(s, "    fidelity {f:.3}");
+        }
+    }
+    if !r.companions.is_empty() {
+        let _ = writeln!(s, "position ids rewritten: {}", r.companions.join(", "));
+    }
+    if !r.already_at_target.is_empty() {
+        let _ = writeln!(s, "already at target: {}", r.already_at_target.join(", "));
+    }
+    let size = r.output_size as f64 / (1 << 20) as f64;
+    if r.dry_run {
+        let _ = writeln!(
+            s,
+            "dry run: would write {} ({size:.1} MiB, {} copied unchanged)",
+            r.output.display(),
+            plural(r.copied.len(), "tensor", "tensors")
+        );
+    } else {
+        let _ = writeln!(
+            s,
+            "wrote {} ({size:.1} MiB, {} copied unchanged)",
+            r.output.display(),
+            plural(r.copied.len(), "tensor", "tensors")
+        );
+    }
+    for w in &r.warnings {
+        let _ = writeln!(s, "warning: {w}");
+    }
+    s
+}

@@ -1,0 +1,352 @@
+//! The main job: open, discover, plan, compute the new tables, stream the patched checkpoint.
+//! Every check that can fail runs before the temporary output file is created.
+
+use std::collections::HashMap;
+use std::path::{Path, PathBuf};
+
+use serde::Serialize;
+
+use crate::checkpoint::{safetensors, Checkpoint, Dtype, TensorEntry};
+use crate::discover::{self, Hints};
+use crate::error::{Error, Result};
+use crate::plan::{self, Plan, Request, TableChange};
+use crate::resample;
+use crate::values;
+use crate::write::{self, AtomicFile, Bar, Progress, Silent};
+
+/// The metadata key posgrid adds, holding its provenance as a JSON string.
+pub const PROVENANCE_KEY: &str = "posgrid";
+
+/// Everything `resize` needs.
+#[derive(Debug, Clone)]
+pub struct ResizeJob {
+    pub input: PathBuf,
+    pub output: PathBuf,
+    pub hints: Hints,
+    pub request: Request,
+    /// Print the plan, write nothing.
+    pub dry_run: bool,
+    /// Replace an existing output.
+    pub force: bool,
+    /// Sync data to disk before the rename (durable); off for scratch outputs.
+    pub sync: bool,
+    /// Draw a progress bar on stderr.
+    pub progress: bool,
+}
+
+/// One resized table in the report.
+#[derive(Debug, Clone, Serialize)]
+pub struct TableReport {
+    pub name: String,
+    pub dtype: String,
+    pub slots: usize,
+    pub from: [usize; 2],
+    pub to: [usize; 2],
+    pub shape: Vec<usize>,
+    pub new_shape: Vec<usize>,
+    pub kind: discover::Kind,
+    pub kernel: resample::Kernel,
+    pub coords: resample::Coords,
+    pub edges: resample::Edges,
+    pub antialias: bool,
+    pub cubic_a: Option<f64>,
+    pub companions: Vec<String>,
+    /// Similarity-map fidelity; null until computed.
+    pub fidelity: Option<f64>,
+}
+
+/// What `resize` did (or, in a dry run, would do).
+#[derive(Debug, Clone, Serialize)]
+pub struct ResizeReport {
+    pub input: PathBuf,
+    pub output: PathBuf,
+    pub dry_run: bool,
+    /// True when every selected table was already at its target and nothing was written.
+    pub nothing_to_do: bool,
+    pub tables: Vec<TableReport>,
+    pub already_at_target: Vec<String>,
+    pub companions: Vec<String>,
+    pub copied: Vec<String>,
+    pub bytes_written: u64,
+    pub output_size: u64,
+    pub warnings: Vec<String>,
+}
+
+fn table_report(change: &TableChange) -> TableReport {
+    let o = &change.options;
+    TableReport {
+        name: change.table.name.clone(),
+        dtype: change.table.dtype.to_string(),
+        slots: change.table.slots,
+        from: change.from,
+        to: change.to,
+        shape: change.table.shape.clone(),
+        new_shape: change.new_shape.clone(),
+        kind: change.table.kind,
+        kernel: o.kernel,
+        coords: o.coords,
+        edges: o.edges,
+        antialias: change.antialias_applied,
+        cubic_a: (o.kernel == resample::Kernel::Bicubic).then_some(o.cubic_a),
+        companions: change.table.companions.clone(),
+        fidelity: None,
+    }
+}
+
+/// Run a resize job.
+pub fn run(job: &ResizeJob) -> Result<ResizeReport> {
+    let ckpt = Checkpoint::open(&job.input)?;
+    let found = discover::discover(&ckpt, &job.hints)?;
+    let plan = plan::build(&ckpt, &found, &job.request)?;
+    let mut report = ResizeReport {
+        input: job.input.clone(),
+        output: job.output.clone(),
+        dry_run: job.dry_run,
+        nothing_to_do: plan.is_noop(),
+        tables: plan.tables.iter().map(table_report).collect(),
+        already_at_target: plan.already_at_target.clone(),
+        companions: plan.companions.iter().map(|c| c.name.clone()).collect(),
+        copied: ckpt
+            .tensors()
+            .iter()
+            .filter(|t| !plan.changes(&t.name))
+            .map(|t| t.name.clone())
+            .collect(),
+        bytes_written: 0,
+        output_size: 0,
+        warnings: found.warnings.clone(),
+    };
+    if plan.is_noop() {
+        return Ok(report);
+    }
+    write::check_destination(&job.input, &job.output, job.force)?;
+
+    let new_data = compute(&ckpt, &plan, job.request.allow_nonfinite)?;
+    let header = patched_header(&ckpt, &plan, &new_data);
+    report.output_size = header.len() as u64
+        + ckpt
+            .tensors()
+            .iter()
+            .map(|t| {
+                new_data
+                    .get(&t.name)
+                    .map_or(t.byte_len(), |b| b.len() as u64)
+            })
+            .sum::<u64>();
+    if job.dry_run {
+        return Ok(report);
+    }
+    if write::interrupted() {
+        return Err(Error::Interrupted {
+            path: job.output.clone(),
+        });
+    }
+    let mut progress: Box<dyn Progress> = if job.progress {
+        Box::new(Bar::new(report.output_size))
+    } else {
+        Box::new(Silent)
+    };
+    let mut out = AtomicFile::create(&job.output, job.sync)?;
+    stream(&ckpt, &header, &new_data, &mut out, progress.as_mut())?;
+    out.commit()?;
+    progress.finish();
+    report.bytes_written = report.output_size;
+    Ok(report)
+}
+
+/// The new bytes of every changed tensor, by name.
+fn compute(
+    ckpt: &Checkpoint,
+    plan: &Plan,
+    allow_nonfinite: bool,
+) -> Result<HashMap<String, Vec<u8>>> {
+    let mut out = HashMap::new();
+    for change in &plan.tables {
+        let entry = ckpt
+            .tensor(&change.table.name)
+            .expect("planned tables exist");
+        let raw = ckpt.read_bytes(entry)?;
+        out.insert(
+            entry.name.clone(),
+            resized_table(ckpt.path(), entry, &raw, change, allow_nonfinite)?,
+        );
+    }
+    for c in &plan.companions {
+        let entry = ckpt.tensor(&c.name).expect("planned companions exist");
+        let bytes = values::encode_range(entry.dtype, c.rows).expect("checked when planning");
+        out.insert(c.name.clone(), bytes);
+    }
+    Ok(out)
+}
+
+/// Class slots copied byte for byte, grid rows resampled in f32 (f64 for F64 tables) and
+/// rounded to the table's dtype, nearest even.
+fn resized_table(
+    path: &Path,
+    entry: &TensorEntry,
+    raw: &[u8],
+    change: &TableChange,
+    allow_nonfinite: bool,
+) -> Result<Vec<u8>> {
+    let t = &change.table;
+    let elem = entry.dtype.bitsize() / 8;
+    let slot_bytes = t.slots * t.dim * elem;
+    let (slots, grid) = raw.split_at(slot_bytes);
+    let from = (change.from[0], change.from[1]);
+    let to = (change.to[0], change.to[1]);
+    let mut bytes = Vec::with_capacity(slot_bytes + to.0 * to.1 * t.dim * elem);
+    bytes.extend_from_slice(slots);
+    let nonfinite = |n: usize| {
+        Error::refused(
+            path,
+            format!("table \"{}\" holds {n} NaN or infinite value(s); pass --allow-nonfinite to resize it anyway", t.name),
+        )
+    };
+    let encoded = if entry.dtype == Dtype::F64 {
+        let v = values::decode_f64(entry.dtype, grid).expect("float dtype");
+        let bad = v.iter().filter(|x| !x.is_finite()).count();
+        if bad > 0 && !allow_nonfinite {
+            return Err(nonfinite(bad));
+        }
+        let r = resample::resample(&v, from, t.dim, to, &change.options)
+            .map_err(|e| Error::Usage(e.to_string()))?;
+        values::encode_f64(entry.dtype, &r)
+    } else {
+        let v = values::decode_f32(entry.dtype, grid).expect("float dtype");
+        let bad = v.iter().filter(|x| !x.is_finite()).count();
+        if bad > 0 && !allow_nonfinite {
+            return Err(nonfinite(bad));
+        }
+        let r = resample::resample(&v, from, t.dim, to, &change.options)
+            .map_err(|e| Error::Usage(e.to_string()))?;
+        values::encode_f32(entry.dtype, &r)
+    };
+    bytes.extend(encoded.expect("float dtype"));
+    Ok(bytes)
+}
+
+/// Tensors in data order (by their offsets in the input).
+fn data_order(ckpt: &Checkpoint) -> Vec<&TensorEntry> {
+    let mut order: Vec<&TensorEntry> = ckpt.tensors().iter().collect();
+    order.sort_by_key(|t| (t.begin, t.end));
+    order
+}
+
+/// The header of the output: same key order and data order, new shapes and offsets, the
+/// metadata kept with the provenance key added.
+fn patched_header(ckpt: &Checkpoint, plan: &Plan, new_data: &HashMap<String, Vec<u8>>) -> Vec<u8> {
+    let mut offsets: HashMap<&str, (u64, u64)> = HashMap::new();
+    let mut cursor = 0u64;
+    for t in data_order(ckpt) {
+        let len = new_data
+            .get(&t.name)
+            .map_or(t.byte_len(), |b| b.len() as u64);
+        offsets.insert(&t.name, (cursor, cursor + len));
+        cursor += len;
+    }
+    let shapes: HashMap<&str, &Vec<usize>> = plan
+        .tables
+        .iter()
+        .map(|c| (c.table.name.as_str(), &c.new_shape))
+        .chain(
+            plan.companions
+                .iter()
+                .map(|c| (c.name.as_str(), &c.new_shape)),
+        )
+        .collect();
+    let entries: Vec<_> = ckpt
+        .tensors()
+        .iter()
+        .map(|t| {
+            let (b, e) = offsets[t.name.as_str()];
+            let shape = shapes
+                .get(t.name.as_str())
+                .map_or_else(|| t.shape.clone(), |s| (*s).clone());
+            (t.name.clone(), t.dtype, shape, b, e)
+        })
+        .collect();
+    let mut metadata: Vec<(String, String)> =
+        ckpt.metadata().map(<[_]>::to_vec).unwrap_or_default();
+    let previous = metadata
+        .iter()
+        .position(|(k, _)| k == PROVENANCE_KEY)
+        .map(|i| metadata.remove(i).1);
+    metadata.push((PROVENANCE_KEY.to_string(), provenance(plan, previous)));
+    let position = if ckpt.metadata().is_some() {
+        ckpt.header().metadata_position
+    } else {
+        0
+    };
+    safetensors::encode_header(&entries, Some(&metadata), position)
+}
+
+/// Provenance: the version and, per table, the grids, slots and options. A provenance record
+/// already in the input is kept under `previous`.
+fn provenance(plan: &Plan, previous: Option<String>) -> String {
+    let tables: Vec<serde_json::Value> = plan
+        .tables
+        .iter()
+        .map(|c| {
+            serde_json::json!({
+                "name": c.table.name,
+                "from": c.from,
+                "to": c.to,
+                "slots": c.table.slots,
+                "kernel": c.options.kernel,
+                "coords": c.options.coords,
+                "edges": c.options.edges,
+                "antialias": c.options.antialias,
+                "antialias_applied": c.antialias_applied,
+                "cubic_a": c.options.cubic_a,
+            })
+        })
+        .collect();
+    let mut record = serde_json::json!({
+        "tool": "posgrid",
+        "version": env!("CARGO_PKG_VERSION"),
+        "tables": tables,
+        "companions": plan.companions.iter().map(|c| &c.name).collect::<Vec<_>>(),
+    });
+    if let Some(p) = previous {
+        record["previous"] = serde_json::Value::String(p);
+    }
+    record.to_string()
+}
+
+/// Write the header, then the data in input order: untouched runs copied in the kernel, new
+/// tensors written from memory.
+fn stream(
+    ckpt: &Checkpoint,
+    header: &[u8],
+    new_data: &HashMap<String, Vec<u8>>,
+    out: &mut AtomicFile,
+    progress: &mut dyn Progress,
+) -> Result<()> {
+    let out_path = out.final_path().to_path_buf();
+    write::write_all(out.file(), header, &out_path, progress)?;
+    let mut run: Option<(u64, u64)> = None; // a pending range of untouched input bytes
+    for t in data_order(ckpt) {
+        match new_data.get(&t.name) {
+            None => {
+                run = match run {
+                    Some((b, e)) if e == t.begin => Some((b, t.end)),
+                    Some((b, e)) => {
+                        write::copy_range(ckpt.file(), b, e - b, out.file(), &out_path, progress)?;
+                        Some((t.begin, t.end))
+                    }
+                    None => Some((t.begin, t.end)),
+                }
+            }
+            Some(bytes) => {
+                if let Some((b, e)) = run.take() {
+                    write::copy_range(ckpt.file(), b, e - b, out.file(), &out_path, progress)?;
+                }
+                write::write_all(out.file(), bytes, &out_path, progress)?;
+            }
+        }
+    }
+    if let Some((b, e)) = run {
+        write::copy_range(ckpt.file(), b, e - b, out.file(), &out_path, progress)?;
+    }
+    Ok(())
+}

@@ -1,0 +1,313 @@
+//! Writing: a temporary file beside the output, filled by streaming, synced, then renamed into
+//! place. Until the rename the final path is untouched; on any failure or interruption the
+//! temporary file is removed.
+
+use std::fs::{self, File, OpenOptions};
+use std::io::{self, Read, Seek, SeekFrom, Write};
+use std::os::unix::fs::MetadataExt;
+use std::path::{Path, PathBuf};
+use std::sync::atomic::{AtomicBool, Ordering};
+use std::sync::{Arc, OnceLock};
+
+use crate::error::{Error, Result};
+
+/// Copy chunk between progress updates and interruption checks.
+const CHUNK: u64 = 64 << 20;
+
+static INTERRUPTED: OnceLock<Arc<AtomicBool>> = OnceLock::new();
+
+/// Route SIGINT and SIGTERM to a flag that writes check between chunks, so an interrupted
+/// write can remove its temporary file. Called once by the binary; harmless to call again.
+pub fn install_interrupt_handler() {
+    INTERRUPTED.get_or_init(|| {
+        let flag = Arc::new(AtomicBool::new(false));
+        for signal in [signal_hook::consts::SIGINT, signal_hook::consts::SIGTERM] {
+            // Registration fails only for forbidden signals; these two are allowed.
+            let _ = signal_hook::flag::register(signal, Arc::clone(&flag));
+        }
+        flag
+    });
+}
+
+/// Whether SIGINT or SIGTERM has arrived.
+pub fn interrupted() -> bool {
+    INTERRUPTED.get().is_some_and(|f| f.load(Ordering::Relaxed))
+}
+
+/// Refuse an output that is the input (through links or `..` paths) or that exists without
+/// `force`; check that its directory exists.
+pub fn check_destination(input: &Path, output: &Path, force: bool) -> Result<()> {
+    let dir = parent_dir(output);
+    match fs::metadata(&dir) {
+        Ok(m) if m.is_dir() => {}
+        Ok(_) => {
+            return Err(Error::write(
+                output,
+                format!("{} is not a directory", dir.display()),
+            ))
+        }
+        Err(_) => {
+            return Err(Error::write(
+                output,
+                format!("output directory {} does not exist", dir.display()),
+            ))
+        }
+    }
+    if let (Ok(a), Ok(b)) = (fs::metadata(input), fs::metadata(output)) {
+        if a.dev() == b.dev() && a.ino() == b.ino() {
+            return Err(Error::write(
+                output,
+                format!(
+                    "is the input file {} (the same file on disk); choose another output path",
+                    input.display()
+                ),
+            ));
+        }
+    }
+    if fs::symlink_metadata(output).is_ok() {
+        if fs::metadata(output).is_ok_and(|m| m.is_dir()) {
+            return Err(Error::write(
+                output,
+                "is a directory; give a file path for the output",
+            ));
+        }
+        if !force {
+            return Err(Error::write(
+                output,
+                "already exists; pass --force to replace it",
+            ));
+        }
+    }
+    Ok(())
+}
+
+fn parent_dir(path: &Path) -> PathBuf {
+    match path.parent() {
+        Some(p) if !p.as_os_str().is_empty() => p.to_path_buf(),
+        _ => PathBuf::from("."),
+    }
+}
+
+/// A temporary file that becomes `final_path` on [`AtomicFile::commit`] and is removed if
+/// dropped before that.
+pub struct AtomicFile {
+    final_path: PathBuf,
+    temp_path: PathBuf,
+    file: Option<File>,
+    sync: bool,
+}
+
+impl AtomicFile {
+    /// Create a new temporary file in the directory of `final_path`.
+    pub fn create(final_path: &Path, sync: bool) -> Result<Self> {
+        let dir = parent_dir(final_path);
+        let base = final_path
+            .file_name()
+            .map(|n| n.to_string_lossy().into_owned())
+            .unwrap_or_default();
+        for attempt in 0..100u32 {
+            let temp_path = dir.join(format!(
+                ".{base}.posgrid-{}-{attempt}.tmp",
+                std::process::id()
+            ));
+            match OpenOptions::new()
+                .write(true)
+                .create_new(true)
+                .open(&temp_path)
+            {
+                Ok(file) => {
+                    return Ok(AtomicFile {
+                        final_path: final_path.to_path_buf(),
+                        temp_path,
+                        file: Some(file),
+                        sync,
+                    })
+                }
+                Err(e) if e.kind() == io::ErrorKind::AlreadyExists => continue,
+                Err(e) => {
+                    return Err(write_error(
+                        final_path,
+                        "cannot create a temporary file beside it",
+                        e,
+                    ))
+                }
+            }
+        }
+        Err(Error::write(
+            final_path,
+            "cannot find a free temporary file name beside it",
+        ))
+    }
+
+    /// The open temporary file.
+    pub fn file(&mut self) -> &mut File {
+        self.file.as_mut().expect("file is open until commit")
+    }
+
+    /// The path the file will have after commit.
+    pub fn final_path(&self) -> &Path {
+        &self.final_path
+    }
+
+    /// Flush, sync (unless disabled), rename into place and sync the directory.
+    pub fn commit(mut self) -> Result<()> {
+        let file = self.file.take().expect("file is open until commit");
+        if interrupted() {
+            return Err(Error::Interrupted {
+                path: self.final_path.clone(),
+            });
+        }
+        if self.sync {
+            file.sync_all()
+                .map_err(|e| write_error(&self.final_path, "cannot sync the data to disk", e))?;
+        }
+        drop(file);
+        fs::rename(&self.temp_path, &self.final_path).map_err(|e| {
+            write_error(
+                &self.final_path,
+                "cannot rename the finished file into place",
+                e,
+            )
+        })?;
+        if self.sync {
+            if let Ok(dir) = File::open(parent_dir(&self.final_path)) {
+                let _ = dir.sync_all();
+            }
+        }
+        self.temp_path = PathBuf::new();
+        Ok(())
+    }
+}
+
+impl Drop for AtomicFile {
+    fn drop(&mut self) {
+        if !self.temp_path.as_os_str().is_empty() {
+            self.file.take();
+            let _ = fs::remove_file(&self.temp_path);
+        }
+    }
+}
+
+/// A write error in plain words; disk-full and file-size-limit errors are named as such.
+pub fn write_error(path: &Path, what: &str, e: io::Error) -> Error {
+    let reason = match e.raw_os_error() {
+        Some(libc::ENOSPC) => "no space left on the device".to_string(),
+        Some(libc::EFBIG) => {
+            "file too large for the file system or the process's file-size limit".to_string()
+        }
+        Some(libc::EDQUOT) => "disk quota exceeded".to_string(),
+        Some(libc::EACCES) | Some(libc::EPERM) | Some(libc::EROFS) => {
+            format!("permission denied ({e})")
+        }
+        _ => e.to_string(),
+    };
+    Error::write(path, format!("{what}: {reason}; nothing was written"))
+}
+
+/// Progress reporting on stderr for long copies.
+pub trait Progress {
+    fn advance(&mut self, bytes: u64);
+    fn finish(&mut self) {}
+}
+
+/// No progress output.
+pub struct Silent;
+
+impl Progress for Silent {
+    fn advance(&mut self, _bytes: u64) {}
+}
+
+/// A one-line bar on stderr, redrawn in place.
+pub struct Bar {
+    total: u64,
+    done: u64,
+    shown: u64,
+}
+
+impl Bar {
+    pub fn new(total: u64) -> Self {
+        Bar {
+            total,
+            done: 0,
+            shown: u64::MAX,
+        }
+    }
+}
+
+impl Progress for Bar {
+    fn advance(&mut self, bytes: u64) {
+        self.done += bytes;
+        let percent = (self.done * 100).checked_div(self.total).unwrap_or(100);
+        if percent != self.shown {
+            self.shown = percent;
+            let filled = (percent / 4) as usize;
+            eprint!(
+                "\r  writing [{}{}] {percent:>3}%  {} / {} MiB",
+                "#".repeat(filled),
+                " ".repeat(25 - filled.min(25)),
+                self.done >> 20,
+                self.total >> 20
+            );
+        }
+    }
+    fn finish(&mut self) {
+        eprintln!();
+    }
+}
+
+/// Copy `len` bytes starting at `offset` of `input` to the current position of `output`.
+/// File to file, std uses copy_file_range on Linux, so the bytes stay in the kernel.
+pub fn copy_range(
+    input: &File,
+    offset: u64,
+    len: u64,
+    output: &mut File,
+    out_path: &Path,
+    progress: &mut dyn Progress,
+) -> Result<()> {
+    let mut reader = input;
+    reader
+        .seek(SeekFrom::Start(offset))
+        .map_err(|e| write_error(out_path, "cannot read the input", e))?;
+    let mut left = len;
+    while left > 0 {
+        if interrupted() {
+            return Err(Error::Interrupted {
+                path: out_path.to_path_buf(),
+            });
+        }
+        let step = left.min(CHUNK);
+        let copied = io::copy(&mut Read::take(reader, step), output)
+            .map_err(|e| write_error(out_path, "cannot write", e))?;
+        if copied != step {
+            return Err(Error::write(
+                out_path,
+                "the input file shrank while it was being copied; nothing was written",
+            ));
+        }
+        left -= step;
+        progress.advance(step);
+    }
+    Ok(())
+}
+
+/// Write `bytes` to the output, with interruption checks.
+pub fn write_all(
+    output: &mut File,
+    bytes: &[u8],
+    out_path: &Path,
+    progress: &mut dyn Progress,
+) -> Result<()> {
+    for chunk in bytes.chunks(CHUNK as usize) {
+        if interrupted() {
+            return Err(Error::Interrupted {
+                path: out_path.to_path_buf(),
+            });
+        }
+        output
+            .write_all(chunk)
+            .map_err(|e| write_error(out_path, "cannot write", e))?;
+        progress.advance(chunk.len() as u64);
+    }
+    Ok(())
+}
