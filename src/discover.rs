@@ -539,8 +539,13 @@ fn mark_copies(tables: &mut [Table]) {
         })
         .collect();
     for i in 0..tables.len() {
-        let original = (0..i).find(|&j| {
-            keys[j].1 == keys[i].1
+        // The copy is the one with the longer name (the extra prefix); between equal lengths,
+        // the later one in the file.
+        let original = (0..tables.len()).find(|&j| {
+            let (ni, nj) = (tables[i].name.len(), tables[j].name.len());
+            j != i
+                && (nj < ni || (nj == ni && j < i))
+                && keys[j].1 == keys[i].1
                 && (keys[j].0 == keys[i].0
                     || tables[j].name == keys[i].0
                     || keys[j].0 == tables[i].name)

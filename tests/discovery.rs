@@ -1,0 +1,488 @@
+//! Discovery across the naming conventions of released checkpoints (names and shapes as those
+//! releases use them: common practice, recalled from memory), in F32 and BF16.
+
+mod common;
+
+use common::*;
+use posgrid::checkpoint::Checkpoint;
+use posgrid::discover::{discover, Hints, Kind, Layout};
+use safetensors::Dtype;
+
+fn scan(path: &std::path::Path, hints: &Hints) -> posgrid::discover::Discovery {
+    discover(&Checkpoint::open(path).unwrap(), hints).unwrap()
+}
+
+const DTYPES: [Dtype; 2] = [Dtype::F32, Dtype::BF16];
+
+#[test]
+fn single_tower_with_class_slot_and_patch_kernel() {
+    // timm-style names: pos_embed [1, 1 + 14·14, D], patch_embed.proj.weight [D, 3, 16, 16].
+    for dt in DTYPES {
+        let dir = tempfile::tempdir().unwrap();
+        let d = 32;
+        let p = write(
+            dir.path(),
+            "vit.safetensors",
+            &[
+                floats(
+                    "pos_embed",
+                    dt,
+                    &[1, 197, d],
+                    &smooth_table(1, 14, 14, d, 1),
+                ),
+                floats("cls_token", dt, &[1, 1, d], &noise(d, 2, 0.1)),
+                floats(
+                    "patch_embed.proj.weight",
+                    dt,
+                    &[d, 3, 16, 16],
+                    &noise(d * 3 * 256, 3, 0.1),
+                ),
+                floats(
+                    "blocks.0.attn.qkv.weight",
+                    dt,
+                    &[3 * d, d],
+                    &noise(3 * d * d, 4, 0.1),
+                ),
+            ],
+            None,
+        );
+        let found = scan(&p, &Hints::default());
+        assert_eq!(found.tables.len(), 1, "{dt}");
+        let t = &found.tables[0];
+        assert_eq!(
+            (t.slots, t.grid, t.dim, t.patch),
+            (1, [14, 14], d, Some(16)),
+            "{dt}"
+        );
+        assert_eq!(t.kind, Kind::Learned);
+        assert_eq!(t.layout, Layout::BatchRows);
+        assert!(found.ambiguous.is_empty() && found.warnings.is_empty());
+    }
+}
+
+#[test]
+fn framework_style_names_with_projection_kernel() {
+    // embeddings.position_embeddings [1, 1 + 7·7, D] beside
+    // embeddings.patch_embeddings.projection.weight [D, 3, 32, 32].
+    for dt in DTYPES {
+        let dir = tempfile::tempdir().unwrap();
+        let d = 24;
+        let p = write(
+            dir.path(),
+            "hf.safetensors",
+            &[
+                floats(
+                    "vit.embeddings.position_embeddings",
+                    dt,
+                    &[1, 50, d],
+                    &smooth_table(1, 7, 7, d, 5),
+                ),
+                floats(
+                    "vit.embeddings.patch_embeddings.projection.weight",
+                    dt,
+                    &[d, 3, 32, 32],
+                    &noise(d * 3 * 1024, 6, 0.1),
+                ),
+            ],
+            None,
+        );
+        let t = &scan(&p, &Hints::default()).tables[0];
+        assert_eq!((t.slots, t.grid, t.patch), (1, [7, 7], Some(32)), "{dt}");
+    }
+}
+
+#[test]
+fn dual_tower_leaves_the_text_table_alone_and_finds_position_ids() {
+    // Image-text model: an image table [1 + 7·7, D] with its position_ids [1, 50], and a text
+    // table of 77 rows (a 1-D sequence) with its own position_ids [1, 77].
+    for dt in DTYPES {
+        let dir = tempfile::tempdir().unwrap();
+        let (d, dtext) = (32, 16);
+        let p = write(
+            dir.path(),
+            "clip.safetensors",
+            &[
+                floats(
+                    "vision_model.embeddings.position_embedding.weight",
+                    dt,
+                    &[50, d],
+                    &smooth_table(1, 7, 7, d, 7),
+                ),
+                ids("vision_model.embeddings.position_ids", &[1, 50]),
+                floats(
+                    "vision_model.embeddings.patch_embedding.weight",
+                    dt,
+                    &[d, 3, 32, 32],
+                    &noise(d * 3 * 1024, 8, 0.1),
+                ),
+                floats(
+                    "text_model.embeddings.position_embedding.weight",
+                    dt,
+                    &[77, dtext],
+                    &noise(77 * dtext, 9, 0.1),
+                ),
+                ids("text_model.embeddings.position_ids", &[1, 77]),
+                floats(
+                    "visual.positional_embedding",
+                    dt,
+                    &[50, d],
+                    &smooth_table(1, 7, 7, d, 10),
+                ),
+                floats(
+                    "positional_embedding",
+                    dt,
+                    &[77, dtext],
+                    &noise(77 * dtext, 11, 0.1),
+                ),
+            ],
+            None,
+        );
+        let found = scan(&p, &Hints::default());
+        let names: Vec<&str> = found.tables.iter().map(|t| t.name.as_str()).collect();
+        assert_eq!(
+            names,
+            [
+                "vision_model.embeddings.position_embedding.weight",
+                "visual.positional_embedding"
+            ],
+            "{dt}"
+        );
+        let image = &found.tables[0];
+        assert_eq!(image.companions, ["vision_model.embeddings.position_ids"]);
+        assert_eq!(
+            (image.slots, image.grid, image.patch, image.layout),
+            (1, [7, 7], Some(32), Layout::Rows)
+        );
+        assert!(found.tables[1].companions.is_empty());
+        let skipped: Vec<&str> = found.skipped.iter().map(|s| s.name.as_str()).collect();
+        assert!(skipped.contains(&"text_model.embeddings.position_embedding.weight"));
+        assert!(skipped.contains(&"positional_embedding"));
+    }
+}
+
+#[test]
+fn table_without_class_slot() {
+    // Global-pool models: 14·14 rows, no class row.
+    for dt in DTYPES {
+        let dir = tempfile::tempdir().unwrap();
+        let d = 16;
+        let p = write(
+            dir.path(),
+            "gap.safetensors",
+            &[
+                floats(
+                    "vision_model.embeddings.position_embedding.weight",
+                    dt,
+                    &[196, d],
+                    &smooth_table(0, 14, 14, d, 12),
+                ),
+                floats(
+                    "vision_model.embeddings.patch_embedding.weight",
+                    dt,
+                    &[d, 3, 14, 14],
+                    &noise(d * 3 * 196, 13, 0.1),
+                ),
+            ],
+            None,
+        );
+        let t = &scan(&p, &Hints::default()).tables[0];
+        assert_eq!((t.slots, t.grid, t.patch), (0, [14, 14], Some(14)), "{dt}");
+    }
+}
+
+#[test]
+fn grid_shaped_table() {
+    // Segmentation backbones store [1, H, W, D] directly.
+    for dt in DTYPES {
+        let dir = tempfile::tempdir().unwrap();
+        let d = 16;
+        let p = write(
+            dir.path(),
+            "grid.safetensors",
+            &[
+                floats(
+                    "image_encoder.pos_embed",
+                    dt,
+                    &[1, 8, 6, d],
+                    &smooth_table(0, 8, 6, d, 14),
+                ),
+                floats(
+                    "image_encoder.patch_embed.proj.weight",
+                    dt,
+                    &[d, 3, 16, 16],
+                    &noise(d * 3 * 256, 15, 0.1),
+                ),
+            ],
+            None,
+        );
+        let t = &scan(&p, &Hints::default()).tables[0];
+        assert_eq!(
+            (t.slots, t.grid, t.layout, t.patch),
+            (0, [8, 6], Layout::Grid, Some(16)),
+            "{dt}"
+        );
+    }
+}
+
+#[test]
+fn encoder_and_decoder_tables_with_ema_copies() {
+    // Masked-autoencoder style: fixed sine-cosine encoder and decoder tables with a zero class
+    // row, and an EMA copy of each under another prefix.
+    for dt in DTYPES {
+        let dir = tempfile::tempdir().unwrap();
+        let (d, dd) = (32, 16);
+        let enc = sincos_table(1, 8, 8, d);
+        let dec = sincos_table(1, 8, 8, dd);
+        let p = write(
+            dir.path(),
+            "mae.safetensors",
+            &[
+                floats("pos_embed", dt, &[1, 65, d], &enc),
+                floats("decoder_pos_embed", dt, &[1, 65, dd], &dec),
+                floats(
+                    "patch_embed.proj.weight",
+                    dt,
+                    &[d, 3, 16, 16],
+                    &noise(d * 768, 16, 0.1),
+                ),
+                floats("model_ema.pos_embed", dt, &[1, 65, d], &enc),
+                floats("model_ema.decoder_pos_embed", dt, &[1, 65, dd], &dec),
+                floats(
+                    "model_ema.patch_embed.proj.weight",
+                    dt,
+                    &[d, 3, 16, 16],
+                    &noise(d * 768, 17, 0.1),
+                ),
+            ],
+            None,
+        );
+        let found = scan(&p, &Hints::default());
+        assert_eq!(found.tables.len(), 4, "{dt}");
+        for t in &found.tables {
+            assert_eq!(
+                (t.slots, t.grid, t.kind, t.patch),
+                (1, [8, 8], Kind::Sincos, Some(16)),
+                "{} {dt}",
+                t.name
+            );
+        }
+        let by = |n: &str| found.table(n).unwrap();
+        assert_eq!(
+            by("model_ema.pos_embed").copy_of.as_deref(),
+            Some("pos_embed")
+        );
+        assert_eq!(
+            by("model_ema.decoder_pos_embed").copy_of.as_deref(),
+            Some("decoder_pos_embed")
+        );
+        assert!(by("decoder_pos_embed")
+            .patch_source
+            .as_deref()
+            .unwrap()
+            .contains("same grid"));
+    }
+}
+
+#[test]
+fn distilled_table_has_two_slots() {
+    for dt in DTYPES {
+        let dir = tempfile::tempdir().unwrap();
+        let d = 16;
+        let p = write(
+            dir.path(),
+            "deit.safetensors",
+            &[
+                floats(
+                    "pos_embed",
+                    dt,
+                    &[1, 198, d],
+                    &smooth_table(2, 14, 14, d, 18),
+                ),
+                floats("cls_token", dt, &[1, 1, d], &noise(d, 19, 0.1)),
+                floats("dist_token", dt, &[1, 1, d], &noise(d, 20, 0.1)),
+            ],
+            None,
+        );
+        let t = &scan(&p, &Hints::default()).tables[0];
+        assert_eq!((t.slots, t.grid, t.patch), (2, [14, 14], None), "{dt}");
+    }
+}
+
+#[test]
+fn channels_last_kernel_and_slash_names() {
+    // JAX-era names: Transformer/posembed_input/pos_embedding and embedding/kernel [p, p, C, D].
+    for dt in DTYPES {
+        let dir = tempfile::tempdir().unwrap();
+        let d = 16;
+        let p = write(
+            dir.path(),
+            "jax.safetensors",
+            &[
+                floats(
+                    "Transformer/posembed_input/pos_embedding",
+                    dt,
+                    &[1, 145, d],
+                    &smooth_table(1, 12, 12, d, 21),
+                ),
+                floats(
+                    "embedding/kernel",
+                    dt,
+                    &[32, 32, 3, d],
+                    &noise(32 * 32 * 3 * d, 22, 0.1),
+                ),
+                floats("embedding/bias", dt, &[d], &noise(d, 23, 0.1)),
+            ],
+            None,
+        );
+        let t = &scan(&p, &Hints::default()).tables[0];
+        assert_eq!((t.slots, t.grid, t.patch), (1, [12, 12], Some(32)), "{dt}");
+        assert_eq!(t.patch_source.as_deref(), Some("embedding/kernel"));
+    }
+}
+
+#[test]
+fn ambiguous_rows_are_reported_with_the_flag_that_resolves_them() {
+    // 12 rows fit 3 slots + 3x3 and 8 slots + 2x2; neither is a usual slot count.
+    let dir = tempfile::tempdir().unwrap();
+    let p = write(
+        dir.path(),
+        "amb.safetensors",
+        &[floats(
+            "pos_embed",
+            Dtype::F32,
+            &[1, 12, 8],
+            &noise(96, 24, 1.0),
+        )],
+        None,
+    );
+    let found = scan(&p, &Hints::default());
+    assert!(found.tables.is_empty());
+    assert_eq!(found.ambiguous.len(), 1);
+    assert!(found.ambiguous[0].resolve_with.contains("--slots"));
+    assert!(
+        found.warnings[0].contains("--slots"),
+        "{}",
+        found.warnings[0]
+    );
+    let resolved = scan(
+        &p,
+        &Hints {
+            slots: Some(3),
+            ..Hints::default()
+        },
+    );
+    assert_eq!(resolved.tables[0].grid, [3, 3]);
+}
+
+#[test]
+fn a_second_explanation_is_named_not_hidden() {
+    // 17 rows: 1 slot + 4x4 (taken, the usual count) or 8 slots + 3x3 (named in a note).
+    let dir = tempfile::tempdir().unwrap();
+    let p = write(
+        dir.path(),
+        "n17.safetensors",
+        &[floats(
+            "pos_embed",
+            Dtype::F32,
+            &[1, 17, 8],
+            &smooth_table(1, 4, 4, 8, 25),
+        )],
+        None,
+    );
+    let t = &scan(&p, &Hints::default()).tables[0];
+    assert_eq!((t.slots, t.grid), (1, [4, 4]));
+    assert!(
+        t.notes
+            .iter()
+            .any(|n| n.contains("8 slots + 3x3") && n.contains("--slots")),
+        "{:?}",
+        t.notes
+    );
+}
+
+#[test]
+fn non_square_grids_from_the_user_or_the_values() {
+    let dir = tempfile::tempdir().unwrap();
+    let d = 16;
+    let p = write(
+        dir.path(),
+        "rect.safetensors",
+        &[
+            floats(
+                "pos_embed",
+                Dtype::F32,
+                &[1, 1 + 6 * 8, d],
+                &smooth_table(1, 6, 8, d, 26),
+            ),
+            floats(
+                "decoder.pos_embed",
+                Dtype::F32,
+                &[1, 1 + 6 * 10, d],
+                &sincos_table(1, 6, 10, d),
+            ),
+        ],
+        None,
+    );
+    // Without help, 49 rows read as 1 slot + 7x7... so the user's grid must win.
+    let plain = scan(&p, &Hints::default());
+    assert_eq!(plain.table("pos_embed").unwrap().grid, [7, 7]);
+    let told = scan(
+        &p,
+        &Hints {
+            source_grid: Some((6, 8)),
+            tensors: vec!["pos_embed".into()],
+            ..Hints::default()
+        },
+    );
+    assert_eq!(told.table("pos_embed").unwrap().grid, [6, 8]);
+    // 61 rows have no square grid, but the sine-cosine values say 6x10.
+    let dec = plain.table("decoder.pos_embed").unwrap();
+    assert_eq!((dec.slots, dec.grid, dec.kind), (1, [6, 10], Kind::Sincos));
+}
+
+#[test]
+fn forced_tensor_with_an_unusual_name() {
+    let dir = tempfile::tempdir().unwrap();
+    let p = write(
+        dir.path(),
+        "odd.safetensors",
+        &[floats(
+            "abs_pe",
+            Dtype::F32,
+            &[1, 50, 8],
+            &smooth_table(1, 7, 7, 8, 27),
+        )],
+        None,
+    );
+    assert!(scan(&p, &Hints::default()).tables.is_empty());
+    let forced = scan(
+        &p,
+        &Hints {
+            tensors: vec!["abs_pe".into()],
+            ..Hints::default()
+        },
+    );
+    assert_eq!(forced.tables[0].grid, [7, 7]);
+}
+
+#[test]
+fn integer_table_is_skipped_with_a_reason() {
+    let dir = tempfile::tempdir().unwrap();
+    let p = write(
+        dir.path(),
+        "int.safetensors",
+        &[ids("pos_embed", &[1, 197])],
+        None,
+    );
+    let found = scan(
+        &p,
+        &Hints {
+            tensors: vec!["pos_embed".into()],
+            ..Hints::default()
+        },
+    );
+    assert!(found.tables.is_empty());
+    assert!(
+        found.skipped[0].reason.contains("shape") || found.skipped[0].reason.contains("integer")
+    );
+}
