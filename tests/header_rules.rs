@@ -36,7 +36,13 @@ fn every_header_rule_has_a_failing_file() {
     let dir = tempfile::tempdir().unwrap();
     let d = dir.path();
     let data16 = [0u8; 16];
-    let cases: Vec<(&str, std::path::PathBuf, fn(&FormatProblem) -> bool, &str)> = vec![
+    type Case = (
+        &'static str,
+        std::path::PathBuf,
+        fn(&FormatProblem) -> bool,
+        &'static str,
+    );
+    let cases: Vec<Case> = vec![
         (
             "empty file",
             raw(d, "empty", b""),
