@@ -9,10 +9,12 @@ use clap::{Args, Parser, Subcommand};
 use crate::checkpoint::Checkpoint;
 use crate::discover::{self, Hints};
 use crate::error::{Error, Result, EXIT_NO_TABLE, EXIT_OK};
+use crate::figure;
 use crate::plan::{Request, Target};
 use crate::report::{self, ScanReport};
 use crate::resample::{Antialias, Coords, Edges, Kernel, Options, DEFAULT_CUBIC_A};
 use crate::resize::{self, ResizeJob};
+use crate::similarity::DEFAULT_REFS;
 
 const EXIT_CODES: &str = "\
 Exit codes:
@@ -46,6 +48,34 @@ pub enum Command {
     /// Write a copy of a checkpoint whose position tables are resampled to a new grid.
     #[command(after_long_help = concat!("Examples:\n  posgrid resize vit-224.safetensors -o vit-384.safetensors --image 384\n  posgrid resize ckpt.safetensors -o out.safetensors --grid 24x32 --kernel bilinear\n  posgrid resize ckpt.safetensors -o out.safetensors --grid 24 --dry-run --json\n\n", "Exit codes: 0 written or nothing to do; 2 usage; 3 invalid input; 4 no or ambiguous table;\n5 cannot write (nothing left behind); 6 table refused; 130 interrupted."))]
     Resize(Box<ResizeArgs>),
+    /// Draw cosine-similarity maps of a table (before and after, given two files) to a PNG.
+    #[command(after_long_help = concat!("Examples:\n  posgrid map vit-224.safetensors -o maps.png\n  posgrid map vit-224.safetensors vit-384.safetensors -o before-after.png --json\n\n", "Each tile shows how similar one reference position is to every position of the grid, on a\n",
+    "diverging scale over [-1, 1]. With two files, the same relative reference positions are drawn\n",
+    "side by side and the fidelity score compares them.\n\n",
+    "Exit codes: 0 written; 2 usage; 3 invalid input; 4 no table, or several without --tensor; 5 cannot write."))]
+    Map(MapArgs),
+}
+
+#[derive(Debug, Args)]
+pub struct MapArgs {
+    /// The checkpoint to draw (the "before" one when AFTER is given).
+    pub checkpoint: PathBuf,
+    /// A resized copy of it: draws both side by side and scores the fidelity.
+    pub after: Option<PathBuf>,
+    /// Where to write the PNG.
+    #[arg(short, long, value_name = "PNG")]
+    pub output: PathBuf,
+    /// Reference positions per axis (spread evenly over the grid).
+    #[arg(long, value_name = "N", default_value_t = DEFAULT_REFS, value_parser = parse_refs)]
+    pub refs: usize,
+    /// Print one JSON object on stdout (with the fidelity and the distance profiles).
+    #[arg(long)]
+    pub json: bool,
+    /// Replace the PNG if it exists.
+    #[arg(long)]
+    pub force: bool,
+    #[command(flatten)]
+    pub discovery: DiscoveryArgs,
 }
 
 /// How discovery reads the file; the same flags for every command.
@@ -150,9 +180,22 @@ can be regenerated."
     /// Resize tables that hold NaN or infinity instead of refusing them.
     #[arg(long)]
     pub allow_nonfinite: bool,
+    /// Also draw before/after similarity maps of the first resized table to this PNG.
+    #[arg(long, value_name = "PNG")]
+    pub map: Option<PathBuf>,
+    /// Reference positions per axis for the maps and the fidelity score.
+    #[arg(long, value_name = "N", default_value_t = DEFAULT_REFS, value_parser = parse_refs)]
+    pub refs: usize,
     /// Refuse a table whose output would need more memory than this (e.g. 512M, 8G).
     #[arg(long, value_name = "SIZE", value_parser = parse_size, default_value = "4G")]
     pub memory_limit: u64,
+}
+
+fn parse_refs(s: &str) -> std::result::Result<usize, String> {
+    match s.parse::<usize>() {
+        Ok(n) if (1..=64).contains(&n) => Ok(n),
+        _ => Err(format!("\"{s}\" is not a count from 1 to 64")),
+    }
 }
 
 fn parse_text<T: std::str::FromStr<Err = String>>(s: &str) -> std::result::Result<T, String> {
@@ -203,7 +246,25 @@ pub fn run(cli: Cli) -> Result<i32> {
     match cli.command {
         Command::Scan(args) => scan(args),
         Command::Resize(args) => resize_cmd(*args),
+        Command::Map(args) => map_cmd(args),
     }
+}
+
+fn map_cmd(args: MapArgs) -> Result<i32> {
+    let report = figure::run(
+        &args.checkpoint,
+        args.after.as_deref(),
+        &args.discovery.hints(),
+        args.refs,
+        &args.output,
+        args.force,
+    )?;
+    if args.json {
+        print_json(&report);
+    } else {
+        print!("{}", report::map_text(&report));
+    }
+    Ok(EXIT_OK)
 }
 
 fn print_json<T: serde::Serialize>(value: &T) {
@@ -263,6 +324,8 @@ fn resize_cmd(args: ResizeArgs) -> Result<i32> {
         force: args.force,
         sync: !args.no_sync,
         progress: !args.quiet && !args.json && std::io::stderr().is_terminal(),
+        refs: args.refs,
+        map: args.map.clone(),
     };
     let report = resize::run(&job)?;
     if args.json {

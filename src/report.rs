@@ -8,6 +8,7 @@ use serde::Serialize;
 
 use crate::checkpoint::Checkpoint;
 use crate::discover::{Discovery, Kind};
+use crate::figure::MapReport;
 use crate::resize::ResizeReport;
 
 /// The result of `scan`.
@@ -144,7 +145,10 @@ pub fn resize_text(r: &ResizeReport) -> String {
             t.new_shape
         );
         if let Some(f) = t.fidelity {
-            let _ = writeln!(s, "    fidelity {f:.3}");
+            let _ = writeln!(
+                s,
+                "    fidelity {f:.3} (similarity maps before and after agree; 1 is perfect)"
+            );
         }
     }
     if !r.companions.is_empty() {
@@ -169,8 +173,33 @@ pub fn resize_text(r: &ResizeReport) -> String {
             plural(r.copied.len(), "tensor", "tensors")
         );
     }
+    if let Some(m) = &r.map {
+        let _ = writeln!(s, "similarity maps: {}", m.display());
+    }
     for w in &r.warnings {
         let _ = writeln!(s, "warning: {w}");
     }
+    s
+}
+
+/// The readable summary of a map.
+pub fn map_text(r: &MapReport) -> String {
+    let mut s = format!(
+        "{}: {} ({}x{}), {}x{} reference positions",
+        r.output.display(),
+        r.tensor,
+        r.grid[0],
+        r.grid[1],
+        r.refs[0],
+        r.refs[1]
+    );
+    if let (Some(g), Some(f)) = (r.after_grid, &r.fidelity) {
+        let _ = write!(
+            s,
+            "; after {}x{}: fidelity {:.3} (lowest {:.3} at row {}, column {})",
+            g[0], g[1], f.score, f.min, f.worst[0], f.worst[1]
+        );
+    }
+    s.push('\n');
     s
 }

@@ -9,8 +9,10 @@ use serde::Serialize;
 use crate::checkpoint::{safetensors, Checkpoint, Dtype, TensorEntry};
 use crate::discover::{self, Hints};
 use crate::error::{Error, Result};
+use crate::figure::{self, GridRows};
 use crate::plan::{self, Plan, Request, TableChange};
 use crate::resample;
+use crate::similarity::{self, Grid};
 use crate::values;
 use crate::write::{self, AtomicFile, Bar, Progress, Silent};
 
@@ -32,6 +34,10 @@ pub struct ResizeJob {
     pub sync: bool,
     /// Draw a progress bar on stderr.
     pub progress: bool,
+    /// Reference positions per axis for the fidelity score.
+    pub refs: usize,
+    /// Also draw the before/after similarity maps of the first table to this PNG.
+    pub map: Option<PathBuf>,
 }
 
 /// One resized table in the report.
@@ -69,6 +75,8 @@ pub struct ResizeReport {
     pub copied: Vec<String>,
     pub bytes_written: u64,
     pub output_size: u64,
+    /// The similarity-map PNG, when one was drawn.
+    pub map: Option<PathBuf>,
     pub warnings: Vec<String>,
 }
 
@@ -114,6 +122,7 @@ pub fn run(job: &ResizeJob) -> Result<ResizeReport> {
             .collect(),
         bytes_written: 0,
         output_size: 0,
+        map: None,
         warnings: found.warnings.clone(),
     };
     if plan.is_noop() {
@@ -121,7 +130,26 @@ pub fn run(job: &ResizeJob) -> Result<ResizeReport> {
     }
     write::check_destination(&job.input, &job.output, job.force)?;
 
-    let new_data = compute(&ckpt, &plan, job.request.allow_nonfinite)?;
+    let Computed {
+        bytes: new_data,
+        grids,
+    } = compute(&ckpt, &plan, job.request.allow_nonfinite)?;
+    for (report_table, (change, before, after)) in report.tables.iter_mut().zip(&grids) {
+        let t = &change.table;
+        let b = Grid {
+            rows: before,
+            h: change.from[0],
+            w: change.from[1],
+            d: t.dim,
+        };
+        let a = Grid {
+            rows: after,
+            h: change.to[0],
+            w: change.to[1],
+            d: t.dim,
+        };
+        report_table.fidelity = Some(similarity::score(b, a, job.refs).score);
+    }
     let header = patched_header(&ckpt, &plan, &new_data);
     report.output_size = header.len() as u64
         + ckpt
@@ -151,48 +179,67 @@ pub fn run(job: &ResizeJob) -> Result<ResizeReport> {
     out.commit()?;
     progress.finish();
     report.bytes_written = report.output_size;
+    if let (Some(png_path), Some((change, before, after))) = (&job.map, grids.first()) {
+        let rows = |table: &discover::Table, rows: &[f32]| GridRows {
+            table: table.clone(),
+            rows: rows.to_vec(),
+        };
+        let mut after_table = change.table.clone();
+        after_table.grid = change.to;
+        let drawn = figure::figure(
+            &rows(&change.table, before),
+            Some(&rows(&after_table, after)),
+            job.refs,
+        );
+        figure::write_png(png_path, &drawn.png, job.force, &job.input)?;
+        report.map = Some(png_path.to_path_buf());
+    }
     Ok(report)
 }
 
-/// The new bytes of every changed tensor, by name.
-fn compute(
-    ckpt: &Checkpoint,
-    plan: &Plan,
-    allow_nonfinite: bool,
-) -> Result<HashMap<String, Vec<u8>>> {
-    let mut out = HashMap::new();
+/// The new bytes of every changed tensor, by name, and each table's grid rows before and
+/// after (f32, without class slots) for the similarity measures.
+struct Computed<'a> {
+    bytes: HashMap<String, Vec<u8>>,
+    grids: Vec<(&'a TableChange, Vec<f32>, Vec<f32>)>,
+}
+
+fn compute<'a>(ckpt: &Checkpoint, plan: &'a Plan, allow_nonfinite: bool) -> Result<Computed<'a>> {
+    let mut out = Computed {
+        bytes: HashMap::new(),
+        grids: Vec::new(),
+    };
     for change in &plan.tables {
         let entry = ckpt
             .tensor(&change.table.name)
             .expect("planned tables exist");
         let raw = ckpt.read_bytes(entry)?;
-        out.insert(
-            entry.name.clone(),
-            resized_table(ckpt.path(), entry, &raw, change, allow_nonfinite)?,
-        );
+        let (bytes, before, after) =
+            resized_table(ckpt.path(), entry, &raw, change, allow_nonfinite)?;
+        out.bytes.insert(entry.name.clone(), bytes);
+        out.grids.push((change, before, after));
     }
     for c in &plan.companions {
         let entry = ckpt.tensor(&c.name).expect("planned companions exist");
         let bytes = values::encode_range(entry.dtype, c.rows).expect("checked when planning");
-        out.insert(c.name.clone(), bytes);
+        out.bytes.insert(c.name.clone(), bytes);
     }
     Ok(out)
 }
 
 /// Class slots copied byte for byte, grid rows resampled in f32 (f64 for F64 tables) and
-/// rounded to the table's dtype, nearest even.
+/// rounded to the table's dtype, nearest even. Also returns the grid rows before and after.
 fn resized_table(
     path: &Path,
     entry: &TensorEntry,
     raw: &[u8],
     change: &TableChange,
     allow_nonfinite: bool,
-) -> Result<Vec<u8>> {
+) -> Result<(Vec<u8>, Vec<f32>, Vec<f32>)> {
     let t = &change.table;
     let elem = entry.dtype.bitsize() / 8;
     let slot_bytes = t.slots * t.dim * elem;
     let (slots, grid) = raw.split_at(slot_bytes);
-    let from = (change.from[0], change.from[1]);
     let to = (change.to[0], change.to[1]);
     let mut bytes = Vec::with_capacity(slot_bytes + to.0 * to.1 * t.dim * elem);
     bytes.extend_from_slice(slots);
@@ -202,27 +249,37 @@ fn resized_table(
             format!("table \"{}\" holds {n} NaN or infinite value(s); pass --allow-nonfinite to resize it anyway", t.name),
         )
     };
-    let encoded = if entry.dtype == Dtype::F64 {
-        let v = values::decode_f64(entry.dtype, grid).expect("float dtype");
-        let bad = v.iter().filter(|x| !x.is_finite()).count();
+    // Refuse non-finite input, then resample: the same steps in f64 or f32.
+    fn run<T: resample::Sample>(
+        v: &[T],
+        finite: fn(&T) -> bool,
+        change: &TableChange,
+        allow_nonfinite: bool,
+        refuse: &dyn Fn(usize) -> Error,
+    ) -> Result<Vec<T>> {
+        let bad = v.iter().filter(|x| !finite(x)).count();
         if bad > 0 && !allow_nonfinite {
-            return Err(nonfinite(bad));
+            return Err(refuse(bad));
         }
-        let r = resample::resample(&v, from, t.dim, to, &change.options)
-            .map_err(|e| Error::Usage(e.to_string()))?;
-        values::encode_f64(entry.dtype, &r)
+        let (from, to) = (
+            (change.from[0], change.from[1]),
+            (change.to[0], change.to[1]),
+        );
+        resample::resample(v, from, change.table.dim, to, &change.options)
+            .map_err(|e| Error::Usage(format!("{}: {e}", change.table.name)))
+    }
+    let (encoded, before, after) = if entry.dtype == Dtype::F64 {
+        let v = values::decode_f64(entry.dtype, grid).expect("float dtype");
+        let r = run(&v, |x| x.is_finite(), change, allow_nonfinite, &nonfinite)?;
+        let narrow = |x: &[f64]| x.iter().map(|v| *v as f32).collect::<Vec<f32>>();
+        (values::encode_f64(entry.dtype, &r), narrow(&v), narrow(&r))
     } else {
         let v = values::decode_f32(entry.dtype, grid).expect("float dtype");
-        let bad = v.iter().filter(|x| !x.is_finite()).count();
-        if bad > 0 && !allow_nonfinite {
-            return Err(nonfinite(bad));
-        }
-        let r = resample::resample(&v, from, t.dim, to, &change.options)
-            .map_err(|e| Error::Usage(e.to_string()))?;
-        values::encode_f32(entry.dtype, &r)
+        let r = run(&v, |x| x.is_finite(), change, allow_nonfinite, &nonfinite)?;
+        (values::encode_f32(entry.dtype, &r), v, r)
     };
     bytes.extend(encoded.expect("float dtype"));
-    Ok(bytes)
+    Ok((bytes, before, after))
 }
 
 /// Tensors in data order (by their offsets in the input).

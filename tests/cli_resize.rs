@@ -92,7 +92,10 @@ fn resize_changes_the_table_and_nothing_else() {
         assert_eq!(report["tables"][0]["antialias"], false);
         assert_eq!(report["tables"][0]["kernel"], "bicubic");
         assert_eq!(report["tables"][0]["dtype"], dt.to_string());
-        assert!(report["tables"][0]["fidelity"].is_null());
+        assert!(
+            report["tables"][0]["fidelity"].as_f64().unwrap() > 0.9,
+            "fidelity of a smooth table"
+        );
         assert_eq!(report["dry_run"], false);
         assert_eq!(report["copied"].as_array().unwrap().len(), 3);
 
@@ -534,4 +537,77 @@ fn scan_json_carries_the_contract_fields() {
     );
     let text = posgrid(&["scan", s(&input)]);
     assert!(String::from_utf8_lossy(&text.stdout).contains("1 slot + 14x14 grid"));
+}
+
+#[test]
+fn map_command_draws_before_and_after_and_scores_them() {
+    let dir = tempfile::tempdir().unwrap();
+    let input = vit(dir.path(), Dtype::BF16);
+    let out = dir.path().join("out.safetensors");
+    let png = dir.path().join("resize-maps.png");
+    let o = posgrid(&[
+        "resize",
+        s(&input),
+        "-o",
+        s(&out),
+        "--grid",
+        "20",
+        "--map",
+        s(&png),
+        "--json",
+    ]);
+    assert_eq!(code(&o), 0, "{}", String::from_utf8_lossy(&o.stderr));
+    let report: serde_json::Value = serde_json::from_slice(&o.stdout).unwrap();
+    assert_eq!(report["map"], s(&png));
+    assert!(image::open(&png).is_ok());
+    let png2 = dir.path().join("maps.png");
+    let o = posgrid(&[
+        "map",
+        s(&input),
+        s(&out),
+        "-o",
+        s(&png2),
+        "--json",
+        "--refs",
+        "8",
+    ]);
+    assert_eq!(code(&o), 0, "{}", String::from_utf8_lossy(&o.stderr));
+    let m: serde_json::Value = serde_json::from_slice(&o.stdout).unwrap();
+    assert_eq!(m["refs"], serde_json::json!([8, 8]));
+    assert_eq!(m["after_grid"], serde_json::json!([20, 20]));
+    let f = m["fidelity"]["score"].as_f64().unwrap();
+    assert!(f > 0.9 && f <= 1.0, "{f}");
+    assert!(m["fidelity"]["min"].as_f64().unwrap() <= f);
+    // Several tables and no --tensor: exit 4 naming them.
+    let two = write(
+        dir.path(),
+        "two.safetensors",
+        &[
+            floats(
+                "pos_embed",
+                Dtype::F32,
+                &[1, 17, 8],
+                &smooth_table(1, 4, 4, 8, 1),
+            ),
+            floats(
+                "decoder_pos_embed",
+                Dtype::F32,
+                &[1, 17, 8],
+                &smooth_table(1, 4, 4, 8, 2),
+            ),
+        ],
+        None,
+    );
+    let o = posgrid(&["map", s(&two), "-o", s(&dir.path().join("x.png"))]);
+    assert_eq!(code(&o), 4);
+    assert!(String::from_utf8_lossy(&o.stderr).contains("--tensor"));
+    let o = posgrid(&[
+        "map",
+        s(&two),
+        "-o",
+        s(&dir.path().join("x.png")),
+        "--tensor",
+        "decoder_pos_embed",
+    ]);
+    assert_eq!(code(&o), 0);
 }
