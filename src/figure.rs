@@ -1,7 +1,6 @@
 //! The `map` job: read one table (or the same table before and after), compute its similarity
 //! maps and fidelity, and write the figure as a PNG, atomically.
 
-use std::io::Write as _;
 use std::path::{Path, PathBuf};
 
 use serde::Serialize;
@@ -154,9 +153,7 @@ pub fn figure(before: &GridRows, after: Option<&GridRows>, refs: usize) -> Drawn
 pub fn write_png(path: &Path, png: &[u8], force: bool, input: &Path) -> Result<()> {
     write::check_destination(input, path, force)?;
     let mut out = AtomicFile::create(path, true)?;
-    out.file()
-        .write_all(png)
-        .map_err(|e| write::write_error(path, "cannot write", e))?;
+    out.write(png, &mut write::Silent)?;
     out.commit()
 }
 

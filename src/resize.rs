@@ -379,8 +379,7 @@ fn stream(
     out: &mut AtomicFile,
     progress: &mut dyn Progress,
 ) -> Result<()> {
-    let out_path = out.final_path().to_path_buf();
-    write::write_all(out.file(), header, &out_path, progress)?;
+    out.write(header, progress)?;
     let mut run: Option<(u64, u64)> = None; // a pending range of untouched input bytes
     for t in data_order(ckpt) {
         match new_data.get(&t.name) {
@@ -388,7 +387,7 @@ fn stream(
                 run = match run {
                     Some((b, e)) if e == t.begin => Some((b, t.end)),
                     Some((b, e)) => {
-                        write::copy_range(ckpt.file(), b, e - b, out.file(), &out_path, progress)?;
+                        out.copy_from(ckpt.file(), b, e - b, progress)?;
                         Some((t.begin, t.end))
                     }
                     None => Some((t.begin, t.end)),
@@ -396,14 +395,14 @@ fn stream(
             }
             Some(bytes) => {
                 if let Some((b, e)) = run.take() {
-                    write::copy_range(ckpt.file(), b, e - b, out.file(), &out_path, progress)?;
+                    out.copy_from(ckpt.file(), b, e - b, progress)?;
                 }
-                write::write_all(out.file(), bytes, &out_path, progress)?;
+                out.write(bytes, progress)?;
             }
         }
     }
     if let Some((b, e)) = run {
-        write::copy_range(ckpt.file(), b, e - b, out.file(), &out_path, progress)?;
+        out.copy_from(ckpt.file(), b, e - b, progress)?;
     }
     Ok(())
 }

@@ -95,6 +95,8 @@ pub struct AtomicFile {
     temp_path: PathBuf,
     file: Option<File>,
     sync: bool,
+    /// Bytes written so far.
+    position: u64,
 }
 
 impl AtomicFile {
@@ -121,6 +123,7 @@ impl AtomicFile {
                         temp_path,
                         file: Some(file),
                         sync,
+                        position: 0,
                     })
                 }
                 Err(e) if e.kind() == io::ErrorKind::AlreadyExists => continue,
@@ -255,59 +258,81 @@ impl Progress for Bar {
     }
 }
 
-/// Copy `len` bytes starting at `offset` of `input` to the current position of `output`.
-/// File to file, std uses copy_file_range on Linux, so the bytes stay in the kernel.
-pub fn copy_range(
-    input: &File,
-    offset: u64,
-    len: u64,
-    output: &mut File,
-    out_path: &Path,
-    progress: &mut dyn Progress,
-) -> Result<()> {
-    let mut reader = input;
-    reader
-        .seek(SeekFrom::Start(offset))
-        .map_err(|e| write_error(out_path, "cannot read the input", e))?;
-    let mut left = len;
-    while left > 0 {
-        if interrupted() {
-            return Err(Error::Interrupted {
-                path: out_path.to_path_buf(),
-            });
+impl AtomicFile {
+    /// Copy `len` bytes starting at `offset` of `input` to the end of the output. File to
+    /// file, std uses copy_file_range on Linux, so the bytes stay in the kernel.
+    pub fn copy_from(
+        &mut self,
+        input: &File,
+        offset: u64,
+        len: u64,
+        progress: &mut dyn Progress,
+    ) -> Result<()> {
+        let mut reader = input;
+        reader
+            .seek(SeekFrom::Start(offset))
+            .map_err(|e| write_error(&self.final_path, "cannot read the input", e))?;
+        let mut left = len;
+        while left > 0 {
+            self.check_interrupt()?;
+            let step = left.min(CHUNK);
+            let copied = io::copy(&mut Read::take(reader, step), self.file())
+                .map_err(|e| write_error(&self.final_path, "cannot write", e))?;
+            if copied != step {
+                return Err(Error::write(
+                    &self.final_path,
+                    "the input file shrank while it was being copied; nothing was written",
+                ));
+            }
+            self.written(step);
+            left -= step;
+            progress.advance(step);
         }
-        let step = left.min(CHUNK);
-        let copied = io::copy(&mut Read::take(reader, step), output)
-            .map_err(|e| write_error(out_path, "cannot write", e))?;
-        if copied != step {
-            return Err(Error::write(
-                out_path,
-                "the input file shrank while it was being copied; nothing was written",
-            ));
-        }
-        left -= step;
-        progress.advance(step);
+        Ok(())
     }
-    Ok(())
-}
 
-/// Write `bytes` to the output, with interruption checks.
-pub fn write_all(
-    output: &mut File,
-    bytes: &[u8],
-    out_path: &Path,
-    progress: &mut dyn Progress,
-) -> Result<()> {
-    for chunk in bytes.chunks(CHUNK as usize) {
+    /// Write `bytes` to the end of the output.
+    pub fn write(&mut self, bytes: &[u8], progress: &mut dyn Progress) -> Result<()> {
+        for chunk in bytes.chunks(CHUNK as usize) {
+            self.check_interrupt()?;
+            let path = self.final_path.clone();
+            self.file()
+                .write_all(chunk)
+                .map_err(|e| write_error(&path, "cannot write", e))?;
+            self.written(chunk.len() as u64);
+            progress.advance(chunk.len() as u64);
+        }
+        Ok(())
+    }
+
+    fn check_interrupt(&self) -> Result<()> {
         if interrupted() {
             return Err(Error::Interrupted {
-                path: out_path.to_path_buf(),
+                path: self.final_path.clone(),
             });
         }
-        output
-            .write_all(chunk)
-            .map_err(|e| write_error(out_path, "cannot write", e))?;
-        progress.advance(chunk.len() as u64);
+        Ok(())
     }
-    Ok(())
+
+    /// Account for bytes written; for a durable write, start their writeback to disk now
+    /// (sync_file_range), so the final sync overlaps with the copy instead of following it.
+    fn written(&mut self, len: u64) {
+        let start = self.position;
+        self.position += len;
+        if self.sync {
+            if let Some(f) = &self.file {
+                use std::os::fd::AsRawFd;
+                // SAFETY: a plain system call on an open descriptor; failure only loses the
+                // head start, the final fsync still makes the data durable.
+                unsafe {
+                    libc::sync_file_range(
+                        f.as_raw_fd(),
+                        start as i64,
+                        len as i64,
+                        libc::SYNC_FILE_RANGE_WRITE,
+                    );
+                }
+            }
+        }
+    }
 }
