@@ -9,6 +9,9 @@ use crate::error::Result;
 use crate::sincos::{self, FirstAxis};
 use crate::values;
 
+/// Candidate tables larger than this are not read for the sine-cosine check (bounded memory).
+pub const MAX_VALUE_READ: u64 = 256 << 20;
+
 /// The most leading class-like slots a table may have.
 pub const MAX_SLOTS: usize = 8;
 
@@ -291,14 +294,25 @@ fn examine(
     };
 
     // The values settle the sine-cosine kind, and can settle an ambiguous or non-square grid.
+    // A table too large to hold in memory comfortably is not read: its kind stays learned.
+    let readable = entry.byte_len() <= MAX_VALUE_READ;
+    if !readable {
+        notes.push(format!(
+            "values not read (over {} MiB): the sine-cosine check was skipped",
+            MAX_VALUE_READ >> 20
+        ));
+    }
     let table_values = || -> Result<Vec<f64>> {
+        if !readable {
+            return Ok(Vec::new());
+        }
         let bytes = source.bytes(entry)?;
         Ok(values::decode_f64(entry.dtype, &bytes).expect("float dtype checked above"))
     };
     let tol = sincos_tolerance(entry.dtype);
     let mut loaded: Option<Vec<f64>> = None;
     let sincos_fit = |v: &[f64], s: usize, (h, w): (usize, usize)| -> Option<FirstAxis> {
-        sincos::matches(&v[s * dim..], h, w, dim, tol)
+        sincos::matches(v.get(s * dim..)?, h, w, dim, tol)
     };
 
     let (slots, grid) = match candidates.len() {

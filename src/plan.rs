@@ -133,7 +133,10 @@ pub fn build(ckpt: &Checkpoint, found: &Discovery, request: &Request) -> Result<
             4
         };
         let cells = (rows as u64).saturating_mul(table.dim as u64);
-        let needed = cells.saturating_mul(elem + 3 * work);
+        let source_cells = (table.slots + from[0] * from[1]) as u64 * table.dim as u64;
+        let needed = cells
+            .saturating_mul(elem + 3 * work)
+            .saturating_add(source_cells.saturating_mul(elem + work));
         if needed > request.memory_limit {
             return Err(Error::refused(
                 path,
