@@ -6,10 +6,11 @@ use std::path::PathBuf;
 
 use clap::{Args, Parser, Subcommand};
 
-use crate::checkpoint::Checkpoint;
+use crate::checkpoint::Source;
 use crate::discover::{self, Hints};
 use crate::error::{Error, Result, EXIT_NO_TABLE, EXIT_OK};
 use crate::figure;
+use crate::output::OutputFormat;
 use crate::plan::{Request, Target};
 use crate::report::{self, ScanReport};
 use crate::resample::{Antialias, Coords, Edges, Kernel, Options, DEFAULT_CUBIC_A};
@@ -108,7 +109,7 @@ impl DiscoveryArgs {
 
 #[derive(Debug, Args)]
 pub struct ScanArgs {
-    /// The checkpoint (.safetensors).
+    /// The checkpoint: a .safetensors or .npz file, or a sharded set (directory or index .json).
     pub checkpoint: PathBuf,
     /// Print one JSON object on stdout instead of the summary.
     #[arg(long)]
@@ -120,9 +121,10 @@ pub struct ScanArgs {
 #[derive(Debug, Args)]
 #[command(group(clap::ArgGroup::new("target").required(true).args(["grid", "image"])))]
 pub struct ResizeArgs {
-    /// The checkpoint to read (.safetensors). It is never changed.
+    /// The checkpoint to read: a .safetensors or .npz file, or a sharded set (its directory or
+    /// index .json). It is never changed.
     pub checkpoint: PathBuf,
-    /// Where to write the patched checkpoint.
+    /// Where to write the patched checkpoint (a directory for a sharded set).
     #[arg(short, long, value_name = "OUT")]
     pub output: PathBuf,
     /// Target patch grid: HxW, or N for NxN.
@@ -180,6 +182,9 @@ can be regenerated."
     /// Resize tables that hold NaN or infinity instead of refusing them.
     #[arg(long)]
     pub allow_nonfinite: bool,
+    /// Output container: safetensors or npz (default: OUT's extension, else the input's).
+    #[arg(long, value_name = "FORMAT", value_parser = parse_text::<OutputFormat>)]
+    pub format: Option<OutputFormat>,
     /// Also draw before/after similarity maps of the first resized table to this PNG.
     #[arg(long, value_name = "PNG")]
     pub map: Option<PathBuf>,
@@ -275,7 +280,7 @@ fn print_json<T: serde::Serialize>(value: &T) {
 }
 
 fn scan(args: ScanArgs) -> Result<i32> {
-    let ckpt = Checkpoint::open(&args.checkpoint)?;
+    let ckpt = Source::open(&args.checkpoint)?;
     let found = discover::discover(&ckpt, &args.discovery.hints())?;
     let report = ScanReport::new(&args.checkpoint, &ckpt, found);
     if args.json {
@@ -326,6 +331,7 @@ fn resize_cmd(args: ResizeArgs) -> Result<i32> {
         progress: !args.quiet && !args.json && std::io::stderr().is_terminal(),
         refs: args.refs,
         map: args.map.clone(),
+        format: args.format,
     };
     let report = resize::run(&job)?;
     if args.json {

@@ -5,7 +5,7 @@ use std::path::{Path, PathBuf};
 
 use serde::Serialize;
 
-use crate::checkpoint::Checkpoint;
+use crate::checkpoint::{Source, TensorSource};
 use crate::discover::{self, Hints, Table};
 use crate::error::{Error, Result};
 use crate::render::{self, Figure, Panel};
@@ -31,12 +31,12 @@ impl GridRows {
 }
 
 /// Find the table to draw: the one named in `hints.tensors`, or the only one in the file.
-pub fn load_table(ckpt: &Checkpoint, hints: &Hints, name: Option<&str>) -> Result<GridRows> {
+pub fn load_table(ckpt: &dyn TensorSource, hints: &Hints, name: Option<&str>) -> Result<GridRows> {
     let found = discover::discover(ckpt, hints)?;
     let table = match name.or(hints.tensors.first().map(String::as_str)) {
         Some(n) => found.table(n).cloned().ok_or_else(|| {
             Error::table(
-                ckpt.path(),
+                ckpt.source_path(),
                 format!("no position table named \"{n}\" (see `posgrid scan`)"),
             )
         })?,
@@ -44,14 +44,14 @@ pub fn load_table(ckpt: &Checkpoint, hints: &Hints, name: Option<&str>) -> Resul
             [one] => one.clone(),
             [] => {
                 return Err(Error::table(
-                    ckpt.path(),
+                    ckpt.source_path(),
                     "no position table on a 2-D patch grid found",
                 ))
             }
             many => {
                 let names: Vec<&str> = many.iter().map(|t| t.name.as_str()).collect();
                 return Err(Error::table(
-                    ckpt.path(),
+                    ckpt.source_path(),
                     format!(
                         "several position tables ({}); choose one with --tensor NAME",
                         names.join(", ")
@@ -60,8 +60,8 @@ pub fn load_table(ckpt: &Checkpoint, hints: &Hints, name: Option<&str>) -> Resul
             }
         },
     };
-    let entry = ckpt.tensor(&table.name).expect("discovered tables exist");
-    let bytes = ckpt.read_bytes(entry)?;
+    let entry = ckpt.find(&table.name).expect("discovered tables exist");
+    let bytes = ckpt.bytes(entry)?;
     let elem = entry.dtype.bitsize() / 8;
     let rows = values::decode_f32(entry.dtype, &bytes[table.slots * table.dim * elem..])
         .expect("float table");
@@ -166,11 +166,11 @@ pub fn run(
     output: &Path,
     force: bool,
 ) -> Result<MapReport> {
-    let ckpt = Checkpoint::open(before_path)?;
+    let ckpt = Source::open(before_path)?;
     let before = load_table(&ckpt, hints, None)?;
     let after = match after_path {
         Some(p) => {
-            let ck = Checkpoint::open(p)?;
+            let ck = Source::open(p)?;
             // The same table by name; its grid comes from the file, not from the hints.
             let after_hints = Hints {
                 tensors: vec![before.table.name.clone()],

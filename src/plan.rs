@@ -4,7 +4,7 @@
 
 use serde::Serialize;
 
-use crate::checkpoint::Checkpoint;
+use crate::checkpoint::TensorSource;
 use crate::discover::{Discovery, Layout, Table};
 use crate::error::{Error, Result};
 use crate::resample::{self, Options};
@@ -71,6 +71,20 @@ impl Plan {
         self.tables.is_empty()
     }
 
+    /// The new shape of a changed tensor.
+    pub fn new_shape(&self, name: &str) -> Option<&Vec<usize>> {
+        self.tables
+            .iter()
+            .find(|t| t.table.name == name)
+            .map(|t| &t.new_shape)
+            .or_else(|| {
+                self.companions
+                    .iter()
+                    .find(|c| c.name == name)
+                    .map(|c| &c.new_shape)
+            })
+    }
+
     /// Whether the tensor with this name is changed by the plan.
     pub fn changes(&self, name: &str) -> bool {
         self.tables.iter().any(|t| t.table.name == name)
@@ -81,8 +95,8 @@ impl Plan {
 /// Decide what changes. Errors: unknown or unusable `--tensor` names, ambiguous or missing
 /// tables (exit 4), an image size that the patch does not divide, a table over the memory
 /// guard (refused, before anything is allocated).
-pub fn build(ckpt: &Checkpoint, found: &Discovery, request: &Request) -> Result<Plan> {
-    let path = ckpt.path();
+pub fn build(ckpt: &dyn TensorSource, found: &Discovery, request: &Request) -> Result<Plan> {
+    let path = ckpt.source_path();
     let selected: Vec<&Table> = if request.tensors.is_empty() {
         if let Some(a) = found.ambiguous.first() {
             return Err(Error::table(
@@ -156,7 +170,7 @@ pub fn build(ckpt: &Checkpoint, found: &Discovery, request: &Request) -> Result<
                 || request.options.antialias_applies(from[1], to[1]));
         for companion in &table.companions {
             let entry = ckpt
-                .tensor(companion)
+                .find(companion)
                 .expect("discovery names existing tensors");
             let new_shape = if entry.shape.len() == 2 {
                 vec![1, rows]
@@ -204,8 +218,8 @@ fn no_table_message(found: &Discovery) -> String {
     message
 }
 
-fn select<'a>(ckpt: &Checkpoint, found: &'a Discovery, name: &str) -> Result<&'a Table> {
-    let path = ckpt.path();
+fn select<'a>(ckpt: &dyn TensorSource, found: &'a Discovery, name: &str) -> Result<&'a Table> {
+    let path = ckpt.source_path();
     if let Some(t) = found.table(name) {
         return Ok(t);
     }
@@ -219,7 +233,7 @@ fn select<'a>(ckpt: &Checkpoint, found: &'a Discovery, name: &str) -> Result<&'a
         ));
     }
     if let Some(s) = found.skipped.iter().find(|s| s.name == name) {
-        let entry = ckpt.tensor(name);
+        let entry = ckpt.find(name);
         let integer = entry.is_some_and(|e| crate::values::is_integer(e.dtype));
         let message = format!("\"{name}\" cannot be resized: {}", s.reason);
         return Err(if integer {

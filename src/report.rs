@@ -6,7 +6,7 @@ use std::path::{Path, PathBuf};
 
 use serde::Serialize;
 
-use crate::checkpoint::Checkpoint;
+use crate::checkpoint::{Source, TensorSource};
 use crate::discover::{Discovery, Kind};
 use crate::figure::MapReport;
 use crate::resize::ResizeReport;
@@ -23,11 +23,11 @@ pub struct ScanReport {
 }
 
 impl ScanReport {
-    pub fn new(path: &Path, ckpt: &Checkpoint, discovery: Discovery) -> Self {
+    pub fn new(path: &Path, ckpt: &Source, discovery: Discovery) -> Self {
         ScanReport {
             file: path.to_path_buf(),
             format: ckpt.format().name(),
-            tensor_count: ckpt.tensors().len(),
+            tensor_count: ckpt.entries().len(),
             file_size: ckpt.file_len(),
             discovery,
         }

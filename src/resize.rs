@@ -6,15 +6,17 @@ use std::path::{Path, PathBuf};
 
 use serde::Serialize;
 
-use crate::checkpoint::{safetensors, Checkpoint, Dtype, TensorEntry};
+use crate::checkpoint::sharded::ShardedSet;
+use crate::checkpoint::{safetensors, Checkpoint, Dtype, Source, TensorEntry, TensorSource};
 use crate::discover::{self, Hints};
 use crate::error::{Error, Result};
 use crate::figure::{self, GridRows};
+use crate::output::{self, OutputFormat};
 use crate::plan::{self, Plan, Request, TableChange};
 use crate::resample;
 use crate::similarity::{self, Grid};
 use crate::values;
-use crate::write::{self, AtomicFile, Bar, Progress, Silent};
+use crate::write::{self, AtomicDir, AtomicFile, Bar, Progress, Silent};
 
 /// The metadata key posgrid adds, holding its provenance as a JSON string.
 pub const PROVENANCE_KEY: &str = "posgrid";
@@ -38,6 +40,8 @@ pub struct ResizeJob {
     pub refs: usize,
     /// Also draw the before/after similarity maps of the first table to this PNG.
     pub map: Option<PathBuf>,
+    /// The output container; `None` follows OUT's extension, then the input's format.
+    pub format: Option<OutputFormat>,
 }
 
 /// One resized table in the report.
@@ -75,6 +79,11 @@ pub struct ResizeReport {
     pub copied: Vec<String>,
     pub bytes_written: u64,
     pub output_size: u64,
+    /// For a sharded set: the shards rewritten and the shards copied unchanged.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub shards_rewritten: Option<Vec<String>>,
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub shards_copied: Option<Vec<String>>,
     /// The similarity-map PNG, when one was drawn.
     pub map: Option<PathBuf>,
     pub warnings: Vec<String>,
@@ -103,9 +112,9 @@ fn table_report(change: &TableChange) -> TableReport {
 
 /// Run a resize job.
 pub fn run(job: &ResizeJob) -> Result<ResizeReport> {
-    let ckpt = Checkpoint::open(&job.input)?;
-    let found = discover::discover(&ckpt, &job.hints)?;
-    let plan = plan::build(&ckpt, &found, &job.request)?;
+    let source = Source::open(&job.input)?;
+    let found = discover::discover(&source, &job.hints)?;
+    let plan = plan::build(&source, &found, &job.request)?;
     let mut report = ResizeReport {
         input: job.input.clone(),
         output: job.output.clone(),
@@ -114,70 +123,122 @@ pub fn run(job: &ResizeJob) -> Result<ResizeReport> {
         tables: plan.tables.iter().map(table_report).collect(),
         already_at_target: plan.already_at_target.clone(),
         companions: plan.companions.iter().map(|c| c.name.clone()).collect(),
-        copied: ckpt
-            .tensors()
+        copied: source
+            .entries()
             .iter()
             .filter(|t| !plan.changes(&t.name))
             .map(|t| t.name.clone())
             .collect(),
         bytes_written: 0,
         output_size: 0,
+        shards_rewritten: None,
+        shards_copied: None,
         map: None,
         warnings: found.warnings.clone(),
     };
     if plan.is_noop() {
         return Ok(report);
     }
-    write::check_destination(&job.input, &job.output, job.force)?;
+    let format = job
+        .format
+        .or_else(|| OutputFormat::from_extension(&job.output));
+    match &source {
+        Source::Sharded(set) => {
+            if format == Some(OutputFormat::Npz) {
+                return Err(Error::Usage("a sharded set is written as a sharded safetensors set; --format npz does not apply".into()));
+            }
+            write::check_destination_dir(set.dir(), &job.output, job.force)?
+        }
+        _ => write::check_destination(&job.input, &job.output, job.force)?,
+    }
 
     let Computed {
         bytes: new_data,
         grids,
-    } = compute(&ckpt, &plan, job.request.allow_nonfinite)?;
+    } = compute(&source, &plan, job.request.allow_nonfinite)?;
     for (report_table, (change, before, after)) in report.tables.iter_mut().zip(&grids) {
-        let t = &change.table;
+        let d = change.table.dim;
         let b = Grid {
             rows: before,
             h: change.from[0],
             w: change.from[1],
-            d: t.dim,
+            d,
         };
         let a = Grid {
             rows: after,
             h: change.to[0],
             w: change.to[1],
-            d: t.dim,
+            d,
         };
         report_table.fidelity = Some(similarity::score(b, a, job.refs).score);
     }
-    let header = patched_header(&ckpt, &plan, &new_data);
-    report.output_size = header.len() as u64
-        + ckpt
-            .tensors()
-            .iter()
-            .map(|t| {
-                new_data
-                    .get(&t.name)
-                    .map_or(t.byte_len(), |b| b.len() as u64)
-            })
-            .sum::<u64>();
+    let data_size: u64 = source
+        .entries()
+        .iter()
+        .map(|t| {
+            new_data
+                .get(&t.name)
+                .map_or(t.byte_len(), |b| b.len() as u64)
+        })
+        .sum();
+    match (&source, format) {
+        (Source::Sharded(set), _) => {
+            let written = sharded_output(set, &plan, &new_data, job)?;
+            report.output_size = written.size;
+            report.shards_rewritten = Some(written.rewritten);
+            report.shards_copied = Some(written.copied);
+            report.warnings.extend(written.warnings);
+        }
+        (Source::Single(ckpt), None | Some(OutputFormat::Safetensors)) => {
+            let header = patched_header(ckpt, &plan, &new_data);
+            report.output_size = patched_size(ckpt, &header, &new_data);
+            if !job.dry_run {
+                let mut progress = progress_for(job, report.output_size);
+                let mut out = AtomicFile::create(&job.output, job.sync)?;
+                stream(ckpt, &header, &new_data, &mut out, progress.as_mut())?;
+                out.commit()?;
+                progress.finish();
+            }
+        }
+        (_, format) => {
+            // npz in or out: sizes are known only once written (compression, member headers).
+            report.output_size = data_size;
+            let to_npz = match format {
+                Some(f) => f == OutputFormat::Npz,
+                None => matches!(source, Source::Npz(_)),
+            };
+            if to_npz {
+                report.warnings.push(
+                    "npz archives hold no metadata: the provenance record is not stored".into(),
+                );
+            }
+            if !job.dry_run {
+                let mut progress = progress_for(job, data_size);
+                let mut out = AtomicFile::create(&job.output, job.sync)?;
+                match (&source, to_npz) {
+                    (Source::Npz(n), true) => output::patch_npz(n, &plan, &new_data, &mut out)?,
+                    (_, true) => output::to_npz(&source, &plan, &new_data, &mut out)?,
+                    (_, false) => output::to_safetensors(
+                        &source,
+                        &plan,
+                        &new_data,
+                        &mut out,
+                        progress.as_mut(),
+                    )?,
+                }
+                report.output_size = out
+                    .file()
+                    .metadata()
+                    .map_err(|e| write::write_error(&job.output, "cannot write", e))?
+                    .len();
+                out.commit()?;
+                progress.finish();
+            }
+        }
+    }
     if job.dry_run {
         return Ok(report);
     }
-    if write::interrupted() {
-        return Err(Error::Interrupted {
-            path: job.output.clone(),
-        });
-    }
-    let mut progress: Box<dyn Progress> = if job.progress {
-        Box::new(Bar::new(report.output_size))
-    } else {
-        Box::new(Silent)
-    };
-    let mut out = AtomicFile::create(&job.output, job.sync)?;
-    stream(&ckpt, &header, &new_data, &mut out, progress.as_mut())?;
-    out.commit()?;
-    progress.finish();
     report.bytes_written = report.output_size;
     if let (Some(png_path), Some((change, before, after))) = (&job.map, grids.first()) {
         let rows = |table: &discover::Table, rows: &[f32]| GridRows {
@@ -197,6 +258,148 @@ pub fn run(job: &ResizeJob) -> Result<ResizeReport> {
     Ok(report)
 }
 
+fn progress_for(job: &ResizeJob, total: u64) -> Box<dyn Progress> {
+    if job.progress {
+        Box::new(Bar::new(total))
+    } else {
+        Box::new(Silent)
+    }
+}
+
+/// Size of a patched single file: the new header plus every tensor's new or old bytes.
+fn patched_size(ckpt: &Checkpoint, header: &[u8], new_data: &HashMap<String, Vec<u8>>) -> u64 {
+    header.len() as u64
+        + ckpt
+            .tensors()
+            .iter()
+            .map(|t| {
+                new_data
+                    .get(&t.name)
+                    .map_or(t.byte_len(), |b| b.len() as u64)
+            })
+            .sum::<u64>()
+}
+
+/// What writing a sharded set produced.
+struct ShardedOutput {
+    size: u64,
+    rewritten: Vec<String>,
+    copied: Vec<String>,
+    warnings: Vec<String>,
+}
+
+/// Write a sharded set into a temporary directory beside OUTDIR, then rename it into place:
+/// shards holding a changed tensor are rewritten (streaming), the others and any other files
+/// of the set's directory copied unchanged, and the index written with the new total size.
+fn sharded_output(
+    set: &ShardedSet,
+    plan: &Plan,
+    new_data: &HashMap<String, Vec<u8>>,
+    job: &ResizeJob,
+) -> Result<ShardedOutput> {
+    let index_name = set
+        .index_path()
+        .file_name()
+        .map(|n| n.to_string_lossy().into_owned())
+        .unwrap_or_default();
+    let mut out = ShardedOutput {
+        size: 0,
+        rewritten: Vec::new(),
+        copied: Vec::new(),
+        warnings: Vec::new(),
+    };
+    let mut headers: Vec<Option<Vec<u8>>> = Vec::new();
+    for (name, ckpt) in &set.shards {
+        if ckpt
+            .tensors()
+            .iter()
+            .any(|t| new_data.contains_key(&t.name))
+        {
+            let header = patched_header(ckpt, plan, new_data);
+            out.size += patched_size(ckpt, &header, new_data);
+            headers.push(Some(header));
+            out.rewritten.push(name.clone());
+        } else {
+            out.size += ckpt.file_len();
+            headers.push(None);
+            out.copied.push(name.clone());
+        }
+    }
+    let total_size: u64 = set
+        .entries()
+        .iter()
+        .map(|t| {
+            new_data
+                .get(&t.name)
+                .map_or(t.byte_len(), |b| b.len() as u64)
+        })
+        .sum();
+    let mut index = set.index.clone();
+    let metadata = index
+        .entry("metadata")
+        .or_insert_with(|| serde_json::Value::Object(Default::default()));
+    if let serde_json::Value::Object(m) = metadata {
+        m.insert("total_size".into(), serde_json::Value::from(total_size));
+    }
+    let index_text = serde_json::to_string_pretty(&index).expect("JSON serialises") + "\n";
+    out.size += index_text.len() as u64;
+    let shard_names: Vec<&str> = set.shards.iter().map(|(n, _)| n.as_str()).collect();
+    let others: Vec<PathBuf> = std::fs::read_dir(set.dir())
+        .map_err(|e| Error::read(set.dir(), e))?
+        .filter_map(|e| e.ok())
+        .filter(|e| e.file_type().is_ok_and(|t| t.is_file()))
+        .map(|e| e.path())
+        .filter(|p| {
+            let n = p
+                .file_name()
+                .map(|n| n.to_string_lossy().into_owned())
+                .unwrap_or_default();
+            n != index_name && !shard_names.contains(&n.as_str()) && !n.starts_with('.')
+        })
+        .collect();
+    if !others.is_empty() {
+        let names: Vec<String> = others
+            .iter()
+            .filter_map(|p| p.file_name())
+            .map(|n| n.to_string_lossy().into_owned())
+            .collect();
+        out.warnings.push(format!(
+            "copied unchanged beside the shards: {} (update any image size they record)",
+            names.join(", ")
+        ));
+        for p in &others {
+            out.size += std::fs::metadata(p).map_err(|e| Error::read(p, e))?.len();
+        }
+    }
+    if job.dry_run {
+        return Ok(out);
+    }
+    let mut progress = progress_for(job, out.size);
+    let dir = AtomicDir::create(&job.output, job.sync)?;
+    for ((name, ckpt), header) in set.shards.iter().zip(&headers) {
+        let mut file = AtomicFile::create(&dir.path().join(name), job.sync)?;
+        match header {
+            Some(h) => stream(ckpt, h, new_data, &mut file, progress.as_mut())?,
+            None => file.copy_from(ckpt.file(), 0, ckpt.file_len(), progress.as_mut())?,
+        }
+        file.commit()?;
+    }
+    for p in &others {
+        let name = p.file_name().expect("listed files have names");
+        let input = std::fs::File::open(p).map_err(|e| Error::read(p, e))?;
+        let len = input.metadata().map_err(|e| Error::read(p, e))?.len();
+        let mut file = AtomicFile::create(&dir.path().join(name), job.sync)?;
+        file.copy_from(&input, 0, len, progress.as_mut())?;
+        file.commit()?;
+    }
+    let mut file = AtomicFile::create(&dir.path().join(&index_name), job.sync)?;
+    file.write(index_text.as_bytes(), progress.as_mut())?;
+    file.commit()?;
+    dir.commit(job.force)?;
+    progress.finish();
+    Ok(out)
+}
+
 /// The new bytes of every changed tensor, by name, and each table's grid rows before and
 /// after (f32, without class slots) for the similarity measures.
 struct Computed<'a> {
@@ -204,23 +407,25 @@ struct Computed<'a> {
     grids: Vec<(&'a TableChange, Vec<f32>, Vec<f32>)>,
 }
 
-fn compute<'a>(ckpt: &Checkpoint, plan: &'a Plan, allow_nonfinite: bool) -> Result<Computed<'a>> {
+fn compute<'a>(
+    ckpt: &dyn TensorSource,
+    plan: &'a Plan,
+    allow_nonfinite: bool,
+) -> Result<Computed<'a>> {
     let mut out = Computed {
         bytes: HashMap::new(),
         grids: Vec::new(),
     };
     for change in &plan.tables {
-        let entry = ckpt
-            .tensor(&change.table.name)
-            .expect("planned tables exist");
-        let raw = ckpt.read_bytes(entry)?;
+        let entry = ckpt.find(&change.table.name).expect("planned tables exist");
+        let raw = ckpt.bytes(entry)?;
         let (bytes, before, after) =
-            resized_table(ckpt.path(), entry, &raw, change, allow_nonfinite)?;
+            resized_table(ckpt.source_path(), entry, &raw, change, allow_nonfinite)?;
         out.bytes.insert(entry.name.clone(), bytes);
         out.grids.push((change, before, after));
     }
     for c in &plan.companions {
-        let entry = ckpt.tensor(&c.name).expect("planned companions exist");
+        let entry = ckpt.find(&c.name).expect("planned companions exist");
         let bytes = values::encode_range(entry.dtype, c.rows).expect("checked when planning");
         out.bytes.insert(c.name.clone(), bytes);
     }
@@ -301,24 +506,12 @@ fn patched_header(ckpt: &Checkpoint, plan: &Plan, new_data: &HashMap<String, Vec
         offsets.insert(&t.name, (cursor, cursor + len));
         cursor += len;
     }
-    let shapes: HashMap<&str, &Vec<usize>> = plan
-        .tables
-        .iter()
-        .map(|c| (c.table.name.as_str(), &c.new_shape))
-        .chain(
-            plan.companions
-                .iter()
-                .map(|c| (c.name.as_str(), &c.new_shape)),
-        )
-        .collect();
     let entries: Vec<_> = ckpt
         .tensors()
         .iter()
         .map(|t| {
             let (b, e) = offsets[t.name.as_str()];
-            let shape = shapes
-                .get(t.name.as_str())
-                .map_or_else(|| t.shape.clone(), |s| (*s).clone());
+            let shape = plan.new_shape(&t.name).unwrap_or(&t.shape).clone();
             (t.name.clone(), t.dtype, shape, b, e)
         })
         .collect();
@@ -339,7 +532,7 @@ fn patched_header(ckpt: &Checkpoint, plan: &Plan, new_data: &HashMap<String, Vec
 
 /// Provenance: the version and, per table, the grids, slots and options. A provenance record
 /// already in the input is kept under `previous`.
-fn provenance(plan: &Plan, previous: Option<String>) -> String {
+pub(crate) fn provenance(plan: &Plan, previous: Option<String>) -> String {
     let tables: Vec<serde_json::Value> = plan
         .tables
         .iter()

@@ -336,3 +336,149 @@ impl AtomicFile {
         }
     }
 }
+
+/// Refuse an output directory that is the input directory, inside it, or holds it, or that
+/// exists without `force`; check that its parent exists.
+pub fn check_destination_dir(input_dir: &Path, output: &Path, force: bool) -> Result<()> {
+    let parent = parent_dir(output);
+    if !parent.is_dir() {
+        return Err(Error::write(
+            output,
+            format!("parent directory {} does not exist", parent.display()),
+        ));
+    }
+    let input = fs::canonicalize(input_dir).map_err(|e| Error::read(input_dir, e))?;
+    let name = output
+        .file_name()
+        .ok_or_else(|| Error::write(output, "is not a directory name"))?;
+    let out = fs::canonicalize(&parent)
+        .map_err(|e| Error::read(&parent, e))?
+        .join(name);
+    let out = fs::canonicalize(&out).unwrap_or(out);
+    if out == input || out.starts_with(&input) || input.starts_with(&out) {
+        return Err(Error::write(
+            output,
+            format!(
+                "overlaps the input set {}; choose a directory outside it",
+                input_dir.display()
+            ),
+        ));
+    }
+    if fs::symlink_metadata(output).is_ok() {
+        if !fs::metadata(output).is_ok_and(|m| m.is_dir()) {
+            return Err(Error::write(output, "exists and is not a directory"));
+        }
+        if !force {
+            return Err(Error::write(
+                output,
+                "already exists; pass --force to replace it",
+            ));
+        }
+    }
+    Ok(())
+}
+
+/// A temporary directory that becomes `final_path` on [`AtomicDir::commit`] and is removed
+/// with everything in it if dropped before that.
+pub struct AtomicDir {
+    final_path: PathBuf,
+    temp_path: PathBuf,
+    sync: bool,
+}
+
+impl AtomicDir {
+    pub fn create(final_path: &Path, sync: bool) -> Result<Self> {
+        let dir = parent_dir(final_path);
+        let base = final_path
+            .file_name()
+            .map(|n| n.to_string_lossy().into_owned())
+            .unwrap_or_default();
+        for attempt in 0..100u32 {
+            let temp_path = dir.join(format!(
+                ".{base}.posgrid-{}-{attempt}.tmp",
+                std::process::id()
+            ));
+            match fs::create_dir(&temp_path) {
+                Ok(()) => {
+                    return Ok(AtomicDir {
+                        final_path: final_path.to_path_buf(),
+                        temp_path,
+                        sync,
+                    })
+                }
+                Err(e) if e.kind() == io::ErrorKind::AlreadyExists => continue,
+                Err(e) => {
+                    return Err(write_error(
+                        final_path,
+                        "cannot create a temporary directory beside it",
+                        e,
+                    ))
+                }
+            }
+        }
+        Err(Error::write(
+            final_path,
+            "cannot find a free temporary directory name beside it",
+        ))
+    }
+
+    /// Where to put the files until the commit.
+    pub fn path(&self) -> &Path {
+        &self.temp_path
+    }
+
+    /// Rename into place; with `replace`, an existing directory is moved aside first and
+    /// removed after the new one is in place.
+    pub fn commit(mut self, replace: bool) -> Result<()> {
+        if interrupted() {
+            return Err(Error::Interrupted {
+                path: self.final_path.clone(),
+            });
+        }
+        if self.sync {
+            if let Ok(d) = File::open(&self.temp_path) {
+                let _ = d.sync_all();
+            }
+        }
+        let mut aside = None;
+        if replace && self.final_path.exists() {
+            let old = self.temp_path.with_extension("old");
+            fs::rename(&self.final_path, &old).map_err(|e| {
+                write_error(
+                    &self.final_path,
+                    "cannot move the existing directory aside",
+                    e,
+                )
+            })?;
+            aside = Some(old);
+        }
+        if let Err(e) = fs::rename(&self.temp_path, &self.final_path) {
+            if let Some(old) = &aside {
+                let _ = fs::rename(old, &self.final_path);
+            }
+            return Err(write_error(
+                &self.final_path,
+                "cannot rename the finished directory into place",
+                e,
+            ));
+        }
+        self.temp_path = PathBuf::new();
+        if let Some(old) = aside {
+            let _ = fs::remove_dir_all(old);
+        }
+        if self.sync {
+            if let Ok(d) = File::open(parent_dir(&self.final_path)) {
+                let _ = d.sync_all();
+            }
+        }
+        Ok(())
+    }
+}
+
+impl Drop for AtomicDir {
+    fn drop(&mut self) {
+        if !self.temp_path.as_os_str().is_empty() {
+            let _ = fs::remove_dir_all(&self.temp_path);
+        }
+    }
+}

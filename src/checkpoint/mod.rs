@@ -2,7 +2,9 @@
 //! a validated list of tensors (name, dtype, shape, byte span) plus positioned reads of one
 //! tensor's bytes. Validation happens when the file is opened, before any tensor data is used.
 
+pub mod npz;
 pub mod safetensors;
+pub mod sharded;
 
 use std::fs::File;
 use std::os::unix::fs::FileExt;
@@ -44,6 +46,10 @@ impl TensorEntry {
 pub enum Format {
     /// A single safetensors file.
     Safetensors,
+    /// Safetensors shards with a JSON index.
+    ShardedSafetensors,
+    /// A ZIP of `.npy` arrays.
+    Npz,
 }
 
 impl Format {
@@ -51,6 +57,8 @@ impl Format {
     pub fn name(self) -> &'static str {
         match self {
             Format::Safetensors => "safetensors",
+            Format::ShardedSafetensors => "safetensors-sharded",
+            Format::Npz => "npz",
         }
     }
 }
@@ -147,13 +155,21 @@ impl Checkpoint {
     }
 }
 
-/// Read access to tensor values, as discovery needs it. Implemented by [`Checkpoint`]; tests
-/// implement it over in-memory tensors.
+/// Read access to tensor values, as discovery and planning need it. Implemented by
+/// [`Checkpoint`] and [`Source`]; tests implement it over in-memory tensors.
 pub trait TensorSource {
     /// All tensors, in file order.
     fn entries(&self) -> &[TensorEntry];
     /// Raw little-endian bytes of one tensor.
     fn bytes(&self, tensor: &TensorEntry) -> Result<Vec<u8>>;
+    /// The path errors should name.
+    fn source_path(&self) -> &Path {
+        Path::new("<memory>")
+    }
+    /// The tensor with this exact name.
+    fn find(&self, name: &str) -> Option<&TensorEntry> {
+        self.entries().iter().find(|t| t.name == name)
+    }
 }
 
 impl TensorSource for Checkpoint {
@@ -163,4 +179,80 @@ impl TensorSource for Checkpoint {
     fn bytes(&self, tensor: &TensorEntry) -> Result<Vec<u8>> {
         self.read_bytes(tensor)
     }
+    fn source_path(&self) -> &Path {
+        self.path()
+    }
+}
+
+/// Any checkpoint posgrid reads: a single file or a sharded set.
+#[derive(Debug)]
+pub enum Source {
+    Single(Checkpoint),
+    Sharded(sharded::ShardedSet),
+    Npz(npz::Npz),
+}
+
+impl Source {
+    /// Open a file, a set's directory or a set's index.
+    pub fn open(path: impl AsRef<Path>) -> Result<Self> {
+        let path = path.as_ref();
+        let is_index = path.extension().is_some_and(|e| e == "json");
+        if path.is_dir() || is_index {
+            Ok(Source::Sharded(sharded::ShardedSet::open(path)?))
+        } else if is_zip(path) {
+            Ok(Source::Npz(npz::Npz::open(path)?))
+        } else {
+            Ok(Source::Single(Checkpoint::open(path)?))
+        }
+    }
+
+    pub fn format(&self) -> Format {
+        match self {
+            Source::Single(c) => c.format(),
+            Source::Sharded(_) => Format::ShardedSafetensors,
+            Source::Npz(_) => Format::Npz,
+        }
+    }
+
+    /// Bytes on disk (all shards for a set).
+    pub fn file_len(&self) -> u64 {
+        match self {
+            Source::Single(c) => c.file_len(),
+            Source::Sharded(s) => s.total_file_len(),
+            Source::Npz(n) => n.file_len(),
+        }
+    }
+}
+
+impl TensorSource for Source {
+    fn entries(&self) -> &[TensorEntry] {
+        match self {
+            Source::Single(c) => c.tensors(),
+            Source::Sharded(s) => s.entries(),
+            Source::Npz(n) => n.entries(),
+        }
+    }
+    fn bytes(&self, tensor: &TensorEntry) -> Result<Vec<u8>> {
+        match self {
+            Source::Single(c) => c.read_bytes(tensor),
+            Source::Sharded(s) => s.read_bytes(tensor),
+            Source::Npz(n) => n.read_bytes(tensor),
+        }
+    }
+    fn source_path(&self) -> &Path {
+        match self {
+            Source::Single(c) => c.path(),
+            Source::Sharded(s) => s.index_path(),
+            Source::Npz(n) => n.path(),
+        }
+    }
+}
+
+/// Whether a file starts like a ZIP archive (`PK\x03\x04`, or `PK\x05\x06` when empty).
+fn is_zip(path: &Path) -> bool {
+    let mut magic = [0u8; 4];
+    File::open(path)
+        .and_then(|f| f.read_exact_at(&mut magic, 0))
+        .is_ok()
+        && (magic == *b"PK\x03\x04" || magic == *b"PK\x05\x06")
 }

@@ -1,0 +1,392 @@
+//! npz archives: a ZIP (stored or deflated members, ZIP64 included) of `.npy` arrays, the
+//! format of many JAX-era releases. Each `.npy` header is parsed and checked with the same care
+//! as a safetensors header: magic, version, a dict of exactly `descr`, `fortran_order` and
+//! `shape`, a known dtype, and a data size equal to shape × item size.
+
+use std::cell::RefCell;
+use std::fs::File;
+use std::io::Read;
+use std::path::{Path, PathBuf};
+
+use super::{Dtype, TensorEntry};
+use crate::error::{Error, FormatProblem, Result};
+
+/// The largest `.npy` header accepted (numpy's own readers limit it to 10 000 bytes by
+/// default; this allows generous padding).
+const MAX_NPY_HEADER: usize = 1 << 20;
+
+/// One array member.
+#[derive(Debug, Clone)]
+pub struct Member {
+    /// Index in the archive.
+    pub index: usize,
+    /// The member's file name (`name.npy`).
+    pub file_name: String,
+    /// Bytes of `.npy` header before the data.
+    pub data_offset: u64,
+    pub big_endian: bool,
+    pub fortran_order: bool,
+    /// The dtype text as stored (`<f4`, `>f8`, ...), kept for rewriting the member.
+    pub descr: String,
+    pub stored: bool,
+}
+
+/// An opened, validated npz archive.
+pub struct Npz {
+    path: PathBuf,
+    archive: RefCell<zip::ZipArchive<File>>,
+    entries: Vec<TensorEntry>,
+    members: Vec<Member>,
+    file_len: u64,
+}
+
+impl std::fmt::Debug for Npz {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.debug_struct("Npz")
+            .field("path", &self.path)
+            .field("tensors", &self.entries.len())
+            .finish()
+    }
+}
+
+fn invalid(path: &Path, message: String) -> Error {
+    Error::invalid(path, FormatProblem::Other(message))
+}
+
+/// The safetensors dtype and byte order of a `.npy` dtype text.
+pub fn dtype_from_descr(descr: &str) -> Option<(Dtype, bool)> {
+    let (order, code) = descr.split_at(1.min(descr.len()));
+    let big = match order {
+        "<" | "|" | "=" => false,
+        ">" => true,
+        _ => return None,
+    };
+    let dtype = match code {
+        "f2" => Dtype::F16,
+        "f4" => Dtype::F32,
+        "f8" => Dtype::F64,
+        "i1" => Dtype::I8,
+        "u1" => Dtype::U8,
+        "b1" => Dtype::BOOL,
+        "i2" => Dtype::I16,
+        "u2" => Dtype::U16,
+        "i4" => Dtype::I32,
+        "u4" => Dtype::U32,
+        "i8" => Dtype::I64,
+        "u8" => Dtype::U64,
+        _ => return None,
+    };
+    Some((dtype, big && dtype.bitsize() > 8))
+}
+
+/// The little-endian `.npy` dtype text of a dtype, if numpy has one.
+pub fn descr_of(dtype: Dtype) -> Option<&'static str> {
+    Some(match dtype {
+        Dtype::F16 => "<f2",
+        Dtype::F32 => "<f4",
+        Dtype::F64 => "<f8",
+        Dtype::I8 => "|i1",
+        Dtype::U8 => "|u1",
+        Dtype::BOOL => "|b1",
+        Dtype::I16 => "<i2",
+        Dtype::U16 => "<u2",
+        Dtype::I32 => "<i4",
+        Dtype::U32 => "<u4",
+        Dtype::I64 => "<i8",
+        Dtype::U64 => "<u8",
+        _ => return None,
+    })
+}
+
+/// A parsed `.npy` header.
+#[derive(Debug, Clone, PartialEq)]
+pub struct NpyHeader {
+    pub descr: String,
+    pub fortran_order: bool,
+    pub shape: Vec<usize>,
+    /// Total header bytes (magic, version, length, dict) before the data.
+    pub data_offset: usize,
+}
+
+/// Parse the start of a `.npy` stream. `Err` explains the rule broken.
+pub fn parse_npy_header(bytes: &[u8]) -> std::result::Result<NpyHeader, String> {
+    if bytes.len() < 10 || &bytes[..6] != b"\x93NUMPY" {
+        return Err("not a .npy array (the \\x93NUMPY magic is missing)".into());
+    }
+    let (len, start) = match bytes[6] {
+        1 => (u16::from_le_bytes([bytes[8], bytes[9]]) as usize, 10),
+        2 | 3 => {
+            if bytes.len() < 12 {
+                return Err(".npy header is truncated".into());
+            }
+            (
+                u32::from_le_bytes([bytes[8], bytes[9], bytes[10], bytes[11]]) as usize,
+                12,
+            )
+        }
+        v => {
+            return Err(format!(
+                ".npy format version {v} is not one numpy defines (1, 2 or 3)"
+            ))
+        }
+    };
+    if len > MAX_NPY_HEADER {
+        return Err(format!(
+            ".npy header claims {len} bytes, over the {MAX_NPY_HEADER}-byte limit"
+        ));
+    }
+    let text = bytes
+        .get(start..start + len)
+        .ok_or(".npy header is truncated")?;
+    let text = std::str::from_utf8(text).map_err(|_| ".npy header is not text".to_string())?;
+    let (descr, fortran_order, shape) = parse_dict(text)?;
+    Ok(NpyHeader {
+        descr,
+        fortran_order,
+        shape,
+        data_offset: start + len,
+    })
+}
+
+/// The header dict: `{'descr': '<f4', 'fortran_order': False, 'shape': (3, 4), }`.
+fn parse_dict(text: &str) -> std::result::Result<(String, bool, Vec<usize>), String> {
+    let body = text.trim_end_matches([' ', '\n', '\0']).trim();
+    let inner = body
+        .strip_prefix('{')
+        .and_then(|b| b.strip_suffix('}'))
+        .ok_or_else(|| format!(".npy header is not a dict: {body:.60}"))?;
+    let mut rest = inner.trim();
+    let (mut descr, mut fortran, mut shape) = (None, None, None);
+    while !rest.is_empty() {
+        let (key, after) =
+            quoted(rest).ok_or_else(|| format!(".npy header key expected at: {rest:.40}"))?;
+        let after = after
+            .trim_start()
+            .strip_prefix(':')
+            .ok_or(".npy header: ':' expected after a key")?
+            .trim_start();
+        let after = match key.as_str() {
+            "descr" => {
+                let (v, a) = quoted(after)
+                    .ok_or(".npy header: descr must be a dtype string such as '<f4'")?;
+                descr = Some(v);
+                a
+            }
+            "fortran_order" => {
+                if let Some(a) = after.strip_prefix("True") {
+                    fortran = Some(true);
+                    a
+                } else if let Some(a) = after.strip_prefix("False") {
+                    fortran = Some(false);
+                    a
+                } else {
+                    return Err(".npy header: fortran_order must be True or False".into());
+                }
+            }
+            "shape" => {
+                let a = after
+                    .strip_prefix('(')
+                    .ok_or(".npy header: shape must be a tuple")?;
+                let close = a
+                    .find(')')
+                    .ok_or(".npy header: shape tuple is not closed")?;
+                let dims = a[..close]
+                    .split(',')
+                    .map(str::trim)
+                    .filter(|s| !s.is_empty())
+                    .map(|s| {
+                        s.trim_end_matches('L').parse::<usize>().map_err(|_| {
+                            format!(
+                                ".npy header: shape dimension {s} is not a non-negative integer"
+                            )
+                        })
+                    })
+                    .collect::<std::result::Result<Vec<_>, _>>()?;
+                shape = Some(dims);
+                &a[close + 1..]
+            }
+            other => return Err(format!(".npy header has an unexpected key '{other}'")),
+        };
+        rest = after.trim_start();
+        rest = rest.strip_prefix(',').unwrap_or(rest).trim_start();
+    }
+    match (descr, fortran, shape) {
+        (Some(d), Some(f), Some(s)) => Ok((d, f, s)),
+        _ => Err(".npy header must have descr, fortran_order and shape".into()),
+    }
+}
+
+/// A Python string literal in single or double quotes at the start of `s`.
+fn quoted(s: &str) -> Option<(String, &str)> {
+    let q = s.chars().next().filter(|c| *c == '\'' || *c == '"')?;
+    let end = s[1..].find(q)? + 1;
+    Some((s[1..end].to_string(), &s[end + 1..]))
+}
+
+impl Npz {
+    /// Open and validate an archive: every `.npy` member's header is read and checked.
+    pub fn open(path: &Path) -> Result<Self> {
+        let file = File::open(path).map_err(|e| Error::read(path, e))?;
+        let file_len = file.metadata().map_err(|e| Error::read(path, e))?.len();
+        let mut archive = zip::ZipArchive::new(file)
+            .map_err(|e| invalid(path, format!("not a valid npz (ZIP) archive: {e}")))?;
+        let mut entries = Vec::new();
+        let mut members = Vec::new();
+        for index in 0..archive.len() {
+            let mut member = archive
+                .by_index(index)
+                .map_err(|e| invalid(path, format!("ZIP member {index} cannot be read: {e}")))?;
+            let file_name = member
+                .name()
+                .map_err(|e| invalid(path, format!("ZIP member {index}: {e}")))?
+                .into_owned();
+            if member.is_dir() || !file_name.ends_with(".npy") {
+                continue;
+            }
+            if member.encrypted() {
+                return Err(invalid(path, format!("member {file_name} is encrypted")));
+            }
+            let stored = member.compression() == zip::CompressionMethod::Stored;
+            let size = member.size();
+            let mut head = Vec::new();
+            (&mut member)
+                .take((MAX_NPY_HEADER + 12) as u64)
+                .read_to_end(&mut head)
+                .map_err(|e| {
+                    invalid(
+                        path,
+                        format!("member {file_name} cannot be decompressed: {e}"),
+                    )
+                })?;
+            let h = parse_npy_header(&head)
+                .map_err(|m| invalid(path, format!("member {file_name}: {m}")))?;
+            let (dtype, big_endian) = dtype_from_descr(&h.descr).ok_or_else(|| {
+                invalid(path, format!("member {file_name}: dtype '{}' is not one posgrid reads (float, integer or bool)", h.descr))
+            })?;
+            let need = super::safetensors::byte_size(dtype, &h.shape).ok_or_else(|| {
+                invalid(
+                    path,
+                    format!("member {file_name}: shape times item size overflows"),
+                )
+            })?;
+            if need != size.saturating_sub(h.data_offset as u64) || (h.data_offset as u64) > size {
+                return Err(invalid(
+                    path,
+                    format!(
+                        "member {file_name}: shape {:?} of {} needs {need} bytes but the member holds {}",
+                        h.shape,
+                        h.descr,
+                        size.saturating_sub(h.data_offset as u64)
+                    ),
+                ));
+            }
+            let name = file_name.trim_end_matches(".npy").to_string();
+            entries.push(TensorEntry {
+                name,
+                dtype,
+                shape: h.shape.clone(),
+                begin: 0,
+                end: need,
+            });
+            members.push(Member {
+                index,
+                file_name,
+                data_offset: h.data_offset as u64,
+                big_endian,
+                fortran_order: h.fortran_order,
+                descr: h.descr,
+                stored,
+            });
+        }
+        Ok(Npz {
+            path: path.to_path_buf(),
+            archive: RefCell::new(archive),
+            entries,
+            members,
+            file_len,
+        })
+    }
+
+    pub fn path(&self) -> &Path {
+        &self.path
+    }
+
+    pub fn file_len(&self) -> u64 {
+        self.file_len
+    }
+
+    pub fn entries(&self) -> &[TensorEntry] {
+        &self.entries
+    }
+
+    /// The archive members of the arrays, in the order of [`Npz::entries`].
+    pub fn members(&self) -> &[Member] {
+        &self.members
+    }
+
+    /// The archive, for raw copies of members.
+    pub fn archive(&self) -> std::cell::RefMut<'_, zip::ZipArchive<File>> {
+        self.archive.borrow_mut()
+    }
+
+    /// One array's data, little-endian, C order. Fortran-order arrays are refused.
+    pub fn read_bytes(&self, t: &TensorEntry) -> Result<Vec<u8>> {
+        let i = self
+            .entries
+            .iter()
+            .position(|e| e.name == t.name)
+            .expect("entries come from the archive");
+        let m = &self.members[i];
+        if m.fortran_order {
+            return Err(Error::refused(
+                &self.path,
+                format!("array \"{}\" is stored in Fortran order; save it in C order (numpy.ascontiguousarray) first", t.name),
+            ));
+        }
+        let mut archive = self.archive.borrow_mut();
+        let mut member = archive
+            .by_index(m.index)
+            .map_err(|e| invalid(&self.path, format!("member {}: {e}", m.file_name)))?;
+        std::io::copy(&mut (&mut member).take(m.data_offset), &mut std::io::sink())
+            .map_err(|e| Error::read(&self.path, e))?;
+        let mut data = vec![0u8; t.byte_len() as usize];
+        member
+            .read_exact(&mut data)
+            .map_err(|e| invalid(&self.path, format!("member {}: {e}", m.file_name)))?;
+        if m.big_endian {
+            let width = t.dtype.bitsize() / 8;
+            data.chunks_exact_mut(width).for_each(|c| c.reverse());
+        }
+        Ok(data)
+    }
+}
+
+/// A `.npy` header for `dtype` (little-endian, C order) and `shape`, version 1.0 (2.0 when the
+/// dict is too long), padded so the data starts on a 64-byte boundary as numpy writes it.
+pub fn npy_header(descr: &str, shape: &[usize]) -> Vec<u8> {
+    let dims: Vec<String> = shape.iter().map(|d| d.to_string()).collect();
+    let shape_text = match dims.len() {
+        1 => format!("({},)", dims[0]),
+        _ => format!("({})", dims.join(", ")),
+    };
+    let mut dict =
+        format!("{{'descr': '{descr}', 'fortran_order': False, 'shape': {shape_text}, }}");
+    let (version, prefix) = if dict.len() + 11 < 65536 {
+        (1u8, 10)
+    } else {
+        (2u8, 12)
+    };
+    while (prefix + dict.len() + 1) % 64 != 0 {
+        dict.push(' ');
+    }
+    dict.push('\n');
+    let mut out = b"\x93NUMPY".to_vec();
+    out.extend([version, 0]);
+    if version == 1 {
+        out.extend((dict.len() as u16).to_le_bytes());
+    } else {
+        out.extend((dict.len() as u32).to_le_bytes());
+    }
+    out.extend(dict.as_bytes());
+    out
+}

@@ -1,0 +1,200 @@
+//! Sharded safetensors sets: several shard files and a JSON index whose `weight_map` names the
+//! shard holding each tensor (and whose `metadata.total_size` counts the tensor bytes). The
+//! set is validated as a whole: the index, every shard, and that the two agree.
+
+use std::collections::HashMap;
+use std::fs;
+use std::path::{Path, PathBuf};
+
+use serde_json::Value;
+
+use super::{Checkpoint, TensorEntry};
+use crate::error::{Error, FormatProblem, Result};
+
+/// File names that mark a shard index (common practice: `model.safetensors.index.json`).
+pub const INDEX_SUFFIX: &str = ".safetensors.index.json";
+
+/// An opened, validated sharded set.
+#[derive(Debug)]
+pub struct ShardedSet {
+    index_path: PathBuf,
+    dir: PathBuf,
+    /// The index as read (key order kept).
+    pub index: serde_json::Map<String, Value>,
+    /// Shard file names (relative to the directory) with their opened files, in index order.
+    pub shards: Vec<(String, Checkpoint)>,
+    entries: Vec<TensorEntry>,
+    owner: HashMap<String, usize>,
+}
+
+fn invalid(path: &Path, message: String) -> Error {
+    Error::invalid(path, FormatProblem::Other(message))
+}
+
+/// The index file of a directory, or `path` itself when it is a JSON file.
+pub fn find_index(path: &Path) -> Result<PathBuf> {
+    if !path.is_dir() {
+        return Ok(path.to_path_buf());
+    }
+    let mut found: Vec<PathBuf> = fs::read_dir(path)
+        .map_err(|e| Error::read(path, e))?
+        .filter_map(|e| e.ok().map(|e| e.path()))
+        .filter(|p| {
+            p.file_name()
+                .and_then(|n| n.to_str())
+                .is_some_and(|n| n.ends_with(INDEX_SUFFIX))
+        })
+        .collect();
+    found.sort();
+    match found.len() {
+        1 => Ok(found.remove(0)),
+        0 => Err(invalid(
+            path,
+            format!("directory has no *{INDEX_SUFFIX} shard index"),
+        )),
+        _ => Err(invalid(
+            path,
+            format!(
+                "directory has several shard indexes; name one: {}",
+                found
+                    .iter()
+                    .map(|p| p.display().to_string())
+                    .collect::<Vec<_>>()
+                    .join(", ")
+            ),
+        )),
+    }
+}
+
+impl ShardedSet {
+    /// Open a set from its directory or its index file.
+    pub fn open(path: &Path) -> Result<Self> {
+        let index_path = find_index(path)?;
+        let dir = index_path
+            .parent()
+            .map(Path::to_path_buf)
+            .unwrap_or_else(|| PathBuf::from("."));
+        let text = fs::read(&index_path).map_err(|e| Error::read(&index_path, e))?;
+        if text.len() as u64 > super::safetensors::MAX_HEADER_LEN {
+            return Err(invalid(&index_path, "index is larger than 100 MB".into()));
+        }
+        let index: serde_json::Map<String, Value> = serde_json::from_slice(&text)
+            .map_err(|e| invalid(&index_path, format!("index is not a JSON object: {e}")))?;
+        let Some(Value::Object(weight_map)) = index.get("weight_map") else {
+            return Err(invalid(
+                &index_path,
+                "index has no \"weight_map\" object".into(),
+            ));
+        };
+        let mut shard_names: Vec<String> = Vec::new();
+        let mut wanted: HashMap<String, String> = HashMap::new();
+        for (tensor, shard) in weight_map {
+            let Value::String(shard) = shard else {
+                return Err(invalid(
+                    &index_path,
+                    format!("weight_map entry \"{tensor}\" is not a file name"),
+                ));
+            };
+            let p = Path::new(shard);
+            if p.is_absolute()
+                || p.components()
+                    .any(|c| !matches!(c, std::path::Component::Normal(_)))
+            {
+                return Err(invalid(
+                    &index_path,
+                    format!("shard name \"{shard}\" must be a plain file name inside the set's directory"),
+                ));
+            }
+            if !shard_names.contains(shard) {
+                shard_names.push(shard.clone());
+            }
+            wanted.insert(tensor.clone(), shard.clone());
+        }
+        let mut shards = Vec::new();
+        let mut entries = Vec::new();
+        let mut owner = HashMap::new();
+        for (i, name) in shard_names.iter().enumerate() {
+            let ckpt = Checkpoint::open(dir.join(name))?;
+            for t in ckpt.tensors() {
+                match wanted.get(&t.name) {
+                    Some(s) if s == name => {}
+                    Some(s) => {
+                        return Err(invalid(
+                            &index_path,
+                            format!(
+                                "tensor \"{}\" is in shard {name} but the index says {s}",
+                                t.name
+                            ),
+                        ))
+                    }
+                    None => {
+                        return Err(invalid(
+                            &index_path,
+                            format!(
+                                "tensor \"{}\" in shard {name} is missing from the index",
+                                t.name
+                            ),
+                        ))
+                    }
+                }
+                if owner.insert(t.name.clone(), i).is_some() {
+                    return Err(invalid(
+                        &index_path,
+                        format!("tensor \"{}\" appears in two shards", t.name),
+                    ));
+                }
+                entries.push(t.clone());
+            }
+            shards.push((name.clone(), ckpt));
+        }
+        for (tensor, shard) in &wanted {
+            if !owner.contains_key(tensor) {
+                return Err(invalid(
+                    &index_path,
+                    format!("the index lists \"{tensor}\" in {shard}, which does not hold it"),
+                ));
+            }
+        }
+        Ok(ShardedSet {
+            index_path,
+            dir,
+            index,
+            shards,
+            entries,
+            owner,
+        })
+    }
+
+    /// The index file.
+    pub fn index_path(&self) -> &Path {
+        &self.index_path
+    }
+
+    /// The directory holding the shards.
+    pub fn dir(&self) -> &Path {
+        &self.dir
+    }
+
+    /// All tensors of all shards, shard by shard.
+    pub fn entries(&self) -> &[TensorEntry] {
+        &self.entries
+    }
+
+    /// The shard (index into `shards`) holding a tensor.
+    pub fn shard_of(&self, name: &str) -> Option<usize> {
+        self.owner.get(name).copied()
+    }
+
+    /// Total size of all shard files.
+    pub fn total_file_len(&self) -> u64 {
+        self.shards.iter().map(|(_, c)| c.file_len()).sum()
+    }
+
+    /// Read one tensor's bytes from its shard.
+    pub fn read_bytes(&self, t: &TensorEntry) -> Result<Vec<u8>> {
+        let i = self
+            .shard_of(&t.name)
+            .expect("entries come from the shards");
+        self.shards[i].1.read_bytes(t)
+    }
+}
