@@ -88,6 +88,41 @@ fn parent_dir(path: &Path) -> PathBuf {
     }
 }
 
+/// Create a hidden temporary sibling of `final_path` (same directory, so the final rename stays
+/// on one file system) with `make`, which must fail if the name exists.
+fn create_sibling<T>(
+    final_path: &Path,
+    what: &str,
+    make: impl Fn(&Path) -> io::Result<T>,
+) -> Result<(PathBuf, T)> {
+    let dir = parent_dir(final_path);
+    let base = final_path
+        .file_name()
+        .map(|n| n.to_string_lossy().into_owned())
+        .unwrap_or_default();
+    for attempt in 0..100u32 {
+        let temp_path = dir.join(format!(
+            ".{base}.posgrid-{}-{attempt}.tmp",
+            std::process::id()
+        ));
+        match make(&temp_path) {
+            Ok(made) => return Ok((temp_path, made)),
+            Err(e) if e.kind() == io::ErrorKind::AlreadyExists => continue,
+            Err(e) => {
+                return Err(write_error(
+                    final_path,
+                    &format!("cannot create a temporary {what} beside it"),
+                    e,
+                ))
+            }
+        }
+    }
+    Err(Error::write(
+        final_path,
+        format!("cannot find a free temporary {what} name beside it"),
+    ))
+}
+
 /// A temporary file that becomes `final_path` on [`AtomicFile::commit`] and is removed if
 /// dropped before that.
 pub struct AtomicFile {
@@ -102,44 +137,16 @@ pub struct AtomicFile {
 impl AtomicFile {
     /// Create a new temporary file in the directory of `final_path`.
     pub fn create(final_path: &Path, sync: bool) -> Result<Self> {
-        let dir = parent_dir(final_path);
-        let base = final_path
-            .file_name()
-            .map(|n| n.to_string_lossy().into_owned())
-            .unwrap_or_default();
-        for attempt in 0..100u32 {
-            let temp_path = dir.join(format!(
-                ".{base}.posgrid-{}-{attempt}.tmp",
-                std::process::id()
-            ));
-            match OpenOptions::new()
-                .write(true)
-                .create_new(true)
-                .open(&temp_path)
-            {
-                Ok(file) => {
-                    return Ok(AtomicFile {
-                        final_path: final_path.to_path_buf(),
-                        temp_path,
-                        file: Some(file),
-                        sync,
-                        position: 0,
-                    })
-                }
-                Err(e) if e.kind() == io::ErrorKind::AlreadyExists => continue,
-                Err(e) => {
-                    return Err(write_error(
-                        final_path,
-                        "cannot create a temporary file beside it",
-                        e,
-                    ))
-                }
-            }
-        }
-        Err(Error::write(
-            final_path,
-            "cannot find a free temporary file name beside it",
-        ))
+        let (temp_path, file) = create_sibling(final_path, "file", |p| {
+            OpenOptions::new().write(true).create_new(true).open(p)
+        })?;
+        Ok(AtomicFile {
+            final_path: final_path.to_path_buf(),
+            temp_path,
+            file: Some(file),
+            sync,
+            position: 0,
+        })
     }
 
     /// The open temporary file.
@@ -388,38 +395,12 @@ pub struct AtomicDir {
 
 impl AtomicDir {
     pub fn create(final_path: &Path, sync: bool) -> Result<Self> {
-        let dir = parent_dir(final_path);
-        let base = final_path
-            .file_name()
-            .map(|n| n.to_string_lossy().into_owned())
-            .unwrap_or_default();
-        for attempt in 0..100u32 {
-            let temp_path = dir.join(format!(
-                ".{base}.posgrid-{}-{attempt}.tmp",
-                std::process::id()
-            ));
-            match fs::create_dir(&temp_path) {
-                Ok(()) => {
-                    return Ok(AtomicDir {
-                        final_path: final_path.to_path_buf(),
-                        temp_path,
-                        sync,
-                    })
-                }
-                Err(e) if e.kind() == io::ErrorKind::AlreadyExists => continue,
-                Err(e) => {
-                    return Err(write_error(
-                        final_path,
-                        "cannot create a temporary directory beside it",
-                        e,
-                    ))
-                }
-            }
-        }
-        Err(Error::write(
-            final_path,
-            "cannot find a free temporary directory name beside it",
-        ))
+        let (temp_path, ()) = create_sibling(final_path, "directory", |p| fs::create_dir(p))?;
+        Ok(AtomicDir {
+            final_path: final_path.to_path_buf(),
+            temp_path,
+            sync,
+        })
     }
 
     /// Where to put the files until the commit.

@@ -79,3 +79,149 @@ fn files_from_the_reference_library_round_trip() {
         assert!(said.starts_with("ok"), "{said}");
     }
 }
+
+fn posgrid(args: &[&std::ffi::OsStr]) -> std::process::Output {
+    Command::new(env!("CARGO_BIN_EXE_posgrid"))
+        .args(args)
+        .output()
+        .unwrap()
+}
+
+#[test]
+fn npz_archives_written_by_numpy_round_trip() {
+    let py = python();
+    let script = Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/interop/clients.py");
+    let dir = tempfile::tempdir().unwrap();
+    run(Command::new(&py)
+        .arg(&script)
+        .arg("write-npz")
+        .arg(dir.path()));
+    for (input, output) in [
+        ("plain.npz", "plain-36.npz"),
+        ("compressed.npz", "compressed-36.npz"),
+        ("compressed.npz", "compressed-36.safetensors"),
+    ] {
+        let input = dir.path().join(input);
+        let scan = run(Command::new(env!("CARGO_BIN_EXE_posgrid"))
+            .arg("scan")
+            .arg(&input)
+            .arg("--json"));
+        let v: serde_json::Value = serde_json::from_str(&scan).unwrap();
+        assert_eq!(v["format"], "npz");
+        assert_eq!(v["tables"][0]["grid"], serde_json::json!([6, 6]));
+        assert_eq!(v["tables"][0]["patch"], 4, "channels-last embedding/kernel");
+        let output = dir.path().join(output);
+        run(Command::new(env!("CARGO_BIN_EXE_posgrid"))
+            .arg("resize")
+            .arg(&input)
+            .arg("-o")
+            .arg(&output)
+            .args(["--image", "36", "--quiet"]));
+        let said = run(Command::new(&py)
+            .arg(&script)
+            .arg("check-npz")
+            .arg(&input)
+            .arg(&output)
+            .arg("9"));
+        assert!(said.starts_with("ok"), "{said}");
+    }
+    // A Fortran-order table is refused with the reason; nothing is written.
+    let fortran = dir.path().join("fortran.npz");
+    let out = dir.path().join("fortran-36.npz");
+    let o = posgrid(&[
+        "resize".as_ref(),
+        fortran.as_os_str(),
+        "-o".as_ref(),
+        out.as_os_str(),
+        "--grid".as_ref(),
+        "9".as_ref(),
+        "--tensor".as_ref(),
+        "Transformer/posembed_input/pos_embedding".as_ref(),
+    ]);
+    let err = String::from_utf8_lossy(&o.stderr);
+    assert_eq!(o.status.code(), Some(6), "{err}");
+    assert!(err.contains("Fortran"), "{err}");
+    assert!(!out.exists());
+}
+
+#[test]
+fn sharded_sets_from_the_reference_library_round_trip() {
+    let py = python();
+    let script = Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/interop/clients.py");
+    let dir = tempfile::tempdir().unwrap();
+    let input = dir.path().join("set");
+    std::fs::create_dir(&input).unwrap();
+    run(Command::new(&py)
+        .arg(&script)
+        .arg("write-sharded")
+        .arg(&input));
+    let index = input.join("model.safetensors.index.json");
+    for target in [&input, &index] {
+        let scan = run(Command::new(env!("CARGO_BIN_EXE_posgrid"))
+            .arg("scan")
+            .arg(target)
+            .arg("--json"));
+        let v: serde_json::Value = serde_json::from_str(&scan).unwrap();
+        assert_eq!(v["format"], "safetensors-sharded");
+        assert_eq!(
+            v["tables"][0]["companions"],
+            serde_json::json!(["vision_model.embeddings.position_ids"])
+        );
+    }
+    let output = dir.path().join("set-36");
+    let json = run(Command::new(env!("CARGO_BIN_EXE_posgrid"))
+        .arg("resize")
+        .arg(&input)
+        .arg("-o")
+        .arg(&output)
+        .args(["--image", "36", "--json"]));
+    let v: serde_json::Value = serde_json::from_str(&json).unwrap();
+    assert_eq!(
+        v["shards_copied"],
+        serde_json::json!(["model-00003-of-00003.safetensors"])
+    );
+    assert_eq!(v["shards_rewritten"].as_array().unwrap().len(), 2);
+    let said = run(Command::new(&py)
+        .arg(&script)
+        .arg("check-sharded")
+        .arg(&input)
+        .arg(&output)
+        .arg("9"));
+    assert!(said.starts_with("ok"), "{said}");
+    // An existing OUTDIR needs --force; a broken set writes nothing.
+    let o = posgrid(&[
+        "resize".as_ref(),
+        input.as_os_str(),
+        "-o".as_ref(),
+        output.as_os_str(),
+        "--grid".as_ref(),
+        "9".as_ref(),
+    ]);
+    assert_eq!(o.status.code(), Some(5));
+    std::fs::remove_file(input.join("model-00003-of-00003.safetensors")).unwrap();
+    let other = dir.path().join("set-other");
+    let o = posgrid(&[
+        "resize".as_ref(),
+        input.as_os_str(),
+        "-o".as_ref(),
+        other.as_os_str(),
+        "--grid".as_ref(),
+        "9".as_ref(),
+    ]);
+    assert_eq!(
+        o.status.code(),
+        Some(3),
+        "{}",
+        String::from_utf8_lossy(&o.stderr)
+    );
+    assert!(!other.exists());
+    let leftovers: Vec<_> = std::fs::read_dir(dir.path())
+        .unwrap()
+        .map(|e| e.unwrap().file_name())
+        .collect();
+    assert_eq!(
+        leftovers.len(),
+        2,
+        "no temporary directory left: {leftovers:?}"
+    );
+}

@@ -7,25 +7,10 @@ mod common;
 use std::process::Command;
 
 use common::*;
-use posgrid::checkpoint::safetensors::parse_bytes;
-use posgrid::checkpoint::{TensorEntry, TensorSource};
+use posgrid::checkpoint::InMemory;
 use posgrid::discover::{discover, Hints};
 use proptest::prelude::*;
 use safetensors::Dtype;
-
-struct InMemory<'a> {
-    bytes: &'a [u8],
-    entries: Vec<TensorEntry>,
-}
-
-impl TensorSource for InMemory<'_> {
-    fn entries(&self) -> &[TensorEntry] {
-        &self.entries
-    }
-    fn bytes(&self, t: &TensorEntry) -> posgrid::Result<Vec<u8>> {
-        Ok(self.bytes[t.begin as usize..t.end as usize].to_vec())
-    }
-}
 
 fn valid_file() -> Vec<u8> {
     let dir = tempfile::tempdir().unwrap();
@@ -76,8 +61,7 @@ proptest! {
     fn reader_and_discovery_never_panic(flips in prop::collection::vec((any::<usize>(), any::<u8>()), 0..8),
                                         cut in prop::option::of(any::<usize>())) {
         let bytes = mutate(valid_file_cached().to_vec(), &flips, cut);
-        if let Ok(header) = parse_bytes(&bytes) {
-            let source = InMemory { bytes: &bytes, entries: header.tensors };
+        if let Ok(source) = InMemory::parse(&bytes) {
             let _ = discover(&source, &Hints::default());
         }
     }

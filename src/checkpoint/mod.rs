@@ -184,7 +184,34 @@ impl TensorSource for Checkpoint {
     }
 }
 
-/// Any checkpoint posgrid reads: a single file or a sharded set.
+/// A whole safetensors file held in memory, with its parsed entries: for callers that already
+/// have the bytes, and for the tests and the fuzz target.
+pub struct InMemory<'a> {
+    pub bytes: &'a [u8],
+    pub entries: Vec<TensorEntry>,
+}
+
+impl<'a> InMemory<'a> {
+    /// Parse and validate a safetensors file held in memory.
+    pub fn parse(bytes: &'a [u8]) -> std::result::Result<Self, crate::error::FormatProblem> {
+        let header = safetensors::parse_bytes(bytes)?;
+        Ok(InMemory {
+            bytes,
+            entries: header.tensors,
+        })
+    }
+}
+
+impl TensorSource for InMemory<'_> {
+    fn entries(&self) -> &[TensorEntry] {
+        &self.entries
+    }
+    fn bytes(&self, t: &TensorEntry) -> Result<Vec<u8>> {
+        Ok(self.bytes[t.begin as usize..t.end as usize].to_vec())
+    }
+}
+
+/// Any checkpoint posgrid reads: a single file, a sharded set or an npz archive.
 #[derive(Debug)]
 pub enum Source {
     Single(Checkpoint),

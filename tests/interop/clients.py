@@ -3,6 +3,11 @@
     python clients.py write DIR      write F32, F16 and BF16 checkpoints with metadata
     python clients.py check IN OUT GRID   check posgrid's OUT against IN: every untouched
                                           tensor equal, the table resized to GRID x GRID
+    python clients.py write-npz DIR       JAX-style npz files with numpy (savez, savez_compressed,
+                                          and one with a Fortran-order table)
+    python clients.py check-npz IN OUT GRID
+    python clients.py write-sharded DIR   a two-shard set (shards by the reference library)
+    python clients.py check-sharded IN OUT GRID
 """
 
 import json
@@ -89,5 +94,97 @@ def check(inp, out, grid):
     print(f"ok {out}")
 
 
+JAX_TABLE = "Transformer/posembed_input/pos_embedding"
+
+
+def jax_arrays():
+    rng = np.random.default_rng(5)
+    return {
+        JAX_TABLE: smooth_table().astype(np.float32),
+        "embedding/kernel": rng.standard_normal((4, 4, 3, D)).astype(np.float32),
+        "embedding/bias": np.zeros(D, np.float32),
+        "Transformer/encoderblock_0/MlpBlock_3/Dense_0/kernel": rng.standard_normal((D, 4 * D)).astype(np.float32),
+        "cls": rng.standard_normal((1, 1, D)).astype(np.float32),
+        "head/kernel": rng.standard_normal((D, 10)).astype(">f4"),
+    }
+
+
+def write_npz(folder):
+    np.savez(f"{folder}/plain.npz", **jax_arrays())
+    np.savez_compressed(f"{folder}/compressed.npz", **jax_arrays())
+    arrays = jax_arrays()
+    arrays[JAX_TABLE] = np.asfortranarray(arrays[JAX_TABLE][0])  # [N, D], Fortran order
+    np.savez(f"{folder}/fortran.npz", **arrays)
+
+
+def check_npz(inp, out, grid):
+    grid = int(grid)
+    a = np.load(inp)
+    b = np.load(out) if out.endswith(".npz") else load_file(out)
+    keys_b = list(b.files) if hasattr(b, "files") else list(b.keys())
+    assert sorted(a.files) == sorted(keys_b), (a.files, keys_b)
+    for k in a.files:
+        if k == JAX_TABLE:
+            assert b[k].shape == (1, 1 + grid * grid, D), b[k].shape
+            assert b[k].dtype == np.float32
+            assert np.array_equal(b[k][0, 0], a[k][0, 0]), "class slot kept"
+        else:
+            assert np.array_equal(a[k], b[k]), k
+            if hasattr(b, "files"):
+                assert a[k].dtype == b[k].dtype, (k, a[k].dtype, b[k].dtype)
+    print(f"ok {out}")
+
+
+def write_sharded(folder):
+    rng = np.random.default_rng(9)
+    shard1 = {
+        "vision_model.embeddings.position_embedding.weight": smooth_table()[0].astype(np.float32),
+        "vision_model.embeddings.patch_embedding.weight": rng.standard_normal((D, 3, 4, 4)).astype(np.float32),
+    }
+    shard2 = {
+        "vision_model.embeddings.position_ids": np.arange(1 + GRID * GRID, dtype=np.int64)[None],
+        "vision_model.encoder.layers.0.mlp.fc1.weight": rng.standard_normal((4 * D, D)).astype(np.float32),
+    }
+    shard3 = {"vision_model.post_layernorm.weight": np.ones(D, np.float32)}
+    weight_map = {}
+    for i, shard in enumerate([shard1, shard2, shard3], 1):
+        name = f"model-{i:05d}-of-00003.safetensors"
+        save_file(shard, f"{folder}/{name}", metadata={"format": "pt"})
+        weight_map.update({k: name for k in shard})
+    total = sum(v.nbytes for s in (shard1, shard2, shard3) for v in s.values())
+    with open(f"{folder}/model.safetensors.index.json", "w") as f:
+        json.dump({"metadata": {"total_size": total}, "weight_map": weight_map}, f, indent=2)
+    with open(f"{folder}/config.json", "w") as f:
+        json.dump({"image_size": GRID * 4}, f)
+
+
+def check_sharded(inp, out, grid):
+    grid = int(grid)
+    index_in = json.load(open(f"{inp}/model.safetensors.index.json"))
+    index = json.load(open(f"{out}/model.safetensors.index.json"))
+    assert index["weight_map"] == index_in["weight_map"]
+    total = 0
+    for name in sorted(set(index["weight_map"].values())):
+        a, b = load_file(f"{inp}/{name}"), load_file(f"{out}/{name}")
+        for k, v in b.items():
+            total += v.nbytes
+            if k.endswith("position_embedding.weight"):
+                assert v.shape == (1 + grid * grid, D), v.shape
+            elif k.endswith("position_ids"):
+                assert np.array_equal(v, np.arange(1 + grid * grid)[None]), v
+            else:
+                assert np.array_equal(a[k], v) and a[k].dtype == v.dtype, k
+    assert index["metadata"]["total_size"] == total, (index["metadata"], total)
+    assert open(f"{out}/config.json").read() == open(f"{inp}/config.json").read()
+    print(f"ok {out}")
+
+
 if __name__ == "__main__":
-    {"write": write, "check": check}[sys.argv[1]](*sys.argv[2:])
+    {
+        "write": write,
+        "check": check,
+        "write-npz": write_npz,
+        "check-npz": check_npz,
+        "write-sharded": write_sharded,
+        "check-sharded": check_sharded,
+    }[sys.argv[1]](*sys.argv[2:])
