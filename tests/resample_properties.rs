@@ -95,6 +95,22 @@ proptest! {
     }
 
     #[test]
+    fn array_views_in_any_layout_give_the_same_result(opts in any_options(), src in grid(), dst in grid(), seed in any::<u64>()) {
+        // A [W, H, D] array with its first two axes swapped is an [H, W, D] view that is not
+        // contiguous; the result must equal resampling the same values laid out row-major.
+        let (h, w) = src;
+        let d = 3;
+        let values: Vec<f32> = (0..h * w * d).map(|i| ((i as u64 * 2654435761 + seed) % 1000) as f32 / 500.0 - 1.0).collect();
+        let transposed = ndarray::Array3::from_shape_vec((w, h, d), values).unwrap();
+        let view = transposed.view().permuted_axes([1, 0, 2]);
+        let flat: Vec<f32> = view.iter().copied().collect();
+        let expected = resample(&flat, src, d, dst, &opts).unwrap();
+        let got = posgrid::resample::resample_array(view, dst, &opts).unwrap();
+        prop_assert_eq!(got.dim(), (dst.0, dst.1, d));
+        prop_assert_eq!(got.iter().copied().collect::<Vec<f32>>(), expected);
+    }
+
+    #[test]
     fn same_grid_is_an_exact_copy(opts in any_options(), src in grid(), v in prop::collection::vec(any::<f32>(), 1..50)) {
         let n = src.0 * src.1;
         let table: Vec<f32> = (0..n).map(|i| v[i % v.len()]).collect();

@@ -92,6 +92,19 @@ pub fn resample<T: Sample>(
     Ok(apply(src, (h, w), d, &down, &across))
 }
 
+/// Resample an `[H, W, D]` array view (any memory layout) to `[oh, ow, D]`.
+pub fn resample_array<T: Sample>(
+    table: ndarray::ArrayView3<'_, T>,
+    (oh, ow): (usize, usize),
+    opts: &Options,
+) -> Result<ndarray::Array3<T>, ResampleError> {
+    let (h, w, d) = table.dim();
+    let contiguous = table.as_standard_layout();
+    let flat = contiguous.as_slice().expect("standard layout is contiguous");
+    let out = resample(flat, (h, w), d, (oh, ow), opts)?;
+    Ok(ndarray::Array3::from_shape_vec((oh, ow, d), out).expect("resample returns oh*ow*d values"))
+}
+
 /// Apply precomputed weight tables: first along rows (W → W'), then down columns (H → H').
 pub fn apply<T: Sample>(
     src: &[T],
