@@ -100,7 +100,9 @@ pub fn resample_array<T: Sample>(
 ) -> Result<ndarray::Array3<T>, ResampleError> {
     let (h, w, d) = table.dim();
     let contiguous = table.as_standard_layout();
-    let flat = contiguous.as_slice().expect("standard layout is contiguous");
+    let flat = contiguous
+        .as_slice()
+        .expect("standard layout is contiguous");
     let out = resample(flat, (h, w), d, (oh, ow), opts)?;
     Ok(ndarray::Array3::from_shape_vec((oh, ow, d), out).expect("resample returns oh*ow*d values"))
 }
