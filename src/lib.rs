@@ -4,6 +4,21 @@
 //! Data flows one way: [`checkpoint`] (read and validate) → [`discover`] (find tables) →
 //! [`plan`] (what changes) → [`resample`] (the maths) → [`write`] (stream and rename), with
 //! [`resize`] running the whole job and [`report`] rendering results for people and scripts.
+//!
+//! The engine on its own, on a `[H, W, D]` table held row-major:
+//!
+//! ```
+//! use posgrid::resample::{resample, Options};
+//!
+//! // A 2x2 grid of 1-wide rows, enlarged to 4x4 with the defaults (bicubic, half-pixel).
+//! let table = [1.0f32, 2.0, 3.0, 4.0];
+//! let out = resample(&table, (2, 2), 1, (4, 4), &Options::default()).unwrap();
+//! assert_eq!(out.len(), 16);
+//! // Resampling to the same grid is an exact copy.
+//! assert_eq!(resample(&table, (2, 2), 1, (2, 2), &Options::default()).unwrap(), table);
+//! ```
+//!
+//! The whole job, as the `resize` command runs it, is [`resize::run`].
 
 pub mod checkpoint;
 pub mod cli;
