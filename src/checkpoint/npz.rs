@@ -55,12 +55,13 @@ fn invalid(path: &Path, message: String) -> Error {
 
 /// The safetensors dtype and byte order of a `.npy` dtype text.
 pub fn dtype_from_descr(descr: &str) -> Option<(Dtype, bool)> {
-    let (order, code) = descr.split_at(1.min(descr.len()));
-    let big = match order {
-        "<" | "|" | "=" => false,
-        ">" => true,
+    let mut chars = descr.chars();
+    let big = match chars.next()? {
+        '<' | '|' | '=' => false,
+        '>' => true,
         _ => return None,
     };
+    let code = chars.as_str();
     let dtype = match code {
         "f2" => Dtype::F16,
         "f4" => Dtype::F32,
@@ -389,4 +390,41 @@ pub fn npy_header(descr: &str, shape: &[usize]) -> Vec<u8> {
     }
     out.extend(dict.as_bytes());
     out
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn headers_numpy_writes_parse() {
+        // The layout numpy's format module documents: magic, version 1.0, u16 length, dict.
+        let h = npy_header("<f4", &[1, 197, 8]);
+        assert_eq!(h.len() % 64, 0, "data starts on a 64-byte boundary");
+        let p = parse_npy_header(&h).unwrap();
+        assert_eq!(
+            (p.descr.as_str(), p.fortran_order, p.shape, p.data_offset),
+            ("<f4", false, vec![1, 197, 8], h.len())
+        );
+        assert_eq!(
+            parse_npy_header(&npy_header("<i8", &[5])).unwrap().shape,
+            vec![5]
+        );
+        assert_eq!(
+            parse_npy_header(&npy_header("<f2", &[])).unwrap().shape,
+            Vec::<usize>::new()
+        );
+    }
+
+    #[test]
+    fn fuzz_finding_multibyte_dtype_text_is_an_error_not_a_panic() {
+        // Found by the npy_header fuzz target: a descr starting with a two-byte character.
+        let input = b"\x93NUMPY\x01\x00v\x00{'descr': '\xc4\x9f3' 'fortran_order': False, 'shape': (1, 00000000000000000007301183093571962653, 8), }               \x00\x00\x00\x00\x00";
+        if let Ok(h) = parse_npy_header(input) {
+            assert!(dtype_from_descr(&h.descr).is_none());
+        }
+        assert!(dtype_from_descr("\u{11f}3").is_none());
+        assert_eq!(dtype_from_descr(">f8"), Some((Dtype::F64, true)));
+        assert_eq!(dtype_from_descr("|u1"), Some((Dtype::U8, false)));
+    }
 }
