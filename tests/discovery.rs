@@ -16,7 +16,7 @@ const DTYPES: [Dtype; 2] = [Dtype::F32, Dtype::BF16];
 
 #[test]
 fn single_tower_with_class_slot_and_patch_kernel() {
-    // timm-style names: pos_embed [1, 1 + 14·14, D], patch_embed.proj.weight [D, 3, 16, 16].
+    // Names common in image-classification releases: pos_embed [1, 1 + 14·14, D], patch_embed.proj.weight [D, 3, 16, 16].
     for dt in DTYPES {
         let dir = tempfile::tempdir().unwrap();
         let d = 32;
