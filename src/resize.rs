@@ -213,7 +213,12 @@ pub fn run(job: &ResizeJob) -> Result<ResizeReport> {
                 );
             }
             if !job.dry_run {
-                let mut progress = progress_for(job, data_size);
+                // The ZIP writer reports no progress; a bar is drawn for safetensors output only.
+                let mut progress: Box<dyn Progress> = if to_npz {
+                    Box::new(Silent)
+                } else {
+                    progress_for(job, data_size)
+                };
                 let mut out = AtomicFile::create(&job.output, job.sync)?;
                 match (&source, to_npz) {
                     (Source::Npz(n), true) => output::patch_npz(n, &plan, &new_data, &mut out)?,
