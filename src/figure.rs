@@ -122,8 +122,9 @@ pub fn figure(before: &GridRows, after: Option<&GridRows>, refs: usize) -> Drawn
             f.score, f.min, f.worst[0], f.worst[1]
         ));
     }
+    let prefix = if after.is_some() { "before: " } else { "" };
     let mut panels = vec![Panel {
-        label: format!("before: {}x{} grid", t.grid[0], t.grid[1]),
+        label: format!("{prefix}{}x{} grid", t.grid[0], t.grid[1]),
         set: &b,
     }];
     if let (Some((set, _)), Some(after)) = (&a, after) {

@@ -56,7 +56,12 @@ pub fn draw(fig: &Figure) -> Canvas {
         sizes.iter().map(|s| s.0 as i64).sum::<i64>() + PANEL_GAP * (sizes.len() as i64 - 1);
     let panel_h = sizes.iter().map(|s| s.1).max().unwrap_or(0) as i64;
     let bar_w = 22i64;
-    let width = (MARGIN + panels_w + 30 + bar_w + 70 + MARGIN).max(720);
+    let text_w = Canvas::text_size(&fig.title, 3)
+        .0
+        .max(Canvas::text_size(&fig.subtitle, TEXT).0) as i64;
+    let width = (MARGIN + panels_w + 30 + bar_w + 70 + MARGIN)
+        .max(2 * MARGIN + text_w)
+        .max(720);
     let title_h = 3 * 8;
     let panels_top = MARGIN + title_h + 14 + 16 + 30 + 22;
     let chart_top = panels_top + panel_h + 46;
