@@ -179,6 +179,14 @@ so the output is whole or absent; but after a power loss a recent output may be 
 can be regenerated."
     )]
     pub no_sync: bool,
+    /// Build fixed sine-cosine tables anew on the target grid instead of resampling them.
+    #[arg(
+        long,
+        long_help = "Build tables that follow the fixed 2-D sine-cosine construction (scan shows \
+kind sincos) anew on the target grid, with the same axis order, instead of resampling them. Class rows are \
+kept as they are. Learned tables are resampled as usual."
+    )]
+    pub rebuild_sincos: bool,
     /// Resize tables that hold NaN or infinity instead of refusing them.
     #[arg(long)]
     pub allow_nonfinite: bool,
@@ -324,6 +332,7 @@ fn resize_cmd(args: ResizeArgs) -> Result<i32> {
             },
             allow_nonfinite: args.allow_nonfinite,
             memory_limit: args.memory_limit,
+            rebuild_sincos: args.rebuild_sincos,
         },
         dry_run: args.dry_run,
         force: args.force,

@@ -32,6 +32,8 @@ pub struct Request {
     pub allow_nonfinite: bool,
     /// Refuse a table whose output would need more bytes than this.
     pub memory_limit: u64,
+    /// Build fixed sine-cosine tables anew on the target grid instead of resampling them.
+    pub rebuild_sincos: bool,
 }
 
 /// One table to resample.
@@ -46,6 +48,8 @@ pub struct TableChange {
     pub options: Options,
     /// Whether antialiasing is applied on at least one axis.
     pub antialias_applied: bool,
+    /// A sine-cosine table built anew on the target grid (not resampled).
+    pub rebuild: bool,
 }
 
 /// One position-id buffer to rewrite as 0..N'-1.
@@ -164,7 +168,9 @@ pub fn build(ckpt: &dyn TensorSource, found: &Discovery, request: &Request) -> R
                 ),
             ));
         }
-        let antialias_applied = request.options.kernel != resample::Kernel::Nearest
+        let rebuild = request.rebuild_sincos && table.kind == crate::discover::Kind::Sincos;
+        let antialias_applied = !rebuild
+            && request.options.kernel != resample::Kernel::Nearest
             && request.options.kernel != resample::Kernel::Area
             && (request.options.antialias_applies(from[0], to[0])
                 || request.options.antialias_applies(from[1], to[1]));
@@ -199,6 +205,7 @@ pub fn build(ckpt: &dyn TensorSource, found: &Discovery, request: &Request) -> R
             new_shape,
             options: request.options,
             antialias_applied,
+            rebuild,
         });
     }
     Ok(plan)

@@ -124,6 +124,9 @@ pub fn resize_text(r: &ResizeReport) -> String {
     }
     for t in &r.tables {
         let mut options = format!("{}, {}, {}", t.kernel, t.coords, t.edges);
+        if t.method == "rebuilt" {
+            options = "sine-cosine table built anew".to_string();
+        }
         if let Some(a) = t.cubic_a {
             let _ = write!(options, ", a = {a}");
         }

@@ -60,6 +60,8 @@ pub struct TableReport {
     pub edges: resample::Edges,
     pub antialias: bool,
     pub cubic_a: Option<f64>,
+    /// `resampled`, or `rebuilt` for a sine-cosine table built anew on the target grid.
+    pub method: &'static str,
     pub companions: Vec<String>,
     /// Similarity-map fidelity; null until computed.
     pub fidelity: Option<f64>,
@@ -104,7 +106,12 @@ fn table_report(change: &TableChange) -> TableReport {
         coords: o.coords,
         edges: o.edges,
         antialias: change.antialias_applied,
-        cubic_a: (o.kernel == resample::Kernel::Bicubic).then_some(o.cubic_a),
+        cubic_a: (o.kernel == resample::Kernel::Bicubic && !change.rebuild).then_some(o.cubic_a),
+        method: if change.rebuild {
+            "rebuilt"
+        } else {
+            "resampled"
+        },
         companions: change.table.companions.clone(),
         fidelity: None,
     }
@@ -475,8 +482,16 @@ fn resized_table(
             (change.from[0], change.from[1]),
             (change.to[0], change.to[1]),
         );
-        resample::resample(v, from, change.table.dim, to, &change.options)
-            .map_err(|e| Error::Usage(format!("{}: {e}", change.table.name)))
+        let t = &change.table;
+        match (change.rebuild, t.sincos_first_axis) {
+            (true, Some(first)) => Ok(crate::sincos::build(to.0, to.1, t.dim, first)
+                .expect("a recognised sine-cosine table has a width divisible by 4")
+                .into_iter()
+                .map(T::from_f64)
+                .collect()),
+            _ => resample::resample(v, from, t.dim, to, &change.options)
+                .map_err(|e| Error::Usage(format!("{}: {e}", t.name))),
+        }
     }
     let (encoded, before, after) = if entry.dtype == Dtype::F64 {
         let v = values::decode_f64(entry.dtype, grid).expect("float dtype");
@@ -544,6 +559,7 @@ pub(crate) fn provenance(plan: &Plan, previous: Option<String>) -> String {
         .map(|c| {
             serde_json::json!({
                 "name": c.table.name,
+                "method": if c.rebuild { "rebuilt" } else { "resampled" },
                 "from": c.from,
                 "to": c.to,
                 "slots": c.table.slots,

@@ -611,3 +611,67 @@ fn map_command_draws_before_and_after_and_scores_them() {
     ]);
     assert_eq!(code(&o), 0);
 }
+
+#[test]
+fn sine_cosine_tables_can_be_built_anew_on_the_target_grid() {
+    // The reference is the trade's formula, written independently in tests/common.
+    let dir = tempfile::tempdir().unwrap();
+    let d = 32;
+    let input = write(
+        dir.path(),
+        "mae.safetensors",
+        &[floats(
+            "pos_embed",
+            Dtype::F32,
+            &[1, 65, d],
+            &sincos_table(1, 8, 8, d),
+        )],
+        None,
+    );
+    let out = dir.path().join("o.safetensors");
+    let o = posgrid(&[
+        "resize",
+        s(&input),
+        "-o",
+        s(&out),
+        "--grid",
+        "12",
+        "--rebuild-sincos",
+        "--json",
+    ]);
+    assert_eq!(code(&o), 0, "{}", String::from_utf8_lossy(&o.stderr));
+    let report: serde_json::Value = serde_json::from_slice(&o.stdout).unwrap();
+    assert_eq!(report["tables"][0]["method"], "rebuilt");
+    let bytes = load(&out);
+    let st = SafeTensors::deserialize(&bytes).unwrap();
+    let t = st.tensor("pos_embed").unwrap();
+    let got: Vec<f32> = t
+        .data()
+        .chunks(4)
+        .map(|c| f32::from_le_bytes(c.try_into().unwrap()))
+        .collect();
+    let expected = sincos_table(1, 12, 12, d);
+    assert_eq!(got.len(), expected.len());
+    for (g, e) in got.iter().zip(&expected) {
+        assert!((*g as f64 - e).abs() < 1e-6, "{g} vs {e}");
+    }
+    // Without the flag the table is resampled like any other, so it no longer follows the formula.
+    let out2 = dir.path().join("o2.safetensors");
+    assert_eq!(
+        code(&posgrid(&[
+            "resize",
+            s(&input),
+            "-o",
+            s(&out2),
+            "--grid",
+            "12"
+        ])),
+        0
+    );
+    let scan: serde_json::Value =
+        serde_json::from_slice(&posgrid(&["scan", s(&out2), "--json"]).stdout).unwrap();
+    assert_eq!(scan["tables"][0]["kind"], "learned");
+    let scan: serde_json::Value =
+        serde_json::from_slice(&posgrid(&["scan", s(&out), "--json"]).stdout).unwrap();
+    assert_eq!(scan["tables"][0]["kind"], "sincos");
+}
