@@ -61,6 +61,25 @@ fn member_options(method: CompressionMethod, len: u64) -> SimpleFileOptions {
         .large_file(len >= u32::MAX as u64 / 2)
 }
 
+/// Add one `.npy` member: its header, then its data.
+fn write_member(
+    zip: &mut ZipWriter<std::fs::File>,
+    out: &AtomicFile,
+    name: String,
+    method: CompressionMethod,
+    header: &[u8],
+    data: &[u8],
+) -> Result<()> {
+    zip.start_file(
+        name,
+        member_options(method, (header.len() + data.len()) as u64),
+    )
+    .map_err(|e| zip_error(out, e))?;
+    std::io::Write::write_all(zip, header)
+        .and_then(|_| std::io::Write::write_all(zip, data))
+        .map_err(|e| write::write_error(out.final_path(), "cannot write", e))
+}
+
 /// An npz archive like `src`: changed arrays rewritten (little-endian, same dtype and member
 /// compression), every other member copied as its stored bytes.
 pub fn patch_npz(
@@ -104,14 +123,7 @@ pub fn patch_npz(
                 } else {
                     CompressionMethod::Deflated
                 };
-                zip.start_file(
-                    m.file_name.clone(),
-                    member_options(method, (header.len() + bytes.len()) as u64),
-                )
-                .map_err(|e| zip_error(out, e))?;
-                std::io::Write::write_all(&mut zip, &header)
-                    .and_then(|_| std::io::Write::write_all(&mut zip, bytes))
-                    .map_err(|e| write::write_error(out.final_path(), "cannot write", e))?;
+                write_member(&mut zip, out, m.file_name.clone(), method, &header, bytes)?;
             }
             None => {
                 let member = archive.by_index_raw(index).map_err(|e| {
@@ -196,17 +208,14 @@ pub fn to_npz(
         };
         let shape = plan.new_shape(&t.name).unwrap_or(&t.shape);
         let header = npz::npy_header(npz::descr_of(t.dtype).expect("checked above"), shape);
-        zip.start_file(
+        write_member(
+            &mut zip,
+            out,
             format!("{}.npy", t.name),
-            member_options(
-                CompressionMethod::Stored,
-                (header.len() + bytes.len()) as u64,
-            ),
-        )
-        .map_err(|e| zip_error(out, e))?;
-        std::io::Write::write_all(&mut zip, &header)
-            .and_then(|_| std::io::Write::write_all(&mut zip, bytes))
-            .map_err(|e| write::write_error(out.final_path(), "cannot write", e))?;
+            CompressionMethod::Stored,
+            &header,
+            bytes,
+        )?;
     }
     zip.finish().map_err(|e| zip_error(out, e))?;
     Ok(())

@@ -63,7 +63,7 @@ pub struct TableReport {
     /// `resampled`, or `rebuilt` for a sine-cosine table built anew on the target grid.
     pub method: &'static str,
     pub companions: Vec<String>,
-    /// Similarity-map fidelity; null until computed.
+    /// Similarity-map fidelity of the resized table (1 is perfect).
     pub fidelity: Option<f64>,
 }
 

@@ -14,6 +14,13 @@ pub enum FirstAxis {
     Column,
 }
 
+/// ω_k = 1 / 10000^(k / quarter) for k < quarter (a quarter of the channels per sin or cos).
+fn frequencies(quarter: usize) -> Vec<f64> {
+    (0..quarter)
+        .map(|k| 1.0 / 10000f64.powf(k as f64 / quarter as f64))
+        .collect()
+}
+
 /// Build the `[h·w, dim]` grid rows, row-major. `dim` must be a multiple of 4.
 pub fn build(h: usize, w: usize, dim: usize, first: FirstAxis) -> Option<Vec<f64>> {
     if dim == 0 || dim % 4 != 0 {
@@ -21,9 +28,7 @@ pub fn build(h: usize, w: usize, dim: usize, first: FirstAxis) -> Option<Vec<f64
     }
     let half = dim / 2;
     let quarter = half / 2;
-    let omega: Vec<f64> = (0..quarter)
-        .map(|k| 1.0 / 10000f64.powf(k as f64 / quarter as f64))
-        .collect();
+    let omega = frequencies(quarter);
     let mut out = vec![0.0; h * w * dim];
     for r in 0..h {
         for c in 0..w {
@@ -50,9 +55,7 @@ pub fn matches(grid_rows: &[f64], h: usize, w: usize, dim: usize, tol: f64) -> O
         return None;
     }
     let quarter = dim / 4;
-    let omega: Vec<f64> = (0..quarter)
-        .map(|k| 1.0 / 10000f64.powf(k as f64 / quarter as f64))
-        .collect();
+    let omega = frequencies(quarter);
     [FirstAxis::Row, FirstAxis::Column]
         .into_iter()
         .find(|&first| {

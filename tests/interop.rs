@@ -48,6 +48,23 @@ fn run(cmd: &mut Command) -> String {
     String::from_utf8_lossy(&out.stdout).into_owned()
 }
 
+/// Resize `input` to 36 px (a 9x9 grid) and have the Python side check the output with `verb`.
+fn resize_and_check(py: &Path, script: &Path, verb: &str, input: &Path, output: &Path) {
+    run(Command::new(env!("CARGO_BIN_EXE_posgrid"))
+        .arg("resize")
+        .arg(input)
+        .arg("-o")
+        .arg(output)
+        .args(["--image", "36", "--quiet"]));
+    let said = run(Command::new(py)
+        .arg(script)
+        .arg(verb)
+        .arg(input)
+        .arg(output)
+        .arg("9"));
+    assert!(said.starts_with("ok"), "{said}");
+}
+
 #[test]
 fn files_from_the_reference_library_round_trip() {
     let py = python();
@@ -64,19 +81,7 @@ fn files_from_the_reference_library_round_trip() {
         assert_eq!(v["tables"][0]["grid"], serde_json::json!([6, 6]), "{dtype}");
         assert_eq!(v["tables"][0]["patch"], 4, "{dtype}");
         let output = dir.path().join(format!("{dtype}-out.safetensors"));
-        run(Command::new(env!("CARGO_BIN_EXE_posgrid"))
-            .arg("resize")
-            .arg(&input)
-            .arg("-o")
-            .arg(&output)
-            .args(["--image", "36", "--quiet"]));
-        let said = run(Command::new(&py)
-            .arg(&script)
-            .arg("check")
-            .arg(&input)
-            .arg(&output)
-            .arg("9"));
-        assert!(said.starts_with("ok"), "{said}");
+        resize_and_check(&py, &script, "check", &input, &output);
     }
 }
 
@@ -111,19 +116,7 @@ fn npz_archives_written_by_numpy_round_trip() {
         assert_eq!(v["tables"][0]["grid"], serde_json::json!([6, 6]));
         assert_eq!(v["tables"][0]["patch"], 4, "channels-last embedding/kernel");
         let output = dir.path().join(output);
-        run(Command::new(env!("CARGO_BIN_EXE_posgrid"))
-            .arg("resize")
-            .arg(&input)
-            .arg("-o")
-            .arg(&output)
-            .args(["--image", "36", "--quiet"]));
-        let said = run(Command::new(&py)
-            .arg(&script)
-            .arg("check-npz")
-            .arg(&input)
-            .arg(&output)
-            .arg("9"));
-        assert!(said.starts_with("ok"), "{said}");
+        resize_and_check(&py, &script, "check-npz", &input, &output);
     }
     // A Fortran-order table is refused with the reason; nothing is written.
     let fortran = dir.path().join("fortran.npz");
