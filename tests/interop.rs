@@ -8,7 +8,14 @@
 use std::path::{Path, PathBuf};
 use std::process::Command;
 
+/// The venv's Python, made once per test run: the tests run in parallel, and two of them
+/// creating the same venv at once break each other.
 fn python() -> PathBuf {
+    static PYTHON: std::sync::OnceLock<PathBuf> = std::sync::OnceLock::new();
+    PYTHON.get_or_init(make_python).clone()
+}
+
+fn make_python() -> PathBuf {
     if let Some(p) = std::env::var_os("POSGRID_PYTHON") {
         return PathBuf::from(p);
     }
