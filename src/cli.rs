@@ -6,7 +6,7 @@ use std::path::PathBuf;
 
 use clap::{Args, Parser, Subcommand};
 
-use crate::checkpoint::Source;
+use crate::checkpoint::{Source, TensorSource};
 use crate::discover::{self, Hints};
 use crate::error::{Error, Result, EXIT_NO_TABLE, EXIT_OK};
 use crate::figure;
@@ -287,8 +287,29 @@ fn print_json<T: serde::Serialize>(value: &T) {
     );
 }
 
+/// Warnings go to stderr, so stdout holds only the result a script reads.
+fn print_warnings(warnings: &[String]) {
+    eprint!("{}", report::warnings_text(warnings));
+}
+
+/// A `--tensor` name the checkpoint does not hold is an error for every command (exit 4).
+fn check_named_tensors(ckpt: &Source, names: &[String]) -> Result<()> {
+    match names.iter().find(|n| ckpt.find(n).is_none()) {
+        Some(name) => Err(Error::table(
+            &ckpt_path(ckpt),
+            format!("--tensor {name}: no tensor of that name in the checkpoint"),
+        )),
+        None => Ok(()),
+    }
+}
+
+fn ckpt_path(ckpt: &Source) -> PathBuf {
+    ckpt.source_path().to_path_buf()
+}
+
 fn scan(args: ScanArgs) -> Result<i32> {
     let ckpt = Source::open(&args.checkpoint)?;
+    check_named_tensors(&ckpt, &args.discovery.tensors)?;
     let found = discover::discover(&ckpt, &args.discovery.hints())?;
     let report = ScanReport::new(&args.checkpoint, &ckpt, found);
     if args.json {
@@ -296,6 +317,7 @@ fn scan(args: ScanArgs) -> Result<i32> {
     } else {
         print!("{}", report::scan_text(&report));
     }
+    print_warnings(&report.discovery.warnings);
     Ok(if report.is_conclusive() {
         EXIT_OK
     } else {
@@ -347,6 +369,9 @@ fn resize_cmd(args: ResizeArgs) -> Result<i32> {
         print_json(&report);
     } else if !args.quiet {
         print!("{}", report::resize_text(&report));
+    }
+    if !args.quiet {
+        print_warnings(&report.warnings);
     }
     Ok(EXIT_OK)
 }

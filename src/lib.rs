@@ -34,6 +34,7 @@ pub mod resize;
 pub mod similarity;
 pub mod sincos;
 pub mod values;
+pub mod visible;
 pub mod write;
 
 pub use error::{Error, Result};

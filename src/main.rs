@@ -8,7 +8,11 @@ fn main() {
     let code = match posgrid::cli::run(cli) {
         Ok(code) => code,
         Err(e) => {
-            eprintln!("posgrid: error: {e}");
+            // The message may quote names from a hostile file: make it safe for a terminal.
+            eprintln!(
+                "posgrid: error: {}",
+                posgrid::visible::visible(&e.to_string())
+            );
             e.exit_code()
         }
     };

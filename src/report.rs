@@ -4,6 +4,8 @@
 use std::fmt::Write as _;
 use std::path::{Path, PathBuf};
 
+use crate::visible::push_line;
+
 use serde::Serialize;
 
 use crate::checkpoint::{Source, TensorSource};
@@ -47,14 +49,16 @@ fn plural(n: usize, one: &str, many: &str) -> String {
 pub fn scan_text(r: &ScanReport) -> String {
     let mut s = String::new();
     let d = &r.discovery;
-    let _ = writeln!(
-        s,
-        "{} ({}, {}, {:.1} MiB): {}",
-        r.file.display(),
-        r.format,
-        plural(r.tensor_count, "tensor", "tensors"),
-        r.file_size as f64 / (1 << 20) as f64,
-        plural(d.tables.len(), "position table", "position tables"),
+    push_line(
+        &mut s,
+        format!(
+            "{} ({}, {}, {:.1} MiB): {}",
+            r.file.display(),
+            r.format,
+            plural(r.tensor_count, "tensor", "tensors"),
+            r.file_size as f64 / (1 << 20) as f64,
+            plural(d.tables.len(), "position table", "position tables"),
+        ),
     );
     for t in &d.tables {
         let kind = match (t.kind, t.sincos_first_axis) {
@@ -62,50 +66,56 @@ pub fn scan_text(r: &ScanReport) -> String {
             (Kind::Sincos, None) => "sincos".into(),
             (Kind::Learned, _) => "learned".into(),
         };
-        let _ = writeln!(s, "  {}", t.name);
-        let _ = writeln!(
-            s,
-            "      {} {:?}  {} + {}x{} grid, dim {}, {}",
-            t.dtype,
-            t.shape,
-            plural(t.slots, "slot", "slots"),
-            t.grid[0],
-            t.grid[1],
-            t.dim,
-            kind
+        push_line(&mut s, format!("  {}", t.name));
+        push_line(
+            &mut s,
+            format!(
+                "      {} {:?}  {} + {}x{} grid, dim {}, {}",
+                t.dtype,
+                t.shape,
+                plural(t.slots, "slot", "slots"),
+                t.grid[0],
+                t.grid[1],
+                t.dim,
+                kind
+            ),
         );
         match (&t.patch, &t.patch_source) {
             (Some(p), Some(src)) => {
-                let _ = writeln!(
-                    s,
-                    "      patch {p} px (from {src}), image {}x{} px",
-                    t.grid[0] * p,
-                    t.grid[1] * p
+                push_line(
+                    &mut s,
+                    format!(
+                        "      patch {p} px (from {src}), image {}x{} px",
+                        t.grid[0] * p,
+                        t.grid[1] * p
+                    ),
                 );
             }
             _ => {
-                let _ = writeln!(s, "      patch unknown (pass --patch P to size by image)");
+                push_line(
+                    &mut s,
+                    "      patch unknown (pass --patch P to size by image)",
+                );
             }
         }
         if !t.companions.is_empty() {
-            let _ = writeln!(s, "      companions: {}", t.companions.join(", "));
+            push_line(
+                &mut s,
+                format!("      companions: {}", t.companions.join(", ")),
+            );
         }
         if let Some(c) = &t.copy_of {
-            let _ = writeln!(s, "      copy of {c}");
+            push_line(&mut s, format!("      copy of {c}"));
         }
         for n in &t.notes {
-            let _ = writeln!(s, "      note: {n}");
+            push_line(&mut s, format!("      note: {n}"));
         }
     }
     for skipped in &d.skipped {
-        let _ = writeln!(
-            s,
-            "  not a grid table: {} ({})",
-            skipped.name, skipped.reason
+        push_line(
+            &mut s,
+            format!("  not a grid table: {} ({})", skipped.name, skipped.reason),
         );
-    }
-    for w in &d.warnings {
-        let _ = writeln!(s, "warning: {w}");
     }
     s
 }
@@ -114,11 +124,13 @@ pub fn scan_text(r: &ScanReport) -> String {
 pub fn resize_text(r: &ResizeReport) -> String {
     let mut s = String::new();
     if r.nothing_to_do {
-        let _ = writeln!(
-            s,
-            "{}: already at the target grid ({}); nothing written",
-            r.input.display(),
-            r.already_at_target.join(", ")
+        push_line(
+            &mut s,
+            format!(
+                "{}: already at the target grid ({}); nothing written",
+                r.input.display(),
+                r.already_at_target.join(", ")
+            ),
         );
         return s;
     }
@@ -133,54 +145,65 @@ pub fn resize_text(r: &ResizeReport) -> String {
         if t.antialias {
             options.push_str(", antialiased");
         }
-        let _ = writeln!(
-            s,
-            "{}: {}x{} -> {}x{} ({} kept; {}; {} {:?} -> {:?})",
-            t.name,
-            t.from[0],
-            t.from[1],
-            t.to[0],
-            t.to[1],
-            plural(t.slots, "slot", "slots"),
-            options,
-            t.dtype,
-            t.shape,
-            t.new_shape
+        push_line(
+            &mut s,
+            format!(
+                "{}: {}x{} -> {}x{} ({} kept; {}; {} {:?} -> {:?})",
+                t.name,
+                t.from[0],
+                t.from[1],
+                t.to[0],
+                t.to[1],
+                plural(t.slots, "slot", "slots"),
+                options,
+                t.dtype,
+                t.shape,
+                t.new_shape
+            ),
         );
         if let Some(f) = t.fidelity {
-            let _ = writeln!(
-                s,
-                "    fidelity {f:.3} (similarity maps before and after agree; 1 is perfect)"
+            push_line(
+                &mut s,
+                format!(
+                    "    fidelity {f:.3} (similarity maps before and after agree; 1 is perfect)"
+                ),
             );
         }
     }
     if !r.companions.is_empty() {
-        let _ = writeln!(s, "position ids rewritten: {}", r.companions.join(", "));
+        push_line(
+            &mut s,
+            format!("position ids rewritten: {}", r.companions.join(", ")),
+        );
     }
     if !r.already_at_target.is_empty() {
-        let _ = writeln!(s, "already at target: {}", r.already_at_target.join(", "));
+        push_line(
+            &mut s,
+            format!("already at target: {}", r.already_at_target.join(", ")),
+        );
     }
     let size = r.output_size as f64 / (1 << 20) as f64;
     if r.dry_run {
-        let _ = writeln!(
-            s,
-            "dry run: would write {} ({size:.1} MiB, {} copied unchanged)",
-            r.output.display(),
-            plural(r.copied.len(), "tensor", "tensors")
+        push_line(
+            &mut s,
+            format!(
+                "dry run: would write {} ({size:.1} MiB, {} copied unchanged)",
+                r.output.display(),
+                plural(r.copied.len(), "tensor", "tensors")
+            ),
         );
     } else {
-        let _ = writeln!(
-            s,
-            "wrote {} ({size:.1} MiB, {} copied unchanged)",
-            r.output.display(),
-            plural(r.copied.len(), "tensor", "tensors")
+        push_line(
+            &mut s,
+            format!(
+                "wrote {} ({size:.1} MiB, {} copied unchanged)",
+                r.output.display(),
+                plural(r.copied.len(), "tensor", "tensors")
+            ),
         );
     }
     if let Some(m) = &r.map {
-        let _ = writeln!(s, "similarity maps: {}", m.display());
-    }
-    for w in &r.warnings {
-        let _ = writeln!(s, "warning: {w}");
+        push_line(&mut s, format!("similarity maps: {}", m.display()));
     }
     s
 }
@@ -203,6 +226,16 @@ pub fn map_text(r: &MapReport) -> String {
             g[0], g[1], f.score, f.min, f.worst[0], f.worst[1]
         );
     }
-    s.push('\n');
+    let mut out = String::new();
+    push_line(&mut out, s);
+    out
+}
+
+/// Warnings for stderr (stdout is kept for results), one line each, made visible.
+pub fn warnings_text(warnings: &[String]) -> String {
+    let mut s = String::new();
+    for w in warnings {
+        push_line(&mut s, format!("posgrid: warning: {w}"));
+    }
     s
 }
