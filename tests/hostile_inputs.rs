@@ -474,3 +474,43 @@ fn big_endian_members_are_swapped_chunk_by_chunk() {
         .collect();
     assert_eq!(got, values);
 }
+
+#[test]
+fn converting_a_large_tensor_to_npz_streams_through_a_fixed_buffer() {
+    let dir = tempfile::tempdir().unwrap();
+    let big: u64 = 768 << 20;
+    let table = tensors().remove(0);
+    let t_len = table.bytes.len() as u64;
+    let header = format!(
+        r#"{{"pos_embed":{{"dtype":"F32","shape":[1,17,8],"data_offsets":[0,{t_len}]}},"zeros":{{"dtype":"F32","shape":[{}],"data_offsets":[{t_len},{}]}}}}"#,
+        big / 4,
+        t_len + big
+    );
+    let input = crafted(dir.path(), "big.safetensors", &header, &table.bytes);
+    // Sparse: the zeros cost no disk.
+    let file = std::fs::OpenOptions::new()
+        .write(true)
+        .open(&input)
+        .unwrap();
+    file.set_len(file.metadata().unwrap().len() + big).unwrap();
+    let out = dir.path().join("out.npz");
+    let r = run_within(
+        &[
+            "resize".as_ref(),
+            input.as_os_str(),
+            "-o".as_ref(),
+            out.as_os_str(),
+            "--grid".as_ref(),
+            "6".as_ref(),
+        ],
+        Duration::from_secs(120),
+    );
+    assert_eq!(r.code, 0, "{}", r.stderr);
+    assert!(std::fs::metadata(&out).unwrap().len() > big);
+    assert!(
+        r.peak_rss < 256 << 20,
+        "peak memory {} MiB for a {} MiB tensor",
+        r.peak_rss >> 20,
+        big >> 20
+    );
+}
