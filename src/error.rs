@@ -25,12 +25,13 @@ pub const EXIT_INTERRUPTED: i32 = 130;
 pub enum FormatProblem {
     /// The file is shorter than the 8-byte header length prefix.
     TooShort { len: u64 },
-    /// The header length prefix is larger than the limit.
-    HeaderTooLarge { len: u64, limit: u64 },
+    /// The header length prefix is larger than the limit. The prefix itself is not kept: in a
+    /// file that is not safetensors it is the file's first bytes, which a message must not show.
+    HeaderTooLarge { limit: u64 },
     /// The header length prefix points past the end of the file.
-    HeaderPastEnd { header_len: u64, file_len: u64 },
+    HeaderPastEnd { file_len: u64 },
     /// The header length is too small to hold a JSON object.
-    HeaderTooSmall { header_len: u64 },
+    HeaderTooSmall,
     /// The header bytes are not UTF-8.
     HeaderNotUtf8 { at: usize },
     /// The header is not valid JSON.
@@ -85,22 +86,26 @@ impl fmt::Display for FormatProblem {
     fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
         use FormatProblem::*;
         match self {
+            TooShort { len: 0 } => write!(
+                f,
+                "file is empty; a safetensors file starts with an 8-byte header length"
+            ),
             TooShort { len } => write!(
                 f,
                 "file is {len} bytes long; a safetensors file starts with an 8-byte header length"
             ),
-            HeaderTooLarge { len, limit } => write!(
+            HeaderTooLarge { limit } => write!(
                 f,
-                "header length prefix says {len} bytes, more than the {limit}-byte limit; the file is not safetensors or is corrupt"
+                "the 8-byte header length at the start is over the {limit}-byte limit; the file is not safetensors or is corrupt"
             ),
-            HeaderPastEnd { header_len, file_len } => write!(
+            HeaderPastEnd { file_len } => write!(
                 f,
-                "header length prefix says {header_len} bytes but only {} bytes follow it; the file is truncated or not safetensors",
+                "the 8-byte header length at the start is more than the {} bytes that follow it; the file is truncated or not safetensors",
                 file_len.saturating_sub(8)
             ),
-            HeaderTooSmall { header_len } => write!(
+            HeaderTooSmall => write!(
                 f,
-                "header is {header_len} bytes, too short to hold a JSON object"
+                "the 8-byte header length at the start gives a header too short to hold a JSON object"
             ),
             HeaderNotUtf8 { at } => write!(f, "header is not UTF-8 text (bad byte at header offset {at})"),
             HeaderNotJson { detail } => write!(f, "header is not valid JSON: {detail}"),

@@ -1,6 +1,7 @@
 //! Output containers other than a patched safetensors file: a patched npz archive (untouched
 //! members copied as their compressed bytes), and conversions between npz and safetensors.
-//! Each writes one tensor at a time, so memory stays bounded by the largest tensor.
+//! Copied tensors are streamed through a fixed buffer, so memory does not grow with the input
+//! (an npz member may inflate to far more than the archive's size).
 
 use std::collections::HashMap;
 
@@ -61,22 +62,28 @@ fn member_options(method: CompressionMethod, len: u64) -> SimpleFileOptions {
         .large_file(len >= u32::MAX as u64 / 2)
 }
 
-/// Add one `.npy` member: its header, then its data.
-fn write_member(
+/// Start one `.npy` member of `data_len` data bytes and write its header; the data follows
+/// through [`write_data`], in one piece or in chunks.
+fn start_member(
     zip: &mut ZipWriter<std::fs::File>,
     out: &AtomicFile,
     name: String,
     method: CompressionMethod,
     header: &[u8],
-    data: &[u8],
+    data_len: u64,
 ) -> Result<()> {
-    zip.start_file(
-        name,
-        member_options(method, (header.len() + data.len()) as u64),
-    )
-    .map_err(|e| zip_error(out, e))?;
-    std::io::Write::write_all(zip, header)
-        .and_then(|_| std::io::Write::write_all(zip, data))
+    zip.start_file(name, member_options(method, header.len() as u64 + data_len))
+        .map_err(|e| zip_error(out, e))?;
+    write_data(zip, out, header)
+}
+
+fn write_data(zip: &mut ZipWriter<std::fs::File>, out: &AtomicFile, bytes: &[u8]) -> Result<()> {
+    if write::interrupted() {
+        return Err(Error::Interrupted {
+            path: out.final_path().to_path_buf(),
+        });
+    }
+    std::io::Write::write_all(zip, bytes)
         .map_err(|e| write::write_error(out.final_path(), "cannot write", e))
 }
 
@@ -123,7 +130,9 @@ pub fn patch_npz(
                 } else {
                     CompressionMethod::Deflated
                 };
-                write_member(&mut zip, out, m.file_name.clone(), method, &header, bytes)?;
+                let name = m.file_name.clone();
+                start_member(&mut zip, out, name, method, &header, bytes.len() as u64)?;
+                write_data(&mut zip, out, bytes)?;
             }
             None => {
                 let member = archive.by_index_raw(index).map_err(|e| {
@@ -166,7 +175,8 @@ pub fn to_safetensors(
     for t in src.entries() {
         match new_data.get(&t.name) {
             Some(bytes) => out.write(bytes, progress)?,
-            None => out.write(&src.bytes(t)?, progress)?,
+            // Streamed: an npz member that inflates to gigabytes costs one chunk of memory.
+            None => src.stream(t, &mut |chunk| out.write(chunk, progress))?,
         }
     }
     Ok(())
@@ -198,24 +208,16 @@ pub fn to_npz(
                 path: out.final_path().to_path_buf(),
             });
         }
-        let owned;
-        let bytes = match new_data.get(&t.name) {
-            Some(b) => b,
-            None => {
-                owned = src.bytes(t)?;
-                &owned
-            }
-        };
         let shape = plan.new_shape(&t.name).unwrap_or(&t.shape);
         let header = npz::npy_header(npz::descr_of(t.dtype).expect("checked above"), shape);
-        write_member(
-            &mut zip,
-            out,
-            format!("{}.npy", t.name),
-            CompressionMethod::Stored,
-            &header,
-            bytes,
-        )?;
+        let name = format!("{}.npy", t.name);
+        let new = new_data.get(&t.name);
+        let len = new.map_or(t.byte_len(), |b| b.len() as u64);
+        start_member(&mut zip, out, name, CompressionMethod::Stored, &header, len)?;
+        match new {
+            Some(bytes) => write_data(&mut zip, out, bytes)?,
+            None => src.stream(t, &mut |chunk| write_data(&mut zip, out, chunk))?,
+        }
     }
     zip.finish().map_err(|e| zip_error(out, e))?;
     Ok(())

@@ -2,17 +2,19 @@
 //! a validated list of tensors (name, dtype, shape, byte span) plus positioned reads of one
 //! tensor's bytes. Validation happens when the file is opened, before any tensor data is used.
 
+pub mod json;
 pub mod npz;
 pub mod safetensors;
 pub mod sharded;
 
-use std::fs::File;
-use std::os::unix::fs::FileExt;
+use std::fs::{File, FileType, Metadata, OpenOptions};
+use std::io::Read;
+use std::os::unix::fs::{FileExt, FileTypeExt, OpenOptionsExt};
 use std::path::{Path, PathBuf};
 
 pub use ::safetensors::Dtype;
 
-use crate::error::{Error, Result};
+use crate::error::{Error, FormatProblem, Result};
 
 /// One tensor as the container describes it.
 #[derive(Debug, Clone, PartialEq, Eq)]
@@ -77,14 +79,7 @@ impl Checkpoint {
     /// Open and validate a checkpoint. Only the header is read.
     pub fn open(path: impl AsRef<Path>) -> Result<Self> {
         let path = path.as_ref();
-        let file = File::open(path).map_err(|e| Error::read(path, e))?;
-        let meta = file.metadata().map_err(|e| Error::read(path, e))?;
-        if meta.is_dir() {
-            return Err(Error::read(
-                path,
-                std::io::Error::other("is a directory, not a checkpoint file"),
-            ));
-        }
+        let (file, meta) = open_regular(path)?;
         let file_len = meta.len();
         let header = safetensors::read_header(&file, file_len).map_err(|e| match e {
             safetensors::ReadError::Io(io) => Error::read(path, io),
@@ -141,18 +136,138 @@ impl Checkpoint {
 
     /// Read one tensor's raw bytes with a positioned read.
     pub fn read_bytes(&self, tensor: &TensorEntry) -> Result<Vec<u8>> {
-        let len = usize::try_from(tensor.byte_len()).map_err(|_| {
-            Error::refused(
-                &self.path,
-                format!("tensor \"{}\" is too large to read", tensor.name),
-            )
-        })?;
-        let mut buf = vec![0u8; len];
+        let mut buf = whole_tensor_buffer(&self.path, tensor)?;
+        buf.resize(buf.capacity(), 0);
         self.file
             .read_exact_at(&mut buf, tensor.begin)
             .map_err(|e| Error::read(&self.path, e))?;
         Ok(buf)
     }
+
+    /// Pass one tensor's bytes to `sink` a chunk at a time.
+    pub fn stream_bytes(&self, tensor: &TensorEntry, sink: Sink<'_>) -> Result<()> {
+        let mut buf = vec![0u8; chunk_len(tensor.byte_len())];
+        let mut at = tensor.begin;
+        while at < tensor.end {
+            let n = chunk_len(tensor.end - at);
+            self.file
+                .read_exact_at(&mut buf[..n], at)
+                .map_err(|e| Error::read(&self.path, e))?;
+            sink(&buf[..n])?;
+            at += n as u64;
+        }
+        Ok(())
+    }
+}
+
+/// Bytes handed to a [`Sink`] at once: a fixed buffer, so copying a tensor costs the same
+/// memory whatever its size. A multiple of every element width, for byte swapping per chunk.
+pub const COPY_CHUNK: usize = 1 << 20;
+
+/// The next chunk's length when `left` bytes remain.
+pub(crate) fn chunk_len(left: u64) -> usize {
+    left.min(COPY_CHUNK as u64) as usize
+}
+
+/// Where a streamed tensor's bytes go, chunk by chunk.
+pub type Sink<'a> = &'a mut dyn FnMut(&[u8]) -> Result<()>;
+
+/// An empty buffer with room for a whole tensor, or a refusal (exit 6) when the memory cannot
+/// be had: a hostile header must not abort the process with its declared size.
+pub(crate) fn whole_tensor_buffer(path: &Path, tensor: &TensorEntry) -> Result<Vec<u8>> {
+    let too_large = || {
+        Error::refused(
+            path,
+            format!(
+                "tensor \"{}\" ({} bytes) does not fit in memory",
+                tensor.name,
+                tensor.byte_len()
+            ),
+        )
+    };
+    let len = usize::try_from(tensor.byte_len()).map_err(|_| too_large())?;
+    let mut buf = Vec::new();
+    buf.try_reserve_exact(len).map_err(|_| too_large())?;
+    Ok(buf)
+}
+
+/// What a file that is not a regular file is, in words.
+fn kind_name(t: FileType) -> &'static str {
+    if t.is_dir() {
+        "is a directory"
+    } else if t.is_fifo() {
+        "is a FIFO (named pipe)"
+    } else if t.is_char_device() {
+        "is a character device"
+    } else if t.is_block_device() {
+        "is a block device"
+    } else if t.is_socket() {
+        "is a socket"
+    } else {
+        "is of an unknown kind"
+    }
+}
+
+fn refuse_irregular(path: &Path, meta: &Metadata) -> Result<()> {
+    if meta.is_file() {
+        return Ok(());
+    }
+    let words = format!("{}, not a regular file", kind_name(meta.file_type()));
+    Err(Error::read(path, std::io::Error::other(words)))
+}
+
+/// Open an input for reading only if it is a regular file (after following links). A FIFO or a
+/// device would block in `open` or never end, so the type is checked before opening, the open
+/// itself cannot block, and the opened file is checked again in case the path was swapped.
+pub fn open_regular(path: &Path) -> Result<(File, Metadata)> {
+    let before = std::fs::metadata(path).map_err(|e| Error::read(path, e))?;
+    refuse_irregular(path, &before)?;
+    let file = OpenOptions::new()
+        .read(true)
+        .custom_flags(libc::O_NONBLOCK)
+        .open(path)
+        .map_err(|e| Error::read(path, e))?;
+    let meta = file.metadata().map_err(|e| Error::read(path, e))?;
+    refuse_irregular(path, &meta)?;
+    clear_nonblocking(&file).map_err(|e| Error::read(path, e))?;
+    Ok((file, meta))
+}
+
+fn clear_nonblocking(file: &File) -> std::io::Result<()> {
+    use std::os::fd::AsRawFd;
+    let fd = file.as_raw_fd();
+    // SAFETY: fcntl reads and sets the flags of a descriptor `file` owns; no memory is passed.
+    let flags = unsafe { libc::fcntl(fd, libc::F_GETFL) };
+    if flags < 0 || unsafe { libc::fcntl(fd, libc::F_SETFL, flags & !libc::O_NONBLOCK) } < 0 {
+        return Err(std::io::Error::last_os_error());
+    }
+    Ok(())
+}
+
+/// Read a whole side file (JSON) of at most `limit` bytes. The size is checked before reading
+/// and the read stops past the limit, so a file that lies about its size or grows costs no more.
+pub fn read_capped(path: &Path, limit: u64, what: &str) -> Result<Vec<u8>> {
+    let (file, meta) = open_regular(path)?;
+    let too_large = || {
+        Error::invalid(
+            path,
+            FormatProblem::Other(format!(
+                "{what} is larger than the {} MB limit",
+                limit / 1_000_000
+            )),
+        )
+    };
+    if meta.len() > limit {
+        return Err(too_large());
+    }
+    let mut text = Vec::with_capacity(meta.len() as usize);
+    file.take(limit + 1)
+        .read_to_end(&mut text)
+        .map_err(|e| Error::read(path, e))?;
+    if text.len() as u64 > limit {
+        return Err(too_large());
+    }
+    Ok(text)
 }
 
 /// Read access to tensor values, as discovery and planning need it. Implemented by
@@ -162,6 +277,11 @@ pub trait TensorSource {
     fn entries(&self) -> &[TensorEntry];
     /// Raw little-endian bytes of one tensor.
     fn bytes(&self, tensor: &TensorEntry) -> Result<Vec<u8>>;
+    /// The same bytes passed to `sink` in pieces, for copies whose memory must not grow with
+    /// the tensor. Sources held in memory pass them at once.
+    fn stream(&self, tensor: &TensorEntry, sink: Sink<'_>) -> Result<()> {
+        sink(&self.bytes(tensor)?)
+    }
     /// The path errors should name.
     fn source_path(&self) -> &Path {
         Path::new("<memory>")
@@ -178,6 +298,9 @@ impl TensorSource for Checkpoint {
     }
     fn bytes(&self, tensor: &TensorEntry) -> Result<Vec<u8>> {
         self.read_bytes(tensor)
+    }
+    fn stream(&self, tensor: &TensorEntry, sink: Sink<'_>) -> Result<()> {
+        self.stream_bytes(tensor, sink)
     }
     fn source_path(&self) -> &Path {
         self.path()
@@ -220,14 +343,27 @@ pub enum Source {
 }
 
 impl Source {
-    /// Open a file, a set's directory or a set's index.
+    /// Open a file, a set's directory or a set's index. The container is told by the file's
+    /// first bytes; a `.npz` name that is not a ZIP archive is reported as such.
     pub fn open(path: impl AsRef<Path>) -> Result<Self> {
         let path = path.as_ref();
         let is_index = path.extension().is_some_and(|e| e == "json");
         if path.is_dir() || is_index {
-            Ok(Source::Sharded(sharded::ShardedSet::open(path)?))
-        } else if is_zip(path) {
+            return Ok(Source::Sharded(sharded::ShardedSet::open(path)?));
+        }
+        let (file, meta) = open_regular(path)?;
+        let named_npz = path
+            .extension()
+            .is_some_and(|e| e.eq_ignore_ascii_case("npz"));
+        if is_zip(&file) {
             Ok(Source::Npz(npz::Npz::open(path)?))
+        } else if named_npz {
+            let problem = if meta.len() == 0 {
+                "is empty, not an npz archive"
+            } else {
+                "has a .npz name but is not a ZIP archive (an npz file is a ZIP of .npy arrays)"
+            };
+            Err(Error::invalid(path, FormatProblem::Other(problem.into())))
         } else {
             Ok(Source::Single(Checkpoint::open(path)?))
         }
@@ -266,6 +402,13 @@ impl TensorSource for Source {
             Source::Npz(n) => n.read_bytes(tensor),
         }
     }
+    fn stream(&self, tensor: &TensorEntry, sink: Sink<'_>) -> Result<()> {
+        match self {
+            Source::Single(c) => c.stream_bytes(tensor, sink),
+            Source::Sharded(s) => s.stream_bytes(tensor, sink),
+            Source::Npz(n) => n.stream_bytes(tensor, sink),
+        }
+    }
     fn source_path(&self) -> &Path {
         match self {
             Source::Single(c) => c.path(),
@@ -276,10 +419,8 @@ impl TensorSource for Source {
 }
 
 /// Whether a file starts like a ZIP archive (`PK\x03\x04`, or `PK\x05\x06` when empty).
-fn is_zip(path: &Path) -> bool {
+fn is_zip(file: &File) -> bool {
     let mut magic = [0u8; 4];
-    File::open(path)
-        .and_then(|f| f.read_exact_at(&mut magic, 0))
-        .is_ok()
+    file.read_exact_at(&mut magic, 0).is_ok()
         && (magic == *b"PK\x03\x04" || magic == *b"PK\x05\x06")
 }

@@ -8,7 +8,7 @@ use std::fs::File;
 use std::io::Read;
 use std::path::{Path, PathBuf};
 
-use super::{Dtype, TensorEntry};
+use super::{Dtype, Sink, TensorEntry};
 use crate::error::{Error, FormatProblem, Result};
 
 /// The largest `.npy` header accepted (numpy's own readers limit it to 10 000 bytes by
@@ -133,7 +133,7 @@ pub fn parse_npy_header(bytes: &[u8]) -> std::result::Result<NpyHeader, String> 
     };
     if len > MAX_NPY_HEADER {
         return Err(format!(
-            ".npy header claims {len} bytes, over the {MAX_NPY_HEADER}-byte limit"
+            ".npy header length is over the {MAX_NPY_HEADER}-byte limit"
         ));
     }
     let text = bytes
@@ -227,10 +227,14 @@ fn quoted(s: &str) -> Option<(String, &str)> {
 impl Npz {
     /// Open and validate an archive: every `.npy` member's header is read and checked.
     pub fn open(path: &Path) -> Result<Self> {
-        let file = File::open(path).map_err(|e| Error::read(path, e))?;
-        let file_len = file.metadata().map_err(|e| Error::read(path, e))?.len();
+        let (file, meta) = super::open_regular(path)?;
+        let file_len = meta.len();
+        if file_len == 0 {
+            return Err(invalid(path, "is empty, not an npz archive".into()));
+        }
         let mut archive = zip::ZipArchive::new(file)
             .map_err(|e| invalid(path, format!("not a valid npz (ZIP) archive: {e}")))?;
+        check_member_names(&archive).map_err(|m| invalid(path, m))?;
         let mut entries = Vec::new();
         let mut members = Vec::new();
         for index in 0..archive.len() {
@@ -332,6 +336,18 @@ impl Npz {
 
     /// One array's data, little-endian, C order. Fortran-order arrays are refused.
     pub fn read_bytes(&self, t: &TensorEntry) -> Result<Vec<u8>> {
+        let mut data = super::whole_tensor_buffer(&self.path, t)?;
+        self.stream_bytes(t, &mut |chunk| {
+            data.extend_from_slice(chunk);
+            Ok(())
+        })?;
+        Ok(data)
+    }
+
+    /// Pass one array's data (little-endian, C order) to `sink`, inflated through a fixed
+    /// buffer: exactly the size its `.npy` header declares is read, so a member that inflates
+    /// to more (or less) is an error, never a larger allocation.
+    pub fn stream_bytes(&self, t: &TensorEntry, sink: Sink<'_>) -> Result<()> {
         let i = self
             .entries
             .iter()
@@ -344,21 +360,62 @@ impl Npz {
                 format!("array \"{}\" is stored in Fortran order; save it in C order (numpy.ascontiguousarray) first", t.name),
             ));
         }
+        let broken =
+            |e: &dyn std::fmt::Display| invalid(&self.path, format!("member {}: {e}", m.file_name));
         let mut archive = self.archive.borrow_mut();
-        let mut member = archive
-            .by_index(m.index)
-            .map_err(|e| invalid(&self.path, format!("member {}: {e}", m.file_name)))?;
+        let mut member = archive.by_index(m.index).map_err(|e| broken(&e))?;
         std::io::copy(&mut (&mut member).take(m.data_offset), &mut std::io::sink())
-            .map_err(|e| Error::read(&self.path, e))?;
-        let mut data = vec![0u8; t.byte_len() as usize];
-        member
-            .read_exact(&mut data)
-            .map_err(|e| invalid(&self.path, format!("member {}: {e}", m.file_name)))?;
-        if m.big_endian {
-            let width = t.dtype.bitsize() / 8;
-            data.chunks_exact_mut(width).for_each(|c| c.reverse());
+            .map_err(|e| broken(&e))?;
+        let width = (t.dtype.bitsize() / 8).max(1);
+        let mut buf = vec![0u8; super::chunk_len(t.byte_len())];
+        let mut left = t.byte_len();
+        while left > 0 {
+            let n = super::chunk_len(left);
+            member.read_exact(&mut buf[..n]).map_err(|e| broken(&e))?;
+            if m.big_endian {
+                buf[..n].chunks_exact_mut(width).for_each(|c| c.reverse());
+            }
+            sink(&buf[..n])?;
+            left -= n as u64;
         }
-        Ok(data)
+        Ok(())
+    }
+}
+
+/// Every member name must be safe to write back into an archive and unambiguous: no empty
+/// name, no absolute path, drive letter, `..` step, backslash or NUL, and no name twice.
+fn check_member_names(archive: &zip::ZipArchive<File>) -> std::result::Result<(), String> {
+    if archive.metadata().has_duplicate_names() {
+        return Err(
+            "the archive holds two members of the same name; which one is meant is ambiguous"
+                .into(),
+        );
+    }
+    for (index, raw) in archive.file_names_raw().enumerate() {
+        if let Some(why) = unsafe_member_name(raw) {
+            let shown = String::from_utf8_lossy(raw);
+            return Err(format!("ZIP member {index} ({shown:?}) {why}"));
+        }
+    }
+    Ok(())
+}
+
+/// Why a member name is refused, if it is.
+fn unsafe_member_name(name: &[u8]) -> Option<&'static str> {
+    if name.is_empty() {
+        Some("has an empty name")
+    } else if name.contains(&0) {
+        Some("has a NUL byte in its name")
+    } else if name.contains(&b'\\') {
+        Some("has a backslash in its name")
+    } else if name[0] == b'/' {
+        Some("has an absolute path as its name")
+    } else if name.len() >= 2 && name[1] == b':' && name[0].is_ascii_alphabetic() {
+        Some("has a drive letter in its name")
+    } else if name.split(|&b| b == b'/').any(|part| part == b"..") {
+        Some("has a \"..\" step in its name")
+    } else {
+        None
     }
 }
 

@@ -97,18 +97,14 @@ pub fn check_prefix(prefix: [u8; 8], file_len: u64) -> Result<u64, FormatProblem
     let header_len = u64::from_le_bytes(prefix);
     if header_len > MAX_HEADER_LEN {
         return Err(FormatProblem::HeaderTooLarge {
-            len: header_len,
             limit: MAX_HEADER_LEN,
         });
     }
     if header_len > file_len - 8 {
-        return Err(FormatProblem::HeaderPastEnd {
-            header_len,
-            file_len,
-        });
+        return Err(FormatProblem::HeaderPastEnd { file_len });
     }
     if header_len < 2 {
-        return Err(FormatProblem::HeaderTooSmall { header_len });
+        return Err(FormatProblem::HeaderTooSmall);
     }
     Ok(header_len)
 }

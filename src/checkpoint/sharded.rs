@@ -4,11 +4,12 @@
 
 use std::collections::HashMap;
 use std::fs;
+use std::os::unix::fs::MetadataExt;
 use std::path::{Path, PathBuf};
 
 use serde_json::Value;
 
-use super::{Checkpoint, TensorEntry};
+use super::{Checkpoint, Sink, TensorEntry};
 use crate::error::{Error, FormatProblem, Result};
 
 /// File names that mark a shard index (common practice: `model.safetensors.index.json`).
@@ -74,12 +75,14 @@ impl ShardedSet {
             .parent()
             .map(Path::to_path_buf)
             .unwrap_or_else(|| PathBuf::from("."));
-        let text = fs::read(&index_path).map_err(|e| Error::read(&index_path, e))?;
-        if text.len() as u64 > super::safetensors::MAX_HEADER_LEN {
-            return Err(invalid(&index_path, "index is larger than 100 MB".into()));
-        }
-        let index: serde_json::Map<String, Value> = serde_json::from_slice(&text)
-            .map_err(|e| invalid(&index_path, format!("index is not a JSON object: {e}")))?;
+        let text = super::read_capped(
+            &index_path,
+            super::safetensors::MAX_HEADER_LEN,
+            "the shard index",
+        )?;
+        let index = super::json::parse_object(&text)
+            .map_err(|p| invalid(&index_path, format!("the shard index {p}")))?;
+        let index_id = file_id(&index_path)?;
         let Some(Value::Object(weight_map)) = index.get("weight_map") else {
             return Err(invalid(
                 &index_path,
@@ -95,16 +98,9 @@ impl ShardedSet {
                     format!("weight_map entry \"{tensor}\" is not a file name"),
                 ));
             };
-            let p = Path::new(shard);
-            if p.is_absolute()
-                || p.components()
-                    .any(|c| !matches!(c, std::path::Component::Normal(_)))
-            {
-                return Err(invalid(
-                    &index_path,
-                    format!("shard name \"{shard}\" must be a plain file name inside the set's directory"),
-                ));
-            }
+            check_shard_name(shard).map_err(|why| {
+                invalid(&index_path, format!("weight_map entry \"{tensor}\": {why}"))
+            })?;
             if !shard_names.contains(shard) {
                 shard_names.push(shard.clone());
             }
@@ -114,7 +110,14 @@ impl ShardedSet {
         let mut entries = Vec::new();
         let mut owner = HashMap::new();
         for (i, name) in shard_names.iter().enumerate() {
-            let ckpt = Checkpoint::open(dir.join(name))?;
+            let shard_path = dir.join(name);
+            if file_id(&shard_path).ok() == Some(index_id) {
+                return Err(invalid(
+                    &index_path,
+                    format!("the index lists itself (\"{name}\") as a shard"),
+                ));
+            }
+            let ckpt = Checkpoint::open(shard_path)?;
             for t in ckpt.tensors() {
                 match wanted.get(&t.name) {
                     Some(s) if s == name => {}
@@ -192,9 +195,41 @@ impl ShardedSet {
 
     /// Read one tensor's bytes from its shard.
     pub fn read_bytes(&self, t: &TensorEntry) -> Result<Vec<u8>> {
+        self.shard_holding(t).read_bytes(t)
+    }
+
+    /// Pass one tensor's bytes to `sink` a chunk at a time.
+    pub fn stream_bytes(&self, t: &TensorEntry, sink: Sink<'_>) -> Result<()> {
+        self.shard_holding(t).stream_bytes(t, sink)
+    }
+
+    fn shard_holding(&self, t: &TensorEntry) -> &Checkpoint {
         let i = self
             .shard_of(&t.name)
             .expect("entries come from the shards");
-        self.shards[i].1.read_bytes(t)
+        &self.shards[i].1
     }
+}
+
+/// A shard must be a plain file beside the index: no sub-directory (the set is written back as
+/// one flat directory), no way out of the directory, nothing a platform reads differently.
+fn check_shard_name(name: &str) -> std::result::Result<(), String> {
+    let why = if name.is_empty() {
+        "the shard name is empty"
+    } else if name == "." || name == ".." {
+        "the shard name must be a file name, not \".\" or \"..\""
+    } else if name.contains('/') || name.contains('\\') {
+        "the shard name must be a plain file name beside the index (no directories or path separators)"
+    } else if name.contains('\0') {
+        "the shard name contains a NUL character"
+    } else {
+        return Ok(());
+    };
+    Err(format!("{why}: {name:?}"))
+}
+
+/// The device and inode of a file (after links), to recognise the same file under two names.
+fn file_id(path: &Path) -> Result<(u64, u64)> {
+    let meta = fs::metadata(path).map_err(|e| Error::read(path, e))?;
+    Ok((meta.dev(), meta.ino()))
 }
