@@ -307,7 +307,8 @@ fn examine(
             return Ok(Vec::new());
         }
         let bytes = source.bytes(entry)?;
-        Ok(values::decode_f64(entry.dtype, &bytes).expect("float dtype checked above"))
+        values::decode_f64(entry.dtype, &bytes)
+            .map_err(|e| values::value_error(source.source_path(), &entry.name, e))
     };
     let tol = sincos_tolerance(entry.dtype);
     let mut loaded: Option<Vec<f64>> = None;
@@ -521,7 +522,8 @@ fn find_companions(source: &dyn TensorSource, found: &mut Discovery) -> Result<(
         if owners.is_empty() {
             continue;
         }
-        let ids = values::decode_ints(entry.dtype, &source.bytes(entry)?).expect("integer dtype");
+        let ids = values::decode_ints(entry.dtype, &source.bytes(entry)?)
+            .map_err(|e| values::value_error(source.source_path(), &entry.name, e))?;
         if !ids.iter().enumerate().all(|(i, v)| *v == i as i64) {
             found.warnings.push(format!(
                 "{}: looks like a position-id buffer but does not hold 0..{}; left unchanged",

@@ -183,7 +183,7 @@ pub fn build(ckpt: &dyn TensorSource, found: &Discovery, request: &Request) -> R
             } else {
                 vec![rows]
             };
-            if crate::values::encode_range(entry.dtype, rows).is_none() {
+            if !crate::values::range_fits(entry.dtype, rows) {
                 return Err(Error::refused(
                     path,
                     format!(

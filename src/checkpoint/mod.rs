@@ -147,7 +147,9 @@ impl Checkpoint {
                 format!("tensor \"{}\" is too large to read", tensor.name),
             )
         })?;
-        let mut buf = vec![0u8; len];
+        let what = format!("tensor \"{}\"", tensor.name);
+        let mut buf = crate::values::try_filled(len, 0u8)
+            .map_err(|e| crate::values::out_of_memory(&self.path, &what, e))?;
         self.file
             .read_exact_at(&mut buf, tensor.begin)
             .map_err(|e| Error::read(&self.path, e))?;

@@ -350,7 +350,9 @@ impl Npz {
             .map_err(|e| invalid(&self.path, format!("member {}: {e}", m.file_name)))?;
         std::io::copy(&mut (&mut member).take(m.data_offset), &mut std::io::sink())
             .map_err(|e| Error::read(&self.path, e))?;
-        let mut data = vec![0u8; t.byte_len() as usize];
+        let what = format!("array \"{}\"", t.name);
+        let mut data = crate::values::try_filled(t.byte_len() as usize, 0u8)
+            .map_err(|e| crate::values::out_of_memory(&self.path, &what, e))?;
         member
             .read_exact(&mut data)
             .map_err(|e| invalid(&self.path, format!("member {}: {e}", m.file_name)))?;
