@@ -75,6 +75,10 @@ pub struct MapArgs {
     /// Replace the PNG if it exists.
     #[arg(long)]
     pub force: bool,
+    /// Refuse tables and maps that would need more memory than this (e.g. 512M, 8G); large
+    /// grids get fewer reference positions.
+    #[arg(long, value_name = "SIZE", value_parser = parse_size, default_value = "4G")]
+    pub memory_limit: u64,
     #[command(flatten)]
     pub discovery: DiscoveryArgs,
 }
@@ -271,7 +275,11 @@ fn map_cmd(args: MapArgs) -> Result<i32> {
         args.refs,
         &args.output,
         args.force,
+        args.memory_limit,
     )?;
+    for w in &report.warnings {
+        eprintln!("warning: {w}");
+    }
     if args.json {
         print_json(&report);
     } else {

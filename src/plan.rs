@@ -50,6 +50,9 @@ pub struct TableChange {
     pub antialias_applied: bool,
     /// A sine-cosine table built anew on the target grid (not resampled).
     pub rebuild: bool,
+    /// Bytes the resize of this table needs (what the memory guard checked).
+    #[serde(skip)]
+    pub needed_bytes: u64,
 }
 
 /// One position-id buffer to rewrite as 0..N'-1.
@@ -206,6 +209,7 @@ pub fn build(ckpt: &dyn TensorSource, found: &Discovery, request: &Request) -> R
             options: request.options,
             antialias_applied,
             rebuild,
+            needed_bytes: needed,
         });
     }
     Ok(plan)

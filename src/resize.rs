@@ -164,20 +164,9 @@ pub fn run(job: &ResizeJob) -> Result<ResizeReport> {
         grids,
     } = compute(&source, &plan, job.request.allow_nonfinite)?;
     for (report_table, (change, before, after)) in report.tables.iter_mut().zip(&grids) {
-        let d = change.table.dim;
-        let b = Grid {
-            rows: before,
-            h: change.from[0],
-            w: change.from[1],
-            d,
-        };
-        let a = Grid {
-            rows: after,
-            h: change.to[0],
-            w: change.to[1],
-            d,
-        };
-        report_table.fidelity = Some(similarity::score(b, a, job.refs).score);
+        let (fidelity, notes) = table_fidelity(change, before, after, job);
+        report_table.fidelity = fidelity;
+        report.warnings.extend(notes);
     }
     let data_size: u64 = source
         .entries()
@@ -260,14 +249,59 @@ pub fn run(job: &ResizeJob) -> Result<ResizeReport> {
         let mut after_table = change.table.clone();
         after_table.grid = change.to;
         let drawn = figure::figure(
+            &job.input,
             &rows(&change.table, before),
             Some(&rows(&after_table, after)),
             job.refs,
-        );
+            fidelity_budget(change, job),
+        )?;
+        report.warnings.extend(drawn.notes.iter().cloned());
         figure::write_png(png_path, &drawn.png, job.force, &job.input)?;
         report.map = Some(png_path.to_path_buf());
     }
     Ok(report)
+}
+
+/// What the memory guard leaves for the maps and the fidelity score of a table once its
+/// resize is paid for.
+fn fidelity_budget(change: &TableChange, job: &ResizeJob) -> similarity::Budget {
+    similarity::Budget::memory(job.request.memory_limit.saturating_sub(change.needed_bytes))
+}
+
+/// The fidelity score of one resized table (`None` when undefined or over the guard) and
+/// the warnings that explain it.
+fn table_fidelity(
+    change: &TableChange,
+    before: &[f32],
+    after: &[f32],
+    job: &ResizeJob,
+) -> (Option<f64>, Vec<String>) {
+    let grid = |rows, [h, w]: [usize; 2]| Grid {
+        rows,
+        h,
+        w,
+        d: change.table.dim,
+    };
+    let name = &change.table.name;
+    match similarity::score(
+        grid(before, change.from),
+        grid(after, change.to),
+        job.refs,
+        fidelity_budget(change, job),
+    ) {
+        Ok((f, note)) => {
+            let notes = note
+                .map(|n| format!("\"{name}\": fidelity from {n}"))
+                .into_iter()
+                .chain(f.note(name))
+                .collect();
+            (f.score, notes)
+        }
+        Err(e) => (
+            None,
+            vec![format!("\"{name}\": fidelity not computed: {e}")],
+        ),
+    }
 }
 
 fn progress_for(job: &ResizeJob, total: u64) -> Box<dyn Progress> {
