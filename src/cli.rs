@@ -7,7 +7,7 @@ use std::path::PathBuf;
 use clap::{Args, Parser, Subcommand};
 
 use crate::checkpoint::Source;
-use crate::discover::{self, Hints};
+use crate::discover::{self, Channels, Hints};
 use crate::error::{Error, Result, EXIT_NO_TABLE, EXIT_OK};
 use crate::figure;
 use crate::output::OutputFormat;
@@ -98,6 +98,9 @@ pub struct DiscoveryArgs {
     /// Only this table (repeatable). Also forces a tensor discovery did not pick by name.
     #[arg(long = "tensor", value_name = "NAME")]
     pub tensors: Vec<String>,
+    /// Where the channels of a 4-D table sit: last ([1, H, W, D]) or first ([1, D, H, W]).
+    #[arg(long, value_name = "ORDER", value_parser = parse_text::<Channels>)]
+    pub channels: Option<Channels>,
 }
 
 impl DiscoveryArgs {
@@ -107,6 +110,7 @@ impl DiscoveryArgs {
             slots: self.slots,
             patch: self.patch.map(|p| p as usize),
             tensors: self.tensors.clone(),
+            channels: self.channels,
         }
     }
 }

@@ -67,7 +67,15 @@ pub fn load_table(
         },
     };
     let entry = ckpt.find(&table.name).expect("discovered tables exist");
-    let needed = entry.byte_len().saturating_add(table_f32_bytes(&table));
+    // The bytes and their f32 decoding (two decodings for a channels-first transpose).
+    let copies = if table.layout == discover::Layout::GridChannelsFirst {
+        2
+    } else {
+        1
+    };
+    let needed = entry
+        .byte_len()
+        .saturating_add(table_f32_bytes(&table).saturating_mul(copies));
     if needed > memory_limit {
         return Err(Error::refused(
             ckpt.source_path(),
@@ -83,6 +91,10 @@ pub fn load_table(
     let elem = entry.dtype.bitsize() / 8;
     let rows = values::decode_f32(entry.dtype, &bytes[table.slots * table.dim * elem..])
         .map_err(|e| values::value_error(ckpt.source_path(), &table.name, e))?;
+    drop(bytes);
+    let rows = table
+        .to_row_order(rows)
+        .map_err(|e| values::out_of_memory(ckpt.source_path(), &table.name, e))?;
     Ok(GridRows { table, rows })
 }
 
@@ -236,6 +248,7 @@ pub fn run(
             // The same table by name; its grid comes from the file, not from the hints.
             let after_hints = Hints {
                 tensors: vec![before.table.name.clone()],
+                channels: hints.channels,
                 ..Hints::default()
             };
             let a = load_table(&ck, &after_hints, Some(&before.table.name), left)?;

@@ -502,16 +502,22 @@ fn resized_table(
     let mut bytes = values::try_with_capacity(out_len).map_err(oom)?;
     bytes.extend_from_slice(slots);
     let value_error = |e| values::value_error(path, &format!("resizing \"{}\"", t.name), e);
+    // Computed in row order [H·W, D]; stored in the table's own layout.
     let (before, after) = if entry.dtype == Dtype::F64 {
         let v = values::decode_f64(entry.dtype, grid).map_err(value_error)?;
+        let v = t.to_row_order(v).map_err(oom)?;
         let r = new_grid(&v, change).map_err(|e| resample_error(path, t, e))?;
-        values::encode_f64_into(entry.dtype, &r, &mut bytes).map_err(value_error)?;
+        let stored = t.from_row_order(&r).map_err(oom)?;
+        values::encode_f64_into(entry.dtype, &stored, &mut bytes).map_err(value_error)?;
         let narrow = |x: &[f64]| values::try_collect(x.len(), x.iter().map(|v| *v as f32));
         (narrow(&v).map_err(oom)?, narrow(&r).map_err(oom)?)
     } else {
         let v = values::decode_f32(entry.dtype, grid).map_err(value_error)?;
+        let v = t.to_row_order(v).map_err(oom)?;
         let r = new_grid(&v, change).map_err(|e| resample_error(path, t, e))?;
-        values::encode_f32_into(entry.dtype, &r, &mut bytes).map_err(value_error)?;
+        let stored = t.from_row_order(&r).map_err(oom)?;
+        values::encode_f32_into(entry.dtype, &stored, &mut bytes).map_err(value_error)?;
+        drop(stored);
         (v, r)
     };
     if !allow_nonfinite {

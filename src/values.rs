@@ -56,6 +56,14 @@ pub fn try_collect<T>(n: usize, items: impl Iterator<Item = T>) -> Result<Vec<T>
     Ok(v)
 }
 
+/// The transpose of a row-major `[rows, cols]` matrix, fallibly allocated.
+pub fn transpose<T: Copy>(v: &[T], rows: usize, cols: usize) -> Result<Vec<T>, OutOfMemory> {
+    try_collect(
+        rows * cols,
+        (0..cols).flat_map(|c| (0..rows).map(move |r| v[r * cols + c])),
+    )
+}
+
 fn chunks<const N: usize>(bytes: &[u8]) -> impl Iterator<Item = [u8; N]> + '_ {
     bytes
         .chunks_exact(N)
