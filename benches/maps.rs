@@ -36,11 +36,11 @@ fn main() {
     };
     let before = GridRows {
         table: table([h, w]),
-        rows,
+        rows: rows.into(),
     };
     let after = GridRows {
         table: table([96, 96]),
-        rows: up,
+        rows: up.into(),
     };
     let mut times = Vec::new();
     for _ in 0..3 {

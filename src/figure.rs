@@ -13,13 +13,22 @@ use crate::similarity::{self, Budget, Fidelity, Grid, MapSet, MapsError, Profile
 use crate::values;
 use crate::write::{self, AtomicFile};
 
-/// A table's grid rows as f32, without the class slots.
-pub struct GridRows {
+/// A table's grid rows as f32 in row order, without the class slots: owned when read from a
+/// file, borrowed from a resize (no copy of an input-sized buffer).
+pub struct GridRows<'a> {
     pub table: Table,
-    pub rows: Vec<f32>,
+    pub rows: std::borrow::Cow<'a, [f32]>,
 }
 
-impl GridRows {
+impl<'a> GridRows<'a> {
+    /// Rows held elsewhere, with their table.
+    pub fn borrowed(table: &Table, rows: &'a [f32]) -> Self {
+        GridRows {
+            table: table.clone(),
+            rows: rows.into(),
+        }
+    }
+
     pub fn grid(&self) -> Grid<'_> {
         Grid {
             rows: &self.rows,
@@ -37,7 +46,7 @@ pub fn load_table(
     hints: &Hints,
     name: Option<&str>,
     memory_limit: u64,
-) -> Result<GridRows> {
+) -> Result<GridRows<'static>> {
     let found = discover::discover(ckpt, hints)?;
     let table = match name.or(hints.tensors.first().map(String::as_str)) {
         Some(n) => found.table(n).cloned().ok_or_else(|| {
@@ -95,7 +104,10 @@ pub fn load_table(
     let rows = table
         .to_row_order(rows)
         .map_err(|e| values::out_of_memory(ckpt.source_path(), &table.name, e))?;
-    Ok(GridRows { table, rows })
+    Ok(GridRows {
+        table,
+        rows: rows.into(),
+    })
 }
 
 /// Bytes of a table's grid rows as f32.

@@ -242,10 +242,7 @@ pub fn run(job: &ResizeJob) -> Result<ResizeReport> {
     }
     report.bytes_written = report.output_size;
     if let (Some(png_path), Some((change, before, after))) = (&job.map, grids.first()) {
-        let rows = |table: &discover::Table, rows: &[f32]| GridRows {
-            table: table.clone(),
-            rows: rows.to_vec(),
-        };
+        let rows = GridRows::borrowed;
         let mut after_table = change.table.clone();
         after_table.grid = change.to;
         let drawn = figure::figure(

@@ -329,6 +329,27 @@ fn maps_stay_inside_the_memory_guard() {
     assert!(stderr(&o).contains("--memory-limit"), "{}", stderr(&o));
 }
 
+/// Run the binary under an address-space limit: room for the program and its worker
+/// threads, not for a table of a gigabyte.
+fn run_address_limited(args: &[&str]) -> Output {
+    let mut cmd = Command::new(env!("CARGO_BIN_EXE_posgrid"));
+    cmd.args(args);
+    // SAFETY: only async-signal-safe libc calls between fork and exec.
+    unsafe {
+        cmd.pre_exec(|| {
+            let limit = libc::rlimit {
+                rlim_cur: 768 << 20,
+                rlim_max: 768 << 20,
+            };
+            if libc::setrlimit(libc::RLIMIT_AS, &limit) != 0 {
+                return Err(std::io::Error::last_os_error());
+            }
+            Ok(())
+        });
+    }
+    cmd.output().unwrap()
+}
+
 #[test]
 fn allocation_failure_is_a_refusal_not_an_abort() {
     let dir = tempfile::tempdir().unwrap();
@@ -346,8 +367,7 @@ fn allocation_failure_is_a_refusal_not_an_abort() {
         None,
     );
     let out = dir.path().join("out.safetensors");
-    let mut cmd = Command::new(env!("CARGO_BIN_EXE_posgrid"));
-    cmd.args([
+    let o = run_address_limited(&[
         "resize",
         s(&input),
         "-o",
@@ -357,23 +377,45 @@ fn allocation_failure_is_a_refusal_not_an_abort() {
         "--memory-limit",
         "64G",
     ]);
-    // SAFETY: only async-signal-safe libc calls between fork and exec.
-    unsafe {
-        cmd.pre_exec(|| {
-            // Room for the program and its worker threads, not for the table.
-            let limit = libc::rlimit {
-                rlim_cur: 768 << 20,
-                rlim_max: 768 << 20,
-            };
-            if libc::setrlimit(libc::RLIMIT_AS, &limit) != 0 {
-                return Err(std::io::Error::last_os_error());
-            }
-            Ok(())
-        });
-    }
-    let o = cmd.output().unwrap();
     let err = stderr(&o);
     assert_eq!(o.status.code(), Some(6), "{err}");
     assert!(err.contains("memory") && err.contains("pos_embed"), "{err}");
     assert_eq!(entries(dir.path()), ["in.safetensors"]);
+}
+
+#[test]
+fn a_table_too_large_to_read_is_a_refusal_not_an_abort() {
+    let dir = tempfile::tempdir().unwrap();
+    // A 1 GiB table in a sparse file (no disk used): [1, 1 + 8192², 4] F32.
+    let rows: u64 = 1 + 8192 * 8192;
+    let len = rows * 4 * 4;
+    let header = format!(
+        r#"{{"pos_embed":{{"dtype":"F32","shape":[1,{rows},4],"data_offsets":[0,{len}]}}}}"#
+    );
+    let input = crafted(dir.path(), "big.safetensors", &header, &[]);
+    let f = std::fs::OpenOptions::new()
+        .write(true)
+        .open(&input)
+        .unwrap();
+    f.set_len(8 + header.len() as u64 + len).unwrap();
+    let out = dir.path().join("out.safetensors");
+    let o = run_address_limited(&[
+        "resize",
+        s(&input),
+        "-o",
+        s(&out),
+        "--grid",
+        "8000",
+        "--memory-limit",
+        "64G",
+    ]);
+    let err = stderr(&o);
+    assert_eq!(o.status.code(), Some(6), "{err}");
+    assert!(err.contains("memory") && err.contains("pos_embed"), "{err}");
+    let png = dir.path().join("m.png");
+    let o = run_address_limited(&["map", s(&input), "-o", s(&png), "--memory-limit", "64G"]);
+    let err = stderr(&o);
+    assert_eq!(o.status.code(), Some(6), "{err}");
+    assert!(err.contains("memory") && err.contains("pos_embed"), "{err}");
+    assert_eq!(entries(dir.path()), ["big.safetensors"]);
 }
