@@ -53,7 +53,8 @@ pub enum Command {
     #[command(after_long_help = concat!("Examples:\n  posgrid map vit-224.safetensors -o maps.png\n  posgrid map vit-224.safetensors vit-384.safetensors -o before-after.png --json\n\n", "Each tile shows how similar one reference position is to every position of the grid, on a\n",
     "diverging scale over [-1, 1]. With two files, the same relative reference positions are drawn\n",
     "side by side and the fidelity score compares them.\n\n",
-    "Exit codes: 0 written; 2 usage; 3 invalid input; 4 no table, or several without --tensor; 5 cannot write."))]
+    "Exit codes: 0 written; 2 usage; 3 invalid input; 4 no table, several without --tensor, or tables\n",
+    "of different widths; 5 cannot write; 6 refused (over --memory-limit, or out of memory)."))]
     Map(MapArgs),
 }
 
