@@ -415,12 +415,16 @@ fn examine(
     let (slots, grid) = match candidates.len() {
         1 => candidates[0],
         0 => {
-            // No square grid: only a sine-cosine table can tell a non-square one.
+            // No square grid: only a sine-cosine table can tell a non-square one (and only one
+            // whose values are read).
             let v = loaded.insert(table_values()?);
-            let fits: Vec<_> = all_explanations(rows)
-                .into_iter()
-                .filter(|&(s, g)| sincos_fit(v, s, g).is_some())
-                .collect();
+            let fits: Vec<_> = match v.is_empty() {
+                true => Vec::new(),
+                false => all_explanations(rows)
+                    .into_iter()
+                    .filter(|&(s, g)| sincos_fit(v, s, g).is_some())
+                    .collect(),
+            };
             if fits.len() == 1 {
                 notes.push(format!(
                     "grid {}x{} read from the sine-cosine values (no square grid fits {rows} rows)",
@@ -592,11 +596,20 @@ fn all_explanations(rows: usize) -> Vec<(usize, (usize, usize))> {
     let mut out = Vec::new();
     for s in 0..=MAX_SLOTS.min(rows) {
         let n = rows - s;
-        for h in 2..=n / 2 {
-            if n % h == 0 && n / h >= 2 {
-                out.push((s, (h, n / h)));
+        // Divisors in pairs up to the square root: time grows with √rows, not rows.
+        let mut pairs = Vec::new();
+        let mut h = 2;
+        while h * h <= n {
+            if n % h == 0 {
+                pairs.push((h, n / h));
+                if h != n / h {
+                    pairs.push((n / h, h));
+                }
             }
+            h += 1;
         }
+        pairs.sort_unstable();
+        out.extend(pairs.into_iter().map(|g| (s, g)));
     }
     out
 }

@@ -688,3 +688,49 @@ fn a_channels_first_table_is_resized_in_its_own_layout() {
     assert_eq!(shape_first, [1, d, 9, 12]);
     assert_eq!(v_first, channels_first(&v_last, 9, 12, d));
 }
+
+#[test]
+fn a_long_table_without_a_square_grid_is_skipped_quickly() {
+    // 2^31 + 11 rows of width 1 (4 GiB of F16 in a sparse file): looking for non-square grids
+    // used to try every divisor up to rows / 2, nine times, and took many seconds.
+    let dir = tempfile::tempdir().unwrap();
+    let rows: u64 = (1 << 31) + 11;
+    let len = rows * 2;
+    let header = format!(
+        r#"{{"pos_embed":{{"dtype":"F16","shape":[1,{rows},1],"data_offsets":[0,{len}]}}}}"#
+    );
+    let p = crafted(dir.path(), "long.safetensors", &header, &[]);
+    let f = std::fs::OpenOptions::new().write(true).open(&p).unwrap();
+    f.set_len(8 + header.len() as u64 + len).unwrap();
+    let start = std::time::Instant::now();
+    let found = scan(&p, &Hints::default());
+    assert!(start.elapsed().as_secs_f64() < 2.0, "{:?}", start.elapsed());
+    assert!(found.tables.is_empty());
+    assert!(
+        found.skipped[0].reason.contains("no square-grid"),
+        "{found:?}"
+    );
+}
+
+#[test]
+fn non_square_explanations_are_every_divisor_pair() {
+    // 60 rows (no square grid with 0-8 slots), read from the sine-cosine values: the grid is
+    // found among all factorisations, whichever way round.
+    let dir = tempfile::tempdir().unwrap();
+    let d = 16;
+    for (h, w) in [(6, 10), (10, 6), (4, 15), (3, 20)] {
+        let p = write(
+            dir.path(),
+            "ns.safetensors",
+            &[floats(
+                "pos_embed",
+                Dtype::F32,
+                &[1, h * w, d],
+                &sincos_table(0, h, w, d),
+            )],
+            None,
+        );
+        let t = &scan(&p, &Hints::default()).tables[0];
+        assert_eq!((t.slots, t.grid), (0, [h, w]), "{h}x{w}");
+    }
+}
