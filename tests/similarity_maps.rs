@@ -178,3 +178,67 @@ fn the_png_has_the_expected_structure() {
         posgrid::figure::run(&input, None, &Default::default(), 16, &png, false, 1 << 30).is_err()
     );
 }
+
+#[test]
+fn zero_rows_make_the_similarity_undefined_not_perfect() {
+    let (h, w, d) = (8, 8, 16);
+    let mut rows = f32s(&common::smooth_table(0, h, w, d, 9));
+    // Zero the row of the first reference cell (spread puts it at (0, 0) for 8 references).
+    rows[..d].iter_mut().for_each(|v| *v = 0.0);
+    let g = Grid {
+        rows: &rows,
+        h,
+        w,
+        d,
+    };
+    let (f, _) = similarity::score(g, g, 8, budget()).unwrap();
+    assert_eq!(f.undefined, 1, "{f:?}");
+    assert!((f.score.unwrap() - 1.0).abs() < 1e-9, "{f:?}");
+    assert!(f.note("t").unwrap().contains("left out 1 of 64"));
+
+    let zeros = vec![0.0f32; h * w * d];
+    let z = Grid {
+        rows: &zeros,
+        h,
+        w,
+        d,
+    };
+    let (f, _) = similarity::score(z, z, 8, budget()).unwrap();
+    assert_eq!(
+        (f.score, f.min, f.worst, f.undefined),
+        (None, None, None, 64)
+    );
+    assert!(f.note("t").unwrap().contains("undefined"));
+}
+
+#[test]
+fn large_grids_get_fewer_references_within_the_budget() {
+    let (h, w, d) = (300, 300, 2);
+    let rows = f32s(&common::noise(h * w * d, 10, 1.0));
+    let g = Grid {
+        rows: &rows,
+        h,
+        w,
+        d,
+    };
+    // Maps of 90 000 cells take 360 kB each: 8 MB leave room for only a few.
+    let sets = similarity::map_sets(g, Some(g), 16, similarity::Budget::memory(8 << 20)).unwrap();
+    let n = sets.before.ref_rows.len();
+    assert!((1..16).contains(&n), "{n}");
+    let held: usize = sets.before.maps.iter().map(Vec::len).sum::<usize>() * 2 * 4;
+    assert!(held < 8 << 20, "{held}");
+    assert!(sets.note.unwrap().contains("instead of 16x16"));
+    // The time bound alone also cuts the count.
+    let tight = similarity::Budget {
+        memory: 1 << 30,
+        work: 50 * (2 * 90_000) * 18,
+    };
+    let (f, note) = similarity::score(g, g, 16, tight).unwrap();
+    assert!(f.refs[0] * f.refs[1] <= 50, "{f:?}");
+    assert!(note.is_some());
+    // Too little memory for even one reference is a refusal with the reason.
+    let err = similarity::map_sets(g, Some(g), 16, similarity::Budget::memory(1 << 20))
+        .err()
+        .unwrap();
+    assert!(err.to_string().contains("--memory-limit"), "{err}");
+}
