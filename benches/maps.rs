@@ -36,16 +36,23 @@ fn main() {
     };
     let before = GridRows {
         table: table([h, w]),
-        rows,
+        rows: rows.into(),
     };
     let after = GridRows {
         table: table([96, 96]),
-        rows: up,
+        rows: up.into(),
     };
     let mut times = Vec::new();
     for _ in 0..3 {
         let start = Instant::now();
-        let drawn = figure(&before, Some(&after), 16);
+        let drawn = figure(
+            std::path::Path::new("bench"),
+            &before,
+            Some(&after),
+            16,
+            posgrid::similarity::Budget::memory(4 << 30),
+        )
+        .unwrap();
         times.push(start.elapsed().as_secs_f64());
         std::hint::black_box(drawn.png);
     }

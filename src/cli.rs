@@ -7,7 +7,7 @@ use std::path::PathBuf;
 use clap::{Args, Parser, Subcommand};
 
 use crate::checkpoint::{Source, TensorSource};
-use crate::discover::{self, Hints};
+use crate::discover::{self, Channels, Hints};
 use crate::error::{Error, Result, EXIT_NO_TABLE, EXIT_OK};
 use crate::figure;
 use crate::output::OutputFormat;
@@ -53,7 +53,8 @@ pub enum Command {
     #[command(after_long_help = concat!("Examples:\n  posgrid map vit-224.safetensors -o maps.png\n  posgrid map vit-224.safetensors vit-384.safetensors -o before-after.png --json\n\n", "Each tile shows how similar one reference position is to every position of the grid, on a\n",
     "diverging scale over [-1, 1]. With two files, the same relative reference positions are drawn\n",
     "side by side and the fidelity score compares them.\n\n",
-    "Exit codes: 0 written; 2 usage; 3 invalid input; 4 no table, or several without --tensor; 5 cannot write."))]
+    "Exit codes: 0 written; 2 usage; 3 invalid input; 4 no table, several without --tensor, or tables\n",
+    "of different widths; 5 cannot write; 6 refused (over --memory-limit, or out of memory)."))]
     Map(MapArgs),
 }
 
@@ -75,6 +76,10 @@ pub struct MapArgs {
     /// Replace the PNG if it exists.
     #[arg(long)]
     pub force: bool,
+    /// Refuse tables and maps that would need more memory than this (e.g. 512M, 8G); large
+    /// grids get fewer reference positions.
+    #[arg(long, value_name = "SIZE", value_parser = parse_size, default_value = "4G")]
+    pub memory_limit: u64,
     #[command(flatten)]
     pub discovery: DiscoveryArgs,
 }
@@ -94,6 +99,9 @@ pub struct DiscoveryArgs {
     /// Only this table (repeatable). Also forces a tensor discovery did not pick by name.
     #[arg(long = "tensor", value_name = "NAME")]
     pub tensors: Vec<String>,
+    /// Where the channels of a 4-D table sit: last ([1, H, W, D]) or first ([1, D, H, W]).
+    #[arg(long, value_name = "ORDER", value_parser = parse_text::<Channels>)]
+    pub channels: Option<Channels>,
 }
 
 impl DiscoveryArgs {
@@ -103,6 +111,7 @@ impl DiscoveryArgs {
             slots: self.slots,
             patch: self.patch.map(|p| p as usize),
             tensors: self.tensors.clone(),
+            channels: self.channels,
         }
     }
 }
@@ -271,7 +280,11 @@ fn map_cmd(args: MapArgs) -> Result<i32> {
         args.refs,
         &args.output,
         args.force,
+        args.memory_limit,
     )?;
+    for w in &report.warnings {
+        eprintln!("warning: {w}");
+    }
     if args.json {
         print_json(&report);
     } else {

@@ -7,7 +7,7 @@ use serde::Serialize;
 use crate::checkpoint::{Dtype, TensorEntry, TensorSource};
 use crate::error::Result;
 use crate::sincos::{self, FirstAxis};
-use crate::values;
+use crate::values::{self, OutOfMemory};
 
 /// Candidate tables larger than this are not read for the sine-cosine check (bounded memory).
 pub const MAX_VALUE_READ: u64 = 256 << 20;
@@ -26,6 +26,31 @@ pub struct Hints {
     pub patch: Option<usize>,
     /// Consider these tensors position tables whatever their names.
     pub tensors: Vec<String>,
+    /// Where the channels of a 4-D `[1, ., ., .]` table sit.
+    pub channels: Option<Channels>,
+}
+
+/// Where the channel (embedding) dimension of a 4-D table sits.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
+#[serde(rename_all = "lowercase")]
+pub enum Channels {
+    /// `[1, D, H, W]`
+    First,
+    /// `[1, H, W, D]`
+    Last,
+}
+
+impl std::str::FromStr for Channels {
+    type Err = String;
+    fn from_str(s: &str) -> std::result::Result<Self, String> {
+        match s {
+            "first" => Ok(Channels::First),
+            "last" => Ok(Channels::Last),
+            _ => Err(format!(
+                "unknown value \"{s}\"; expected first ([1, D, H, W]) or last ([1, H, W, D])"
+            )),
+        }
+    }
 }
 
 /// How the table's rows are laid out in the tensor.
@@ -38,6 +63,8 @@ pub enum Layout {
     Rows,
     /// `[1, H, W, D]` (no class slots)
     Grid,
+    /// `[1, D, H, W]`: channels first (no class slots)
+    GridChannelsFirst,
 }
 
 /// Whether the table was learned or follows the fixed sine-cosine construction.
@@ -75,6 +102,32 @@ pub struct Table {
     pub copy_of: Option<String>,
     /// How the slots and grid were decided, when it was not the only explanation.
     pub notes: Vec<String>,
+}
+
+impl Table {
+    /// Grid values (class slots excluded) in row order `[H·W, D]`: a channels-first table's
+    /// `[D, H·W]` transposed, any other as it is.
+    pub fn to_row_order<T: Copy>(&self, v: Vec<T>) -> std::result::Result<Vec<T>, OutOfMemory> {
+        match self.layout {
+            Layout::GridChannelsFirst => values::transpose(&v, self.dim, v.len() / self.dim.max(1)),
+            _ => Ok(v),
+        }
+    }
+
+    /// New grid values in row order `[H'·W', D]` back in the table's own layout.
+    pub fn from_row_order<'a, T: Copy>(
+        &self,
+        v: &'a [T],
+    ) -> std::result::Result<std::borrow::Cow<'a, [T]>, OutOfMemory> {
+        match self.layout {
+            Layout::GridChannelsFirst => Ok(std::borrow::Cow::Owned(values::transpose(
+                v,
+                v.len() / self.dim.max(1),
+                self.dim,
+            )?)),
+            _ => Ok(std::borrow::Cow::Borrowed(v)),
+        }
+    }
 }
 
 /// A tensor that looked like a position table by name but was not taken, with the reason.
@@ -170,6 +223,7 @@ fn sincos_tolerance(dtype: Dtype) -> f64 {
 pub fn discover(source: &dyn TensorSource, hints: &Hints) -> Result<Discovery> {
     let entries = source.entries();
     let mut found = Discovery::default();
+    let kernel_widths: Vec<usize> = patch_kernels(entries).iter().map(|k| k.1).collect();
     for name in &hints.tensors {
         if !entries.iter().any(|t| &t.name == name) {
             found.warnings.push(format!(
@@ -182,8 +236,11 @@ pub fn discover(source: &dyn TensorSource, hints: &Hints) -> Result<Discovery> {
         if !forced && !is_position_name(&entry.name) {
             continue;
         }
-        match examine(source, entry, hints, forced)? {
-            Verdict::Table(t) => found.tables.push(*t),
+        match examine(source, entry, hints, forced, &kernel_widths)? {
+            Verdict::Table(t, warning) => {
+                found.warnings.extend(warning);
+                found.tables.push(*t)
+            }
             Verdict::Ambiguous(a) => found.ambiguous.push(a),
             Verdict::Skip(reason) => {
                 found.skipped.push(Skipped {
@@ -215,7 +272,8 @@ pub fn discover(source: &dyn TensorSource, hints: &Hints) -> Result<Discovery> {
 }
 
 enum Verdict {
-    Table(Box<Table>),
+    /// A table, and a warning when its reading rests on a default.
+    Table(Box<Table>, Option<String>),
     Ambiguous(Ambiguous),
     Skip(String),
     Ignore,
@@ -226,12 +284,45 @@ fn examine(
     entry: &TensorEntry,
     hints: &Hints,
     forced: bool,
+    kernel_widths: &[usize],
 ) -> Result<Verdict> {
-    let (layout, rows, dim, grid_from_shape) = match entry.shape.as_slice() {
-        [1, n, d] => (Layout::BatchRows, *n, *d, None),
-        [n, d] => (Layout::Rows, *n, *d, None),
-        [1, h, w, d] if *h >= 2 && *w >= 2 => (Layout::Grid, h * w, *d, Some((*h, *w))),
-        other => {
+    let mut notes = Vec::new();
+    let mut warning = None;
+    let four_d = match entry.shape.as_slice() {
+        [1, a, b, c] => channel_order(*a, *b, *c, hints, kernel_widths),
+        _ => Reading::Neither,
+    };
+    let (layout, rows, dim, grid_from_shape) = match (entry.shape.as_slice(), four_d) {
+        ([1, n, d], _) => (Layout::BatchRows, *n, *d, None),
+        ([n, d], _) => (Layout::Rows, *n, *d, None),
+        ([1, h, w, d], Reading::Only(Channels::Last, why)) => {
+            notes.extend(why);
+            (Layout::Grid, h * w, *d, Some((*h, *w)))
+        }
+        ([1, d, h, w], Reading::Only(Channels::First, why)) => {
+            notes.extend(why);
+            (Layout::GridChannelsFirst, h * w, *d, Some((*h, *w)))
+        }
+        ([1, h, w, d], Reading::Default) => {
+            let text = format!(
+                "{}: shape [1, {h}, {w}, {d}] reads the same either way; taken as channels last [1, H, W, D] (pass --channels first if it is [1, D, H, W])",
+                entry.name
+            );
+            notes.push(text.clone());
+            warning = Some(text);
+            (Layout::Grid, h * w, *d, Some((*h, *w)))
+        }
+        ([1, a, b, c], Reading::Ambiguous) => {
+            return Ok(Verdict::Ambiguous(Ambiguous {
+                name: entry.name.clone(),
+                rows: a * b * c,
+                candidates: vec![(0, [*a, *b]), (0, [*b, *c])],
+                resolve_with:
+                    "--channels last (for [1, H, W, D]) or --channels first (for [1, D, H, W])"
+                        .into(),
+            }))
+        }
+        (other, _) => {
             // Biases, scalars, conv kernels named like tables are not tables; say so only when
             // the user asked for this tensor or it is plausibly a table.
             return Ok(if forced || other.len() >= 2 {
@@ -259,7 +350,6 @@ fn examine(
         return Ok(Verdict::Skip("the table is empty".into()));
     }
 
-    let mut notes = Vec::new();
     let candidates: Vec<(usize, (usize, usize))> = if let Some(g) = grid_from_shape {
         if let Some(s) = hints.slots.filter(|&s| s != 0) {
             notes.push(format!(
@@ -307,7 +397,14 @@ fn examine(
             return Ok(Vec::new());
         }
         let bytes = source.bytes(entry)?;
-        Ok(values::decode_f64(entry.dtype, &bytes).expect("float dtype checked above"))
+        let v = values::decode_f64(entry.dtype, &bytes)
+            .map_err(|e| values::value_error(source.source_path(), &entry.name, e))?;
+        if layout != Layout::GridChannelsFirst {
+            return Ok(v);
+        }
+        // Channels first: rows of the grid are the columns of a [D, H·W] matrix.
+        values::transpose(&v, dim, rows)
+            .map_err(|e| values::out_of_memory(source.source_path(), &entry.name, e))
     };
     let tol = sincos_tolerance(entry.dtype);
     let mut loaded: Option<Vec<f64>> = None;
@@ -318,12 +415,16 @@ fn examine(
     let (slots, grid) = match candidates.len() {
         1 => candidates[0],
         0 => {
-            // No square grid: only a sine-cosine table can tell a non-square one.
+            // No square grid: only a sine-cosine table can tell a non-square one (and only one
+            // whose values are read).
             let v = loaded.insert(table_values()?);
-            let fits: Vec<_> = all_explanations(rows)
-                .into_iter()
-                .filter(|&(s, g)| sincos_fit(v, s, g).is_some())
-                .collect();
+            let fits: Vec<_> = match v.is_empty() {
+                true => Vec::new(),
+                false => all_explanations(rows)
+                    .into_iter()
+                    .filter(|&(s, g)| sincos_fit(v, s, g).is_some())
+                    .collect(),
+            };
             if fits.len() == 1 {
                 notes.push(format!(
                     "grid {}x{} read from the sine-cosine values (no square grid fits {rows} rows)",
@@ -392,22 +493,91 @@ fn examine(
         });
     }
 
-    Ok(Verdict::Table(Box::new(Table {
-        name: entry.name.clone(),
-        dtype: entry.dtype,
-        shape: entry.shape.clone(),
-        layout,
-        slots,
-        grid: [grid.0, grid.1],
-        dim,
-        patch: None,
-        patch_source: None,
-        kind,
-        sincos_first_axis: first_axis,
-        companions: Vec::new(),
-        copy_of: None,
-        notes,
-    })))
+    Ok(Verdict::Table(
+        Box::new(Table {
+            name: entry.name.clone(),
+            dtype: entry.dtype,
+            shape: entry.shape.clone(),
+            layout,
+            slots,
+            grid: [grid.0, grid.1],
+            dim,
+            patch: None,
+            patch_source: None,
+            kind,
+            sincos_first_axis: first_axis,
+            companions: Vec::new(),
+            copy_of: None,
+            notes,
+        }),
+        warning,
+    ))
+}
+
+/// How a 4-D `[1, a, b, c]` tensor reads.
+enum Reading {
+    /// As one order only; with the reason when it was not the only possible one.
+    Only(Channels, Option<String>),
+    /// Either way, with the same grid and width: channels last, with a warning.
+    Default,
+    /// Two readings that differ, and nothing to choose between them.
+    Ambiguous,
+    /// Not a grid either way.
+    Neither,
+}
+
+/// Decide whether `[1, a, b, c]` is `[1, H, W, D]` or `[1, D, H, W]`: the `--channels` flag,
+/// then `--source-grid`, a patch-projection kernel of the same width, a square grid, and an
+/// embedding width larger than both grid sides, in that order; each only when it tells the
+/// two readings apart.
+fn channel_order(a: usize, b: usize, c: usize, hints: &Hints, kernel_widths: &[usize]) -> Reading {
+    use Channels::{First, Last};
+    let (last_ok, first_ok) = (a >= 2 && b >= 2, b >= 2 && c >= 2);
+    match (last_ok, first_ok) {
+        (false, false) => return Reading::Neither,
+        (true, false) => return Reading::Only(Last, None),
+        (false, true) => return Reading::Only(First, None),
+        (true, true) => {}
+    }
+    if let Some(ch) = hints.channels {
+        return Reading::Only(
+            ch,
+            Some(format!("channel order from --channels {ch:?}").to_lowercase()),
+        );
+    }
+    let tests: [(bool, bool, &str); 4] = [
+        (
+            hints.source_grid == Some((a, b)),
+            hints.source_grid == Some((b, c)),
+            "--source-grid",
+        ),
+        (
+            kernel_widths.contains(&c),
+            kernel_widths.contains(&a),
+            "the width of the patch-projection kernel",
+        ),
+        (a == b, b == c, "the only square grid of the two readings"),
+        (
+            c > a && c > b,
+            a > b && a > c,
+            "the only reading whose width exceeds both grid sides",
+        ),
+    ];
+    for (last, first, why) in tests {
+        if last != first {
+            let order = if last { Last } else { First };
+            let text = match order {
+                Last => format!("channels last [1, H, W, D], from {why}"),
+                First => format!("channels first [1, D, H, W], from {why}"),
+            };
+            return Reading::Only(order, Some(text));
+        }
+    }
+    if a == b && b == c {
+        Reading::Default
+    } else {
+        Reading::Ambiguous
+    }
 }
 
 /// Square grids (side ≥ 2) that explain `rows` with 0..=MAX_SLOTS leading slots.
@@ -426,27 +596,42 @@ fn all_explanations(rows: usize) -> Vec<(usize, (usize, usize))> {
     let mut out = Vec::new();
     for s in 0..=MAX_SLOTS.min(rows) {
         let n = rows - s;
-        for h in 2..=n / 2 {
-            if n % h == 0 && n / h >= 2 {
-                out.push((s, (h, n / h)));
+        // Divisors in pairs up to the square root: time grows with √rows, not rows.
+        let mut pairs = Vec::new();
+        let mut h = 2;
+        while h * h <= n {
+            if n % h == 0 {
+                pairs.push((h, n / h));
+                if h != n / h {
+                    pairs.push((n / h, h));
+                }
             }
+            h += 1;
         }
+        pairs.sort_unstable();
+        out.extend(pairs.into_iter().map(|g| (s, g)));
     }
     out
 }
 
-/// Patch size from the patch-projection kernel: `[D, C, p, p]` (channels-first) or
-/// `[p, p, C, D]` (channels-last), whose output width D matches the table's.
-fn infer_patches(entries: &[TensorEntry], found: &mut Discovery, hints: &Hints) {
-    let kernels: Vec<(&TensorEntry, usize, usize)> = entries
+/// Patch-projection kernels `[D, C, p, p]` or `[p, p, C, D]` as (entry, D, p); tensors named
+/// like position tables are not kernels.
+fn patch_kernels(entries: &[TensorEntry]) -> Vec<(&TensorEntry, usize, usize)> {
+    entries
         .iter()
-        .filter(|e| values::is_float(e.dtype))
+        .filter(|e| values::is_float(e.dtype) && !is_position_name(&e.name))
         .filter_map(|e| match e.shape.as_slice() {
             [d, c, p, q] if p == q && *c <= 64 => Some((e, *d, *p)),
             [p, q, c, d] if p == q && *c <= 64 => Some((e, *d, *p)),
             _ => None,
         })
-        .collect();
+        .collect()
+}
+
+/// Patch size from the patch-projection kernel: `[D, C, p, p]` (channels-first) or
+/// `[p, p, C, D]` (channels-last), whose output width D matches the table's.
+fn infer_patches(entries: &[TensorEntry], found: &mut Discovery, hints: &Hints) {
+    let kernels = patch_kernels(entries);
     let name_score = |n: &str| {
         let n = normalized(n);
         ["patchemb", "patchify", "conv1", "stem", "embedding", "proj"]
@@ -521,7 +706,8 @@ fn find_companions(source: &dyn TensorSource, found: &mut Discovery) -> Result<(
         if owners.is_empty() {
             continue;
         }
-        let ids = values::decode_ints(entry.dtype, &source.bytes(entry)?).expect("integer dtype");
+        let ids = values::decode_ints(entry.dtype, &source.bytes(entry)?)
+            .map_err(|e| values::value_error(source.source_path(), &entry.name, e))?;
         if !ids.iter().enumerate().all(|(i, v)| *v == i as i64) {
             found.warnings.push(format!(
                 "{}: looks like a position-id buffer but does not hold 0..{}; left unchanged",

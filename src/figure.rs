@@ -9,17 +9,26 @@ use crate::checkpoint::{Source, TensorSource};
 use crate::discover::{self, Hints, Table};
 use crate::error::{Error, Result};
 use crate::render::{self, Figure, Panel};
-use crate::similarity::{self, Fidelity, Grid, MapSet, Profile};
+use crate::similarity::{self, Budget, Fidelity, Grid, MapSet, MapsError, Profile};
 use crate::values;
 use crate::write::{self, AtomicFile};
 
-/// A table's grid rows as f32, without the class slots.
-pub struct GridRows {
+/// A table's grid rows as f32 in row order, without the class slots: owned when read from a
+/// file, borrowed from a resize (no copy of an input-sized buffer).
+pub struct GridRows<'a> {
     pub table: Table,
-    pub rows: Vec<f32>,
+    pub rows: std::borrow::Cow<'a, [f32]>,
 }
 
-impl GridRows {
+impl<'a> GridRows<'a> {
+    /// Rows held elsewhere, with their table.
+    pub fn borrowed(table: &Table, rows: &'a [f32]) -> Self {
+        GridRows {
+            table: table.clone(),
+            rows: rows.into(),
+        }
+    }
+
     pub fn grid(&self) -> Grid<'_> {
         Grid {
             rows: &self.rows,
@@ -30,8 +39,14 @@ impl GridRows {
     }
 }
 
-/// Find the table to draw: the one named in `hints.tensors`, or the only one in the file.
-pub fn load_table(ckpt: &dyn TensorSource, hints: &Hints, name: Option<&str>) -> Result<GridRows> {
+/// Find the table to draw: the one named in `hints.tensors`, or the only one in the file. Its
+/// bytes and decoded rows must fit `memory_limit`.
+pub fn load_table(
+    ckpt: &dyn TensorSource,
+    hints: &Hints,
+    name: Option<&str>,
+    memory_limit: u64,
+) -> Result<GridRows<'static>> {
     let found = discover::discover(ckpt, hints)?;
     let table = match name.or(hints.tensors.first().map(String::as_str)) {
         Some(n) => found.table(n).cloned().ok_or_else(|| {
@@ -61,11 +76,55 @@ pub fn load_table(ckpt: &dyn TensorSource, hints: &Hints, name: Option<&str>) ->
         },
     };
     let entry = ckpt.find(&table.name).expect("discovered tables exist");
+    // The bytes and their f32 decoding (two decodings for a channels-first transpose).
+    let copies = if table.layout == discover::Layout::GridChannelsFirst {
+        2
+    } else {
+        1
+    };
+    let needed = entry
+        .byte_len()
+        .saturating_add(table_f32_bytes(&table).saturating_mul(copies));
+    if needed > memory_limit {
+        return Err(Error::refused(
+            ckpt.source_path(),
+            format!(
+                "reading \"{}\" needs about {} MiB, over the {} MiB guard; raise it with --memory-limit",
+                table.name,
+                needed >> 20,
+                memory_limit >> 20
+            ),
+        ));
+    }
     let bytes = ckpt.bytes(entry)?;
     let elem = entry.dtype.bitsize() / 8;
     let rows = values::decode_f32(entry.dtype, &bytes[table.slots * table.dim * elem..])
-        .expect("float table");
-    Ok(GridRows { table, rows })
+        .map_err(|e| values::value_error(ckpt.source_path(), &table.name, e))?;
+    drop(bytes);
+    let rows = table
+        .to_row_order(rows)
+        .map_err(|e| values::out_of_memory(ckpt.source_path(), &table.name, e))?;
+    Ok(GridRows {
+        table,
+        rows: rows.into(),
+    })
+}
+
+/// Bytes of a table's grid rows as f32.
+fn table_f32_bytes(t: &Table) -> u64 {
+    (t.grid[0] as u64 * t.grid[1] as u64)
+        .saturating_mul(t.dim as u64)
+        .saturating_mul(4)
+}
+
+/// A maps failure as a run error naming `path`.
+pub(crate) fn maps_error(path: &Path, table: &str, e: MapsError) -> Error {
+    match e {
+        MapsError::OutOfMemory(m) => {
+            values::out_of_memory(path, &format!("similarity maps of \"{table}\""), m)
+        }
+        over => Error::refused(path, format!("\"{table}\": {over}")),
+    }
 }
 
 /// What `map` reports.
@@ -84,6 +143,8 @@ pub struct MapReport {
     pub output: PathBuf,
     pub width: usize,
     pub height: usize,
+    /// How the maps were made when not as asked (fewer references, undefined similarity).
+    pub warnings: Vec<String>,
 }
 
 /// A drawn figure: the PNG bytes, the maps behind it, and the image size.
@@ -93,17 +154,30 @@ pub struct Drawn {
     pub after: Option<(MapSet, Fidelity)>,
     pub width: usize,
     pub height: usize,
+    /// Fewer references than asked for, or an undefined fidelity.
+    pub notes: Vec<String>,
 }
 
-/// Draw `before` (and `after`, if given).
-pub fn figure(before: &GridRows, after: Option<&GridRows>, refs: usize) -> Drawn {
-    let b = MapSet::spread(before.grid(), refs);
-    let a = after.map(|a| {
-        let set = b.matching(a.grid());
-        let fid = similarity::fidelity(&b, &set);
-        (set, fid)
-    });
+/// Draw `before` (and `after`, if given) within the memory and time `budget`. `path` is the
+/// file errors name.
+pub fn figure(
+    path: &Path,
+    before: &GridRows,
+    after: Option<&GridRows>,
+    refs: usize,
+    budget: Budget,
+) -> Result<Drawn> {
     let t = &before.table;
+    let sets = similarity::map_sets(before.grid(), after.map(GridRows::grid), refs, budget)
+        .map_err(|e| maps_error(path, &t.name, e))?;
+    let b = sets.before;
+    let a = sets.after;
+    let mut notes: Vec<String> = sets
+        .note
+        .map(|n| format!("\"{}\": maps drawn at {n}", t.name))
+        .into_iter()
+        .collect();
+    notes.extend(a.as_ref().and_then(|(_, f)| f.note(&t.name)));
     let title = match after {
         Some(a) => format!(
             "{}  |  {}x{} -> {}x{}  |  {}",
@@ -117,10 +191,7 @@ pub fn figure(before: &GridRows, after: Option<&GridRows>, refs: usize) -> Drawn
         b.ref_cols.len()
     );
     if let Some((_, f)) = &a {
-        subtitle.push_str(&format!(
-            "  |  fidelity {:.3}, lowest {:.3} at row {}, column {}",
-            f.score, f.min, f.worst[0], f.worst[1]
-        ));
+        subtitle.push_str(&format!("  |  {}", fidelity_text(f)));
     }
     let prefix = if after.is_some() { "before: " } else { "" };
     let mut panels = vec![Panel {
@@ -141,12 +212,23 @@ pub fn figure(before: &GridRows, after: Option<&GridRows>, refs: usize) -> Drawn
         subtitle,
         panels,
     });
-    Drawn {
+    Ok(Drawn {
         png: canvas.png(),
         before: b,
         after: a,
         width: canvas.width,
         height: canvas.height,
+        notes,
+    })
+}
+
+/// "fidelity 0.987, lowest 0.950 at row 3, column 7", or "fidelity undefined".
+pub fn fidelity_text(f: &Fidelity) -> String {
+    match (f.score, f.min, f.worst) {
+        (Some(score), Some(min), Some([r, c])) => {
+            format!("fidelity {score:.3}, lowest {min:.3} at row {r}, column {c}")
+        }
+        _ => "fidelity undefined (zero rows: cosine similarity is undefined)".to_string(),
     }
 }
 
@@ -158,7 +240,8 @@ pub fn write_png(path: &Path, png: &[u8], force: bool, input: &Path) -> Result<(
     out.commit()
 }
 
-/// The whole `map` command as a library call.
+/// The whole `map` command as a library call. `memory_limit` bounds the tables read, the maps
+/// and the score together.
 pub fn run(
     before_path: &Path,
     after_path: Option<&Path>,
@@ -166,36 +249,52 @@ pub fn run(
     refs: usize,
     output: &Path,
     force: bool,
+    memory_limit: u64,
 ) -> Result<MapReport> {
     let ckpt = Source::open(before_path)?;
-    let before = load_table(&ckpt, hints, None)?;
+    let before = load_table(&ckpt, hints, None, memory_limit)?;
+    let left = memory_limit.saturating_sub(table_f32_bytes(&before.table));
     let after = match after_path {
         Some(p) => {
             let ck = Source::open(p)?;
             // The same table by name; its grid comes from the file, not from the hints.
             let after_hints = Hints {
                 tensors: vec![before.table.name.clone()],
+                channels: hints.channels,
                 ..Hints::default()
             };
-            Some(load_table(&ck, &after_hints, Some(&before.table.name))?)
+            let a = load_table(&ck, &after_hints, Some(&before.table.name), left)?;
+            if a.table.dim != before.table.dim {
+                return Err(Error::table(
+                    p,
+                    format!(
+                        "\"{}\" has width {} here but {} in {}; the maps of tables of different widths cannot be compared",
+                        before.table.name,
+                        a.table.dim,
+                        before.table.dim,
+                        before_path.display()
+                    ),
+                ));
+            }
+            Some(a)
         }
         None => None,
     };
-    if let Some(a) = &after {
-        if a.table.dim != before.table.dim {
-            return Err(Error::Usage(format!(
-                "\"{}\" has width {} before and {} after; the maps cannot be compared",
-                before.table.name, before.table.dim, a.table.dim
-            )));
-        }
-    }
+    let left = left.saturating_sub(after.as_ref().map_or(0, |a| table_f32_bytes(&a.table)));
     let Drawn {
         png,
         before: b,
         after: a,
         width,
         height,
-    } = figure(&before, after.as_ref(), refs);
+        notes,
+    } = figure(
+        before_path,
+        &before,
+        after.as_ref(),
+        refs,
+        Budget::memory(left),
+    )?;
     write_png(output, &png, force, before_path)?;
     Ok(MapReport {
         file: before_path.to_path_buf(),
@@ -211,5 +310,6 @@ pub fn run(
         output: output.to_path_buf(),
         width,
         height,
+        warnings: notes,
     })
 }

@@ -50,6 +50,9 @@ pub struct TableChange {
     pub antialias_applied: bool,
     /// A sine-cosine table built anew on the target grid (not resampled).
     pub rebuild: bool,
+    /// Bytes the resize of this table needs (what the memory guard checked).
+    #[serde(skip)]
+    pub needed_bytes: u64,
 }
 
 /// One position-id buffer to rewrite as 0..N'-1.
@@ -142,6 +145,7 @@ pub fn build(ckpt: &dyn TensorSource, found: &Discovery, request: &Request) -> R
             Layout::BatchRows => vec![1, rows, table.dim],
             Layout::Rows => vec![rows, table.dim],
             Layout::Grid => vec![1, to[0], to[1], table.dim],
+            Layout::GridChannelsFirst => vec![1, table.dim, to[0], to[1]],
         };
         let elem = table.dtype.bitsize() as u64 / 8;
         // Output bytes plus the f32/f64 working copies of source, intermediate and output.
@@ -152,9 +156,15 @@ pub fn build(ckpt: &dyn TensorSource, found: &Discovery, request: &Request) -> R
         };
         let cells = (rows as u64).saturating_mul(table.dim as u64);
         let source_cells = (table.slots + from[0] * from[1]) as u64 * table.dim as u64;
+        // A channels-first table is transposed to rows and back: one more copy of each.
+        let copies = if table.layout == Layout::GridChannelsFirst {
+            1
+        } else {
+            0
+        };
         let needed = cells
-            .saturating_mul(elem + 3 * work)
-            .saturating_add(source_cells.saturating_mul(elem + work));
+            .saturating_mul(elem + (3 + copies) * work)
+            .saturating_add(source_cells.saturating_mul(elem + (1 + copies) * work));
         if needed > request.memory_limit {
             return Err(Error::refused(
                 path,
@@ -183,7 +193,7 @@ pub fn build(ckpt: &dyn TensorSource, found: &Discovery, request: &Request) -> R
             } else {
                 vec![rows]
             };
-            if crate::values::encode_range(entry.dtype, rows).is_none() {
+            if !crate::values::range_fits(entry.dtype, rows) {
                 return Err(Error::refused(
                     path,
                     format!(
@@ -206,6 +216,7 @@ pub fn build(ckpt: &dyn TensorSource, found: &Discovery, request: &Request) -> R
             options: request.options,
             antialias_applied,
             rebuild,
+            needed_bytes: needed,
         });
     }
     Ok(plan)

@@ -222,8 +222,10 @@ pub fn map_text(r: &MapReport) -> String {
     if let (Some(g), Some(f)) = (r.after_grid, &r.fidelity) {
         let _ = write!(
             s,
-            "; after {}x{}: fidelity {:.3} (lowest {:.3} at row {}, column {})",
-            g[0], g[1], f.score, f.min, f.worst[0], f.worst[1]
+            "; after {}x{}: {}",
+            g[0],
+            g[1],
+            crate::figure::fidelity_text(f)
         );
     }
     let mut out = String::new();

@@ -164,20 +164,9 @@ pub fn run(job: &ResizeJob) -> Result<ResizeReport> {
         grids,
     } = compute(&source, &plan, job.request.allow_nonfinite)?;
     for (report_table, (change, before, after)) in report.tables.iter_mut().zip(&grids) {
-        let d = change.table.dim;
-        let b = Grid {
-            rows: before,
-            h: change.from[0],
-            w: change.from[1],
-            d,
-        };
-        let a = Grid {
-            rows: after,
-            h: change.to[0],
-            w: change.to[1],
-            d,
-        };
-        report_table.fidelity = Some(similarity::score(b, a, job.refs).score);
+        let (fidelity, notes) = table_fidelity(change, before, after, job);
+        report_table.fidelity = fidelity;
+        report.warnings.extend(notes);
     }
     let data_size: u64 = source
         .entries()
@@ -253,21 +242,63 @@ pub fn run(job: &ResizeJob) -> Result<ResizeReport> {
     }
     report.bytes_written = report.output_size;
     if let (Some(png_path), Some((change, before, after))) = (&job.map, grids.first()) {
-        let rows = |table: &discover::Table, rows: &[f32]| GridRows {
-            table: table.clone(),
-            rows: rows.to_vec(),
-        };
+        let rows = GridRows::borrowed;
         let mut after_table = change.table.clone();
         after_table.grid = change.to;
         let drawn = figure::figure(
+            &job.input,
             &rows(&change.table, before),
             Some(&rows(&after_table, after)),
             job.refs,
-        );
+            fidelity_budget(change, job),
+        )?;
+        report.warnings.extend(drawn.notes.iter().cloned());
         figure::write_png(png_path, &drawn.png, job.force, &job.input)?;
         report.map = Some(png_path.to_path_buf());
     }
     Ok(report)
+}
+
+/// What the memory guard leaves for the maps and the fidelity score of a table once its
+/// resize is paid for.
+fn fidelity_budget(change: &TableChange, job: &ResizeJob) -> similarity::Budget {
+    similarity::Budget::memory(job.request.memory_limit.saturating_sub(change.needed_bytes))
+}
+
+/// The fidelity score of one resized table (`None` when undefined or over the guard) and
+/// the warnings that explain it.
+fn table_fidelity(
+    change: &TableChange,
+    before: &[f32],
+    after: &[f32],
+    job: &ResizeJob,
+) -> (Option<f64>, Vec<String>) {
+    let grid = |rows, [h, w]: [usize; 2]| Grid {
+        rows,
+        h,
+        w,
+        d: change.table.dim,
+    };
+    let name = &change.table.name;
+    match similarity::score(
+        grid(before, change.from),
+        grid(after, change.to),
+        job.refs,
+        fidelity_budget(change, job),
+    ) {
+        Ok((f, note)) => {
+            let notes = note
+                .map(|n| format!("\"{name}\": fidelity from {n}"))
+                .into_iter()
+                .chain(f.note(name))
+                .collect();
+            (f.score, notes)
+        }
+        Err(e) => (
+            None,
+            vec![format!("\"{name}\": fidelity not computed: {e}")],
+        ),
+    }
 }
 
 fn progress_for(job: &ResizeJob, total: u64) -> Box<dyn Progress> {
@@ -438,7 +469,8 @@ fn compute<'a>(
     }
     for c in &plan.companions {
         let entry = ckpt.find(&c.name).expect("planned companions exist");
-        let bytes = values::encode_range(entry.dtype, c.rows).expect("checked when planning");
+        let bytes = values::encode_range(entry.dtype, c.rows)
+            .map_err(|e| values::value_error(ckpt.source_path(), &c.name, e))?;
         out.bytes.insert(c.name.clone(), bytes);
     }
     Ok(out)
@@ -446,6 +478,8 @@ fn compute<'a>(
 
 /// Class slots copied byte for byte, grid rows resampled in f32 (f64 for F64 tables) and
 /// rounded to the table's dtype, nearest even. Also returns the grid rows before and after.
+/// Non-finite values are refused in the input (class rows included) and in the output, where
+/// a kernel with negative lobes can overshoot past the dtype's largest value.
 fn resized_table(
     path: &Path,
     entry: &TensorEntry,
@@ -457,54 +491,117 @@ fn resized_table(
     let elem = entry.dtype.bitsize() / 8;
     let slot_bytes = t.slots * t.dim * elem;
     let (slots, grid) = raw.split_at(slot_bytes);
-    let to = (change.to[0], change.to[1]);
-    let mut bytes = Vec::with_capacity(slot_bytes + to.0 * to.1 * t.dim * elem);
-    bytes.extend_from_slice(slots);
-    let nonfinite = |n: usize| {
-        Error::refused(
-            path,
-            format!("table \"{}\" holds {n} NaN or infinite value(s); pass --allow-nonfinite to resize it anyway", t.name),
-        )
-    };
-    // Refuse non-finite input, then resample: the same steps in f64 or f32.
-    fn run<T: resample::Sample>(
-        v: &[T],
-        finite: fn(&T) -> bool,
-        change: &TableChange,
-        allow_nonfinite: bool,
-        refuse: &dyn Fn(usize) -> Error,
-    ) -> Result<Vec<T>> {
-        let bad = v.iter().filter(|x| !finite(x)).count();
-        if bad > 0 && !allow_nonfinite {
-            return Err(refuse(bad));
-        }
-        let (from, to) = (
-            (change.from[0], change.from[1]),
-            (change.to[0], change.to[1]),
-        );
-        let t = &change.table;
-        match (change.rebuild, t.sincos_first_axis) {
-            (true, Some(first)) => Ok(crate::sincos::build(to.0, to.1, t.dim, first)
-                .expect("a recognised sine-cosine table has a width divisible by 4")
-                .into_iter()
-                .map(T::from_f64)
-                .collect()),
-            _ => resample::resample(v, from, t.dim, to, &change.options)
-                .map_err(|e| Error::Usage(format!("{}: {e}", t.name))),
-        }
+    if !allow_nonfinite {
+        refuse_nonfinite_input(path, t, entry.dtype, slots, grid)?;
     }
-    let (encoded, before, after) = if entry.dtype == Dtype::F64 {
-        let v = values::decode_f64(entry.dtype, grid).expect("float dtype");
-        let r = run(&v, |x| x.is_finite(), change, allow_nonfinite, &nonfinite)?;
-        let narrow = |x: &[f64]| x.iter().map(|v| *v as f32).collect::<Vec<f32>>();
-        (values::encode_f64(entry.dtype, &r), narrow(&v), narrow(&r))
+    let out_len = slot_bytes + change.to[0] * change.to[1] * t.dim * elem;
+    let oom = |e| values::out_of_memory(path, &format!("resizing \"{}\"", t.name), e);
+    let mut bytes = values::try_with_capacity(out_len).map_err(oom)?;
+    bytes.extend_from_slice(slots);
+    let value_error = |e| values::value_error(path, &format!("resizing \"{}\"", t.name), e);
+    // Computed in row order [H·W, D]; stored in the table's own layout.
+    let (before, after) = if entry.dtype == Dtype::F64 {
+        let v = values::decode_f64(entry.dtype, grid).map_err(value_error)?;
+        let v = t.to_row_order(v).map_err(oom)?;
+        let r = new_grid(&v, change).map_err(|e| resample_error(path, t, e))?;
+        let stored = t.from_row_order(&r).map_err(oom)?;
+        values::encode_f64_into(entry.dtype, &stored, &mut bytes).map_err(value_error)?;
+        let narrow = |x: &[f64]| values::try_collect(x.len(), x.iter().map(|v| *v as f32));
+        (narrow(&v).map_err(oom)?, narrow(&r).map_err(oom)?)
     } else {
-        let v = values::decode_f32(entry.dtype, grid).expect("float dtype");
-        let r = run(&v, |x| x.is_finite(), change, allow_nonfinite, &nonfinite)?;
-        (values::encode_f32(entry.dtype, &r), v, r)
+        let v = values::decode_f32(entry.dtype, grid).map_err(value_error)?;
+        let v = t.to_row_order(v).map_err(oom)?;
+        let r = new_grid(&v, change).map_err(|e| resample_error(path, t, e))?;
+        let stored = t.from_row_order(&r).map_err(oom)?;
+        values::encode_f32_into(entry.dtype, &stored, &mut bytes).map_err(value_error)?;
+        drop(stored);
+        (v, r)
     };
-    bytes.extend(encoded.expect("float dtype"));
+    if !allow_nonfinite {
+        refuse_nonfinite_output(path, change, entry.dtype, &bytes[slot_bytes..])?;
+    }
     Ok((bytes, before, after))
+}
+
+/// The new grid rows: resampled, or for `--rebuild-sincos` built anew.
+fn new_grid<T: resample::Sample>(
+    v: &[T],
+    change: &TableChange,
+) -> std::result::Result<Vec<T>, resample::ResampleError> {
+    let (from, to) = (
+        (change.from[0], change.from[1]),
+        (change.to[0], change.to[1]),
+    );
+    let t = &change.table;
+    match (change.rebuild, t.sincos_first_axis) {
+        (true, Some(first)) => Ok(crate::sincos::build(to.0, to.1, t.dim, first)
+            .expect("a recognised sine-cosine table has a width divisible by 4")
+            .into_iter()
+            .map(T::from_f64)
+            .collect()),
+        _ => resample::resample(v, from, t.dim, to, &change.options),
+    }
+}
+
+fn resample_error(path: &Path, t: &discover::Table, e: resample::ResampleError) -> Error {
+    match e {
+        resample::ResampleError::OutOfMemory { bytes } => values::out_of_memory(
+            path,
+            &format!("resizing \"{}\"", t.name),
+            values::OutOfMemory { bytes },
+        ),
+        other => Error::Usage(format!("{}: {other}", t.name)),
+    }
+}
+
+fn refuse_nonfinite_input(
+    path: &Path,
+    t: &discover::Table,
+    dtype: Dtype,
+    slots: &[u8],
+    grid: &[u8],
+) -> Result<()> {
+    let (in_slots, in_grid) = (
+        values::count_nonfinite(dtype, slots),
+        values::count_nonfinite(dtype, grid),
+    );
+    if in_slots + in_grid == 0 {
+        return Ok(());
+    }
+    let place = match (in_slots, in_grid) {
+        (0, _) => "in its grid rows".to_string(),
+        (_, 0) => "in its class rows".to_string(),
+        (s, g) => format!("{s} in its class rows, {g} in its grid rows"),
+    };
+    Err(Error::refused(
+        path,
+        format!(
+            "table \"{}\" holds {} NaN or infinite value(s) ({place}); pass --allow-nonfinite to resize it anyway",
+            t.name,
+            in_slots + in_grid
+        ),
+    ))
+}
+
+fn refuse_nonfinite_output(
+    path: &Path,
+    change: &TableChange,
+    dtype: Dtype,
+    grid: &[u8],
+) -> Result<()> {
+    let bad = values::count_nonfinite(dtype, grid);
+    if bad == 0 {
+        return Ok(());
+    }
+    Err(Error::refused(
+        path,
+        format!(
+            "resizing table \"{}\" to {}x{} with the {} kernel gives {bad} infinite or NaN value(s) in {dtype} \
+(the kernel overshoots values near the largest {dtype} can hold); use a kernel that cannot overshoot \
+(--kernel bilinear, area or nearest), or pass --allow-nonfinite to write them anyway",
+            change.table.name, change.to[0], change.to[1], change.options.kernel
+        ),
+    ))
 }
 
 /// Tensors in data order (by their offsets in the input).

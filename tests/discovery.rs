@@ -486,3 +486,251 @@ fn integer_table_is_skipped_with_a_reason() {
         found.skipped[0].reason.contains("shape") || found.skipped[0].reason.contains("integer")
     );
 }
+
+/// `[1, H, W, D]` values (row order) rearranged as `[1, D, H, W]`.
+fn channels_first(v: &[f64], h: usize, w: usize, d: usize) -> Vec<f64> {
+    (0..d)
+        .flat_map(|k| (0..h * w).map(move |cell| v[cell * d + k]))
+        .collect()
+}
+
+#[test]
+fn channels_first_tables_are_recognised() {
+    let dir = tempfile::tempdir().unwrap();
+    let (h, w, d) = (6, 6, 32);
+    let values = channels_first(&smooth_table(0, h, w, d, 21), h, w, d);
+    let p = write(
+        dir.path(),
+        "cf.safetensors",
+        &[floats("pos_embed", Dtype::F32, &[1, d, h, w], &values)],
+        None,
+    );
+    let found = scan(&p, &Hints::default());
+    let t = &found.tables[0];
+    assert_eq!(
+        (t.layout, t.grid, t.dim, t.slots),
+        (Layout::GridChannelsFirst, [6, 6], 32, 0)
+    );
+    assert!(
+        t.notes.iter().any(|n| n.contains("channels first")),
+        "{t:?}"
+    );
+
+    // A sine-cosine table stored channels first is still recognised by its values.
+    let sc = channels_first(&sincos_table(0, 4, 4, 16), 4, 4, 16);
+    let p = write(
+        dir.path(),
+        "sc.safetensors",
+        &[floats("pos_embed", Dtype::F32, &[1, 16, 4, 4], &sc)],
+        None,
+    );
+    let t = &scan(&p, &Hints::default()).tables[0];
+    assert_eq!(
+        (t.layout, t.kind),
+        (Layout::GridChannelsFirst, Kind::Sincos)
+    );
+
+    // Non-square: the patch kernel's width tells which dimension holds the channels.
+    let p = write(
+        dir.path(),
+        "k.safetensors",
+        &[
+            floats(
+                "pos_embed",
+                Dtype::F32,
+                &[1, 12, 8, 10],
+                &noise(12 * 80, 3, 0.1),
+            ),
+            floats(
+                "patch_embed.proj.weight",
+                Dtype::F32,
+                &[12, 3, 16, 16],
+                &noise(12 * 768, 4, 0.1),
+            ),
+        ],
+        None,
+    );
+    let t = &scan(&p, &Hints::default()).tables[0];
+    assert_eq!(
+        (t.layout, t.grid, t.dim, t.patch),
+        (Layout::GridChannelsFirst, [8, 10], 12, Some(16))
+    );
+}
+
+#[test]
+fn a_four_dimensional_table_that_reads_two_ways_is_ambiguous_until_told() {
+    let dir = tempfile::tempdir().unwrap();
+    // [1, 10, 12, 11]: 10x12 of width 11, or 12x11 of width 10; nothing tells them apart.
+    let p = write(
+        dir.path(),
+        "amb.safetensors",
+        &[floats(
+            "pos_embed",
+            Dtype::F32,
+            &[1, 10, 12, 11],
+            &noise(10 * 12 * 11, 5, 0.1),
+        )],
+        None,
+    );
+    let found = scan(&p, &Hints::default());
+    assert!(found.tables.is_empty());
+    assert_eq!(found.ambiguous.len(), 1);
+    assert!(found.ambiguous[0].resolve_with.contains("--channels"));
+    for (channels, layout, grid, dim) in [
+        (
+            posgrid::discover::Channels::Last,
+            Layout::Grid,
+            [10, 12],
+            11,
+        ),
+        (
+            posgrid::discover::Channels::First,
+            Layout::GridChannelsFirst,
+            [12, 11],
+            10,
+        ),
+    ] {
+        let t = scan(
+            &p,
+            &Hints {
+                channels: Some(channels),
+                ..Hints::default()
+            },
+        )
+        .tables[0]
+            .clone();
+        assert_eq!((t.layout, t.grid, t.dim), (layout, grid, dim));
+    }
+    // --source-grid settles it too.
+    let t = &scan(
+        &p,
+        &Hints {
+            source_grid: Some((12, 11)),
+            ..Hints::default()
+        },
+    )
+    .tables[0];
+    assert_eq!(t.layout, Layout::GridChannelsFirst);
+    // A cube reads the same either way: channels last, with a warning naming the flag.
+    let p = write(
+        dir.path(),
+        "cube.safetensors",
+        &[floats(
+            "pos_embed",
+            Dtype::F32,
+            &[1, 8, 8, 8],
+            &noise(512, 6, 0.1),
+        )],
+        None,
+    );
+    let found = scan(&p, &Hints::default());
+    assert_eq!(found.tables[0].layout, Layout::Grid);
+    assert!(
+        found
+            .warnings
+            .iter()
+            .any(|w| w.contains("--channels first")),
+        "{:?}",
+        found.warnings
+    );
+}
+
+#[test]
+fn a_channels_first_table_is_resized_in_its_own_layout() {
+    // The same table stored both ways must come out the same, each in its own layout.
+    let dir = tempfile::tempdir().unwrap();
+    let (h, w, d) = (6, 6, 16);
+    let rows = smooth_table(0, h, w, d, 22);
+    let last = write(
+        dir.path(),
+        "last.safetensors",
+        &[floats("pos_embed", Dtype::F32, &[1, h, w, d], &rows)],
+        None,
+    );
+    let first = write(
+        dir.path(),
+        "first.safetensors",
+        &[floats(
+            "pos_embed",
+            Dtype::F32,
+            &[1, d, h, w],
+            &channels_first(&rows, h, w, d),
+        )],
+        None,
+    );
+    let run = |input: &std::path::Path, out: &str| {
+        let out = dir.path().join(out);
+        let o = std::process::Command::new(env!("CARGO_BIN_EXE_posgrid"))
+            .args(["resize", input.to_str().unwrap(), "-o"])
+            .arg(&out)
+            .args(["--grid", "9x12"])
+            .output()
+            .unwrap();
+        assert_eq!(
+            o.status.code(),
+            Some(0),
+            "{}",
+            String::from_utf8_lossy(&o.stderr)
+        );
+        let bytes = std::fs::read(out).unwrap();
+        let st = safetensors::SafeTensors::deserialize(&bytes).unwrap();
+        let t = st.tensor("pos_embed").unwrap();
+        let v: Vec<f64> = t
+            .data()
+            .chunks_exact(4)
+            .map(|c| f32::from_le_bytes(c.try_into().unwrap()) as f64)
+            .collect();
+        (t.shape().to_vec(), v)
+    };
+    let (shape_last, v_last) = run(&last, "last-out.safetensors");
+    let (shape_first, v_first) = run(&first, "first-out.safetensors");
+    assert_eq!(shape_last, [1, 9, 12, d]);
+    assert_eq!(shape_first, [1, d, 9, 12]);
+    assert_eq!(v_first, channels_first(&v_last, 9, 12, d));
+}
+
+#[test]
+fn a_long_table_without_a_square_grid_is_skipped_quickly() {
+    // 2^31 + 11 rows of width 1 (4 GiB of F16 in a sparse file): looking for non-square grids
+    // used to try every divisor up to rows / 2, nine times, and took many seconds.
+    let dir = tempfile::tempdir().unwrap();
+    let rows: u64 = (1 << 31) + 11;
+    let len = rows * 2;
+    let header = format!(
+        r#"{{"pos_embed":{{"dtype":"F16","shape":[1,{rows},1],"data_offsets":[0,{len}]}}}}"#
+    );
+    let p = crafted(dir.path(), "long.safetensors", &header, &[]);
+    let f = std::fs::OpenOptions::new().write(true).open(&p).unwrap();
+    f.set_len(8 + header.len() as u64 + len).unwrap();
+    let start = std::time::Instant::now();
+    let found = scan(&p, &Hints::default());
+    assert!(start.elapsed().as_secs_f64() < 2.0, "{:?}", start.elapsed());
+    assert!(found.tables.is_empty());
+    assert!(
+        found.skipped[0].reason.contains("no square-grid"),
+        "{found:?}"
+    );
+}
+
+#[test]
+fn non_square_explanations_are_every_divisor_pair() {
+    // 60 rows (no square grid with 0-8 slots), read from the sine-cosine values: the grid is
+    // found among all factorisations, whichever way round.
+    let dir = tempfile::tempdir().unwrap();
+    let d = 16;
+    for (h, w) in [(6, 10), (10, 6), (4, 15), (3, 20)] {
+        let p = write(
+            dir.path(),
+            "ns.safetensors",
+            &[floats(
+                "pos_embed",
+                Dtype::F32,
+                &[1, h * w, d],
+                &sincos_table(0, h, w, d),
+            )],
+            None,
+        );
+        let t = &scan(&p, &Hints::default()).tables[0];
+        assert_eq!((t.slots, t.grid), (0, [h, w]), "{h}x{w}");
+    }
+}

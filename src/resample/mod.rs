@@ -46,6 +46,15 @@ pub enum ResampleError {
     AreaNeedsHalfPixel,
     #[error("cubic parameter a must be finite")]
     BadCubicA,
+    /// A working buffer could not be allocated.
+    #[error("cannot allocate {} MiB for the resampled values", bytes.div_ceil(1 << 20))]
+    OutOfMemory { bytes: usize },
+}
+
+impl From<crate::values::OutOfMemory> for ResampleError {
+    fn from(e: crate::values::OutOfMemory) -> Self {
+        ResampleError::OutOfMemory { bytes: e.bytes }
+    }
 }
 
 /// Check options and sizes without doing any work.
@@ -85,11 +94,17 @@ pub fn resample<T: Sample>(
         });
     }
     if (h, w) == (oh, ow) || d == 0 {
-        return Ok(src.to_vec());
+        return copied(src);
     }
     let across = axis_weights(w, ow, opts);
     let down = axis_weights(h, oh, opts);
-    Ok(apply(src, (h, w), d, &down, &across))
+    apply(src, (h, w), d, &down, &across)
+}
+
+fn copied<T: Sample>(src: &[T]) -> Result<Vec<T>, ResampleError> {
+    let mut v = crate::values::try_with_capacity(src.len())?;
+    v.extend_from_slice(src);
+    Ok(v)
 }
 
 /// Resample an `[H, W, D]` array view (any memory layout) to `[oh, ow, D]`.
@@ -108,20 +123,22 @@ pub fn resample_array<T: Sample>(
 }
 
 /// Apply precomputed weight tables: first along rows (W → W'), then down columns (H → H').
+/// Buffers are allocated fallibly: their size comes from the input.
 pub fn apply<T: Sample>(
     src: &[T],
     (h, w): (usize, usize),
     d: usize,
     down: &AxisWeights,
     across: &AxisWeights,
-) -> Vec<T> {
+) -> Result<Vec<T>, ResampleError> {
     let ow = across.output;
     let oh = down.output;
     let horizontal = if w == ow {
         None
     } else {
         let wx: Vec<T> = across.weight.iter().map(|&v| T::from_f64(v)).collect();
-        let mut tmp = vec![T::default(); h * ow * d];
+        let mut tmp =
+            crate::values::try_filled(h.saturating_mul(ow).saturating_mul(d), T::default())?;
         tmp.par_chunks_mut(ow * d)
             .zip(src.par_chunks(w * d))
             .for_each(|(out_row, in_row)| {
@@ -141,11 +158,14 @@ pub fn apply<T: Sample>(
     };
     let rows = horizontal.as_deref().unwrap_or(src);
     if h == oh {
-        return horizontal.unwrap_or_else(|| src.to_vec());
+        return match horizontal {
+            Some(v) => Ok(v),
+            None => copied(src),
+        };
     }
     let wy: Vec<T> = down.weight.iter().map(|&v| T::from_f64(v)).collect();
     let row_len = ow * d;
-    let mut out = vec![T::default(); oh * row_len];
+    let mut out = crate::values::try_filled(oh.saturating_mul(row_len), T::default())?;
     out.par_chunks_mut(row_len)
         .enumerate()
         .for_each(|(o, out_row)| {
@@ -160,7 +180,7 @@ pub fn apply<T: Sample>(
                     .map(|(&i, &wt)| (&rows[i * row_len..(i + 1) * row_len], wt)),
             );
         });
-    out
+    Ok(out)
 }
 
 /// `dst = Σ weight · source` over the taps, element-wise; the loops vectorise over D.
