@@ -150,10 +150,11 @@ pub fn figure(before: &GridRows, after: Option<&GridRows>, refs: usize) -> Drawn
     }
 }
 
-/// Write bytes to `path` atomically (temporary file, sync, rename).
+/// Write bytes to `path` atomically (temporary file, sync, rename), replacing an existing
+/// file only with `force`, with permission bits no wider than `input`'s.
 pub fn write_png(path: &Path, png: &[u8], force: bool, input: &Path) -> Result<()> {
     write::check_destination(input, path, force)?;
-    let mut out = AtomicFile::create(path, true)?;
+    let mut out = AtomicFile::create_with(path, &write::OutputRules::like(input, true, force))?;
     out.write(png, &mut write::Silent)?;
     out.commit()
 }

@@ -5,12 +5,10 @@ use clap::Parser;
 fn main() {
     posgrid::write::install_interrupt_handler();
     let cli = posgrid::cli::Cli::parse();
-    let code = match posgrid::cli::run(cli) {
-        Ok(code) => code,
+    match posgrid::cli::run(cli) {
+        Ok(code) => posgrid::write::exit_process(code, None),
         Err(e) => {
-            eprintln!("posgrid: error: {e}");
-            e.exit_code()
+            posgrid::write::exit_process(e.exit_code(), Some(&format!("posgrid: error: {e}")))
         }
-    };
-    std::process::exit(code);
+    }
 }
