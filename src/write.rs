@@ -155,8 +155,7 @@ pub fn same_destination(a: &Path, b: &Path) -> bool {
 
 /// Whether `path` leads to a place inside directory `dir` (or is it).
 pub fn inside(path: &Path, dir: &Path) -> bool {
-    let dir = fs::canonicalize(dir).unwrap_or_else(|_| dir.to_path_buf());
-    resolved(path).starts_with(dir)
+    resolved(path).starts_with(resolved(dir))
 }
 
 fn parent_dir(path: &Path) -> PathBuf {
@@ -560,8 +559,14 @@ pub fn recognise_previous_set(output: &Path, input_dir: &Path) -> Result<()> {
 
 /// The shard names an index lists, if it is a small JSON file with a `weight_map` of strings.
 fn index_shards(path: &Path) -> Option<Vec<String>> {
-    let file = File::open(path).ok()?;
-    if file.metadata().ok()?.len() > INDEX_LIMIT {
+    // Non-blocking: a FIFO swapped in after the listing must not hang the run.
+    let file = OpenOptions::new()
+        .read(true)
+        .custom_flags(libc::O_NONBLOCK)
+        .open(path)
+        .ok()?;
+    let meta = file.metadata().ok()?;
+    if !meta.is_file() || meta.len() > INDEX_LIMIT {
         return None;
     }
     let mut text = Vec::new();

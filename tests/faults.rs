@@ -281,6 +281,32 @@ fn interrupt_while_parsing_a_huge_header() {
     );
 }
 
+#[test]
+fn interrupt_while_reading_a_large_shard_index() {
+    let dir = tempfile::tempdir().unwrap();
+    let set = dir.path().join("set");
+    std::fs::create_dir(&set).unwrap();
+    crafted(
+        &set,
+        "model-00001-of-00001.safetensors",
+        r#"{"a":{"dtype":"F32","shape":[1],"data_offsets":[0,4]}}"#,
+        &[0; 4],
+    );
+    // About 70 MB of weight_map entries: seconds to read and check.
+    let mut index =
+        String::from(r#"{"metadata":{},"weight_map":{"a":"model-00001-of-00001.safetensors""#);
+    for i in 0..1_500_000 {
+        index.push_str(&format!(r#","t{i:07}":"model-00001-of-00001.safetensors""#));
+    }
+    index.push_str("}}");
+    std::fs::write(set.join("model.safetensors.index.json"), index).unwrap();
+    interrupt_within_a_second(
+        dir.path(),
+        &["scan".as_ref(), set.as_os_str()],
+        libc::SIGINT,
+    );
+}
+
 /// A 192x192 table of width 384 (56 MB): resampling it, scoring its fidelity and drawing its
 /// maps take seconds.
 fn large_table(dir: &Path) -> PathBuf {
