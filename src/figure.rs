@@ -168,6 +168,10 @@ pub fn run(
     output: &Path,
     force: bool,
 ) -> Result<MapReport> {
+    // The figure's path is checked before any work, against both inputs.
+    for input in std::iter::once(before_path).chain(after_path) {
+        write::check_destination(input, output, force)?;
+    }
     let ckpt = Source::open(before_path)?;
     let before = load_table(&ckpt, hints, None)?;
     let after = match after_path {

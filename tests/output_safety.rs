@@ -447,3 +447,88 @@ fn outputs_are_never_more_open_than_the_input() {
         0o600
     );
 }
+
+/// Make `file` impossible to remove (immutable as root, a read-only directory otherwise);
+/// false if this system allows neither.
+fn pin(file: &Path) -> bool {
+    let immutable = Command::new("chattr")
+        .arg("+i")
+        .arg(file)
+        .stderr(Stdio::null())
+        .status()
+        .is_ok_and(|s| s.success());
+    if !immutable {
+        set_mode(file.parent().unwrap(), 0o555);
+    }
+    fs::remove_file(file).is_err()
+}
+
+fn unpin(file: &Path) {
+    let _ = Command::new("chattr")
+        .arg("-i")
+        .arg(file)
+        .stderr(Stdio::null())
+        .status();
+    set_mode(file.parent().unwrap(), 0o755);
+}
+
+#[test]
+fn an_old_set_that_cannot_be_removed_entirely_is_reported() {
+    let dir = tempfile::tempdir().unwrap();
+    let out = dir.path().join("set");
+    fs::create_dir(&out).unwrap();
+    fs::write(out.join("x.safetensors.index.json"), "{}").unwrap();
+    let stuck = out.join("x.safetensors");
+    fs::write(&stuck, "old").unwrap();
+    if !pin(&stuck) {
+        unpin(&stuck);
+        eprintln!("skipped: no way to make a file unremovable here");
+        return;
+    }
+    let rules = OutputRules {
+        sync: false,
+        replace: true,
+        mode_limit: 0o755,
+    };
+    let new = AtomicDir::create_with(&out, &rules).unwrap();
+    fs::write(new.path().join("x.safetensors"), "new").unwrap();
+    let committed = new.commit();
+    let left: Vec<PathBuf> = fs::read_dir(dir.path())
+        .unwrap()
+        .map(|e| e.unwrap().path())
+        .filter(|p| p != &out)
+        .collect();
+    for p in &left {
+        unpin(&p.join("x.safetensors"));
+    }
+    let warnings = committed.unwrap();
+    assert_eq!(fs::read(out.join("x.safetensors")).unwrap(), b"new");
+    assert_eq!(left.len(), 1, "{left:?}");
+    assert_eq!(warnings.len(), 1, "{warnings:?}");
+    assert!(
+        warnings[0].contains(&*left[0].to_string_lossy()),
+        "{warnings:?}"
+    );
+}
+
+#[test]
+fn map_refuses_to_draw_over_either_input() {
+    let dir = tempfile::tempdir().unwrap();
+    let before = small_vit(dir.path(), "before.safetensors");
+    let after = dir.path().join("after.safetensors");
+    let o = resize(&before, &after, &[] as &[&str]);
+    assert_eq!(o.status.code(), Some(0), "{}", stderr(&o));
+    let kept = fs::read(&after).unwrap();
+    for target in [&before, &after] {
+        let o = posgrid(&[
+            "map".as_ref(),
+            before.as_os_str(),
+            after.as_os_str(),
+            "-o".as_ref(),
+            target.as_os_str(),
+            "--force".as_ref(),
+        ]);
+        assert_eq!(o.status.code(), Some(5), "{}", stderr(&o));
+    }
+    assert_eq!(fs::read(&after).unwrap(), kept);
+}
