@@ -498,6 +498,8 @@ fn sharded_output(
     let mut file = member(index_name.as_ref(), set.index_path())?;
     file.write(index_text.as_bytes(), progress.as_mut())?;
     file.commit()?;
+    // Checked again: OUTDIR may have changed during the write.
+    write::check_destination_dir(set.dir(), &job.output, job.force)?;
     out.warnings.extend(commit_with_map(
         job,
         set.index_path(),

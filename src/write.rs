@@ -712,7 +712,7 @@ pub fn commit_all(mut items: Vec<Pending>) -> Result<Vec<String>> {
             Ok(how) => done.push(how),
             Err(e) => {
                 for (item, how) in items.iter().zip(&done).rev() {
-                    undo(item, how);
+                    undo(item, how, &mut list);
                 }
                 return Err(e);
             }
@@ -720,16 +720,25 @@ pub fn commit_all(mut items: Vec<Pending>) -> Result<Vec<String>> {
     }
     let mut leftovers = Vec::new();
     for (item, how) in items.iter_mut().zip(done) {
-        let is_dir = item.parts().2;
+        let (_, final_path, is_dir, _) = item.parts();
+        let (final_path, is_dir) = (final_path.to_path_buf(), is_dir);
         let temp = item.settle();
         match how {
-            Installed::Swapped => leftovers.push((temp, is_dir)),
-            Installed::Aside(old) => leftovers.push((old, is_dir)),
+            Installed::Swapped => leftovers.push(Leftover {
+                old: temp,
+                final_path,
+                is_dir,
+            }),
+            Installed::Aside(old) => leftovers.push(Leftover {
+                old,
+                final_path,
+                is_dir,
+            }),
             Installed::New | Installed::Replaced => deregister(&mut list, &temp),
         }
     }
     drop(list);
-    let warnings = remove_old(&items, leftovers);
+    let warnings = remove_old(leftovers);
     for item in &items {
         let (_, final_path, _, rules) = item.parts();
         if rules.sync {
@@ -818,40 +827,50 @@ fn appeared_or(final_path: &Path, e: io::Error) -> Error {
 }
 
 /// Put back what [`install`] did, best effort (a later failure must not lose the old output).
-fn undo(item: &Pending, how: &Installed) {
+fn undo(item: &Pending, how: &Installed, list: &mut Vec<Temporary>) {
     let (temp, final_path, _, _) = item.parts();
     let _ = match how {
         Installed::New => fs::rename(final_path, temp),
         Installed::Swapped => rename::exchange(temp, final_path).map(|_| ()),
         Installed::Replaced => Ok(()),
         Installed::Aside(old) => {
-            fs::rename(final_path, temp).and_then(|()| fs::rename(old, final_path))
+            let back = fs::rename(final_path, temp).and_then(|()| fs::rename(old, final_path));
+            deregister(list, old);
+            back
         }
     };
 }
 
-/// Remove replaced old versions; a directory that cannot be removed entirely is named in a
-/// warning (it stays under its temporary name, and a later run removes it once this process
-/// is gone).
-fn remove_old(items: &[Pending], leftovers: Vec<(PathBuf, bool)>) -> Vec<String> {
+/// An old version displaced by a commit, to be removed.
+struct Leftover {
+    old: PathBuf,
+    final_path: PathBuf,
+    is_dir: bool,
+}
+
+/// Remove replaced old versions; one that cannot be removed entirely is named in a warning
+/// (it stays under its temporary name, and a later run removes it once this process is gone).
+fn remove_old(leftovers: Vec<Leftover>) -> Vec<String> {
     let mut warnings = Vec::new();
-    for (path, is_dir) in leftovers {
+    for Leftover {
+        old,
+        final_path,
+        is_dir,
+    } in leftovers
+    {
         let removed = if is_dir {
-            fs::remove_dir_all(&path)
+            fs::remove_dir_all(&old)
         } else {
-            fs::remove_file(&path)
+            fs::remove_file(&old)
         };
         if let Err(e) = removed {
-            let output = items
-                .first()
-                .map(|i| i.parts().1.display().to_string())
-                .unwrap_or_default();
             warnings.push(format!(
-                "{output} was replaced, but its previous contents, moved to {}, could not be removed entirely ({e}); remove them yourself",
-                path.display()
+                "{} was replaced, but its previous contents, moved to {}, could not be removed entirely ({e}); remove them yourself",
+                final_path.display(),
+                old.display()
             ));
         }
-        deregister(&mut temporaries(), &path);
+        deregister(&mut temporaries(), &old);
     }
     warnings
 }
