@@ -354,3 +354,62 @@ fn interrupt_while_drawing_maps() {
     ];
     interrupt_within_a_second(dir.path(), &args, libc::SIGHUP);
 }
+
+const STUCK_WRITER_OUT: &str = "POSGRID_TEST_STUCK_WRITER_OUT";
+
+/// Run by the next test in a child process: a library caller that installs the handler,
+/// starts writing an output, and then never looks at the interruption flag again.
+#[test]
+#[ignore = "a helper process for interrupting_a_writer_that_never_checks_removes_its_temporary"]
+fn stuck_writer() {
+    let Some(out) = std::env::var_os(STUCK_WRITER_OUT) else {
+        return;
+    };
+    posgrid::write::install_interrupt_handler();
+    let mut file = posgrid::write::AtomicFile::create(Path::new(&out), false).unwrap();
+    file.write(b"partial", &mut posgrid::write::Silent).unwrap();
+    loop {
+        std::thread::sleep(Duration::from_secs(60));
+    }
+}
+
+#[test]
+fn interrupting_a_writer_that_never_checks_removes_its_temporary() {
+    let dir = tempfile::tempdir().unwrap();
+    let out = dir.path().join("out.safetensors");
+    let mut child = Command::new(std::env::current_exe().unwrap())
+        .args(["stuck_writer", "--exact", "--ignored", "--nocapture"])
+        .env(STUCK_WRITER_OUT, &out)
+        .stdout(Stdio::null())
+        .stderr(Stdio::piped())
+        .spawn()
+        .unwrap();
+    let start = Instant::now();
+    while entries(dir.path()).is_empty() {
+        assert!(start.elapsed() < Duration::from_secs(20), "no temporary");
+        std::thread::sleep(Duration::from_millis(1));
+    }
+    unsafe { libc::kill(child.id() as i32, libc::SIGTERM) };
+    let sent = Instant::now();
+    let status = loop {
+        if let Some(status) = child.try_wait().unwrap() {
+            break status;
+        }
+        if sent.elapsed() > Duration::from_secs(10) {
+            child.kill().unwrap();
+            child.wait().unwrap();
+            panic!(
+                "not ended 10 s after SIGTERM; left: {:?}",
+                entries(dir.path())
+            );
+        }
+        std::thread::sleep(Duration::from_millis(5));
+    };
+    assert_eq!(status.code(), Some(130), "{status:?}");
+    assert!(
+        sent.elapsed() < Duration::from_secs(1),
+        "{:?}",
+        sent.elapsed()
+    );
+    assert!(entries(dir.path()).is_empty(), "{:?}", entries(dir.path()));
+}
