@@ -83,24 +83,17 @@ pub fn check_destination(input: &Path, output: &Path, force: bool) -> Result<()>
     let Ok(here) = fs::symlink_metadata(output) else {
         return Ok(());
     };
-    let through_link = if here.file_type().is_symlink() {
-        fs::metadata(output).ok()
-    } else {
-        None
-    };
+    let through_link = fs::metadata(output).ok();
     if here.is_dir() || through_link.as_ref().is_some_and(Metadata::is_dir) {
         return Err(Error::write(
             output,
             "is a directory; give a file path for the output",
         ));
     }
-    if !here.is_file() && !here.file_type().is_symlink() {
+    if let Some(what) = unreplaceable_file(&here, through_link.as_ref()) {
         return Err(Error::write(
             output,
-            format!(
-                "is {}; posgrid replaces only regular files (and symbolic links), even with --force",
-                kind_name(&here)
-            ),
+            format!("is {what}; posgrid replaces only regular files (and symbolic links to them), even with --force"),
         ));
     }
     if !force {
@@ -127,6 +120,22 @@ fn check_parent(output: &Path) -> Result<()> {
             output,
             format!("output directory {} does not exist", dir.display()),
         )),
+    }
+}
+
+/// What is wrong with replacing a file at a path, given its own metadata and (if it is a
+/// link that leads somewhere) its target's: anything but a regular file, or a link to a
+/// regular file or to nothing, is kept (`/dev/stdout` is a link to a device).
+fn unreplaceable_file(here: &Metadata, target: Option<&Metadata>) -> Option<String> {
+    if here.is_file() {
+        return None;
+    }
+    if !here.file_type().is_symlink() {
+        return Some(kind_name(here).to_string());
+    }
+    match target {
+        Some(t) if !t.is_file() => Some(format!("a symbolic link to {}", kind_name(t))),
+        _ => None,
     }
 }
 
@@ -761,18 +770,15 @@ fn install(item: &Pending, list: &mut Vec<Temporary>) -> Result<Installed> {
             .map(|()| Installed::New)
             .map_err(|e| appeared_or(final_path, e));
     };
-    let replaceable = if is_dir {
-        existing.is_dir()
+    let refused = if is_dir {
+        (!existing.is_dir()).then(|| kind_name(&existing).to_string())
     } else {
-        existing.is_file() || existing.file_type().is_symlink()
+        unreplaceable_file(&existing, fs::metadata(final_path).ok().as_ref())
     };
-    if !replaceable {
+    if let Some(what) = refused {
         return Err(Error::write(
             final_path,
-            format!(
-                "is now {}, which posgrid does not replace; it was left as it is and nothing was written",
-                kind_name(&existing)
-            ),
+            format!("is now {what}, which posgrid does not replace; it was left as it is and nothing was written"),
         ));
     }
     let failed = |e| {

@@ -280,7 +280,17 @@ fn force_replaces_only_regular_files_and_links() {
         assert!(stderr(&o).contains(kind), "{}", stderr(&o));
         assert!(!fs::symlink_metadata(special).unwrap().is_file());
     }
-    // A symbolic link is replaced itself; what it points to is untouched.
+    // A link to a device (as /dev/stdout is) is not replaced either.
+    let to_device = dir.path().join("stdout");
+    symlink("/dev/null", &to_device).unwrap();
+    let o = resize(&input, &to_device, &["--force"]);
+    assert_eq!(o.status.code(), Some(5), "{}", stderr(&o));
+    assert!(stderr(&o).contains("character device"), "{}", stderr(&o));
+    assert!(fs::symlink_metadata(&to_device)
+        .unwrap()
+        .file_type()
+        .is_symlink());
+    // A symbolic link to a file is replaced itself; what it points to is untouched.
     let target = dir.path().join("target.safetensors");
     fs::write(&target, "not ours").unwrap();
     let link = dir.path().join("link.safetensors");

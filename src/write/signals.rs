@@ -45,7 +45,9 @@ pub(crate) fn deregister(list: &mut Vec<Temporary>, path: &Path) {
 
 /// Watch for SIGINT, SIGTERM and SIGHUP (a closed terminal) as described above, and ignore
 /// SIGXFSZ so that a file-size limit becomes a write error (exit 5, temporaries removed)
-/// instead of killing the process. Called once by the binary; harmless to call again.
+/// instead of killing the process. Called once by the binary; harmless to call again. A
+/// library caller that calls it hands these signals to posgrid: the first one ends the
+/// process with exit status 130.
 pub fn install_interrupt_handler() {
     INSTALLED.get_or_init(|| {
         // SAFETY: setting a signal's disposition to "ignore" has no handler to run.
