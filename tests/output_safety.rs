@@ -542,3 +542,23 @@ fn map_refuses_to_draw_over_either_input() {
     }
     assert_eq!(fs::read(&after).unwrap(), kept);
 }
+
+#[test]
+fn a_figure_inside_a_set_directory_is_refused() {
+    let dir = tempfile::tempdir().unwrap();
+    let set = sharded_set(dir.path());
+    let out = dir.path().join("out");
+    let o = resize(&set, &out, &[] as &[&str]);
+    assert_eq!(o.status.code(), Some(0), "{}", stderr(&o));
+    let listed = names(&set);
+    for figure in [set.join("maps.png"), out.join("maps.png")] {
+        let o = resize(
+            &set,
+            &out,
+            &["--map".as_ref(), figure.as_os_str(), "--force".as_ref()],
+        );
+        assert_eq!(o.status.code(), Some(5), "{}", stderr(&o));
+        assert!(!figure.exists());
+    }
+    assert_eq!(names(&set), listed);
+}
