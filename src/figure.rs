@@ -232,10 +232,11 @@ pub fn fidelity_text(f: &Fidelity) -> String {
     }
 }
 
-/// Write bytes to `path` atomically (temporary file, sync, rename).
+/// Write bytes to `path` atomically (temporary file, sync, rename), replacing an existing
+/// file only with `force`, with permission bits no wider than `input`'s.
 pub fn write_png(path: &Path, png: &[u8], force: bool, input: &Path) -> Result<()> {
     write::check_destination(input, path, force)?;
-    let mut out = AtomicFile::create(path, true)?;
+    let mut out = AtomicFile::create_with(path, &write::OutputRules::like(input, true, force))?;
     out.write(png, &mut write::Silent)?;
     out.commit()
 }
@@ -251,6 +252,10 @@ pub fn run(
     force: bool,
     memory_limit: u64,
 ) -> Result<MapReport> {
+    // The figure's path is checked before any work, against both inputs.
+    for input in std::iter::once(before_path).chain(after_path) {
+        write::check_destination(input, output, force)?;
+    }
     let ckpt = Source::open(before_path)?;
     let before = load_table(&ckpt, hints, None, memory_limit)?;
     let left = memory_limit.saturating_sub(table_f32_bytes(&before.table));

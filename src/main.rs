@@ -5,16 +5,15 @@ use clap::Parser;
 fn main() {
     posgrid::write::install_interrupt_handler();
     let cli = posgrid::cli::Cli::parse();
-    let code = match posgrid::cli::run(cli) {
-        Ok(code) => code,
+    match posgrid::cli::run(cli) {
+        Ok(code) => posgrid::write::exit_process(code, None),
         Err(e) => {
             // The message may quote names from a hostile file: make it safe for a terminal.
-            eprintln!(
+            let message = format!(
                 "posgrid: error: {}",
                 posgrid::visible::visible(&e.to_string())
             );
-            e.exit_code()
+            posgrid::write::exit_process(e.exit_code(), Some(&message))
         }
-    };
-    std::process::exit(code);
+    }
 }

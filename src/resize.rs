@@ -16,7 +16,7 @@ use crate::plan::{self, Plan, Request, TableChange};
 use crate::resample;
 use crate::similarity::{self, Grid};
 use crate::values;
-use crate::write::{self, AtomicDir, AtomicFile, Bar, Progress, Silent};
+use crate::write::{self, AtomicDir, AtomicFile, Bar, OutputRules, Pending, Progress, Silent};
 
 /// The metadata key posgrid adds, holding its provenance as a JSON string.
 pub const PROVENANCE_KEY: &str = "posgrid";
@@ -149,15 +149,7 @@ pub fn run(job: &ResizeJob) -> Result<ResizeReport> {
     let format = job
         .format
         .or_else(|| OutputFormat::from_extension(&job.output));
-    match &source {
-        Source::Sharded(set) => {
-            if format == Some(OutputFormat::Npz) {
-                return Err(Error::Usage("a sharded set is written as a sharded safetensors set; --format npz does not apply".into()));
-            }
-            write::check_destination_dir(set.dir(), &job.output, job.force)?
-        }
-        _ => write::check_destination(&job.input, &job.output, job.force)?,
-    }
+    check_outputs(&source, job, format)?;
 
     let Computed {
         bytes: new_data,
@@ -177,9 +169,14 @@ pub fn run(job: &ResizeJob) -> Result<ResizeReport> {
                 .map_or(t.byte_len(), |b| b.len() as u64)
         })
         .sum();
+    let figure = if job.dry_run {
+        None
+    } else {
+        draw_map(job, &grids, &mut report.warnings)?
+    };
     match (&source, format) {
         (Source::Sharded(set), _) => {
-            let written = sharded_output(set, &plan, &new_data, job)?;
+            let written = sharded_output(set, &plan, &new_data, job, figure.as_deref())?;
             report.output_size = written.size;
             report.shards_rewritten = Some(written.rewritten);
             report.shards_copied = Some(written.copied);
@@ -190,9 +187,11 @@ pub fn run(job: &ResizeJob) -> Result<ResizeReport> {
             report.output_size = patched_size(ckpt, &header, &new_data);
             if !job.dry_run {
                 let mut progress = progress_for(job, report.output_size);
-                let mut out = AtomicFile::create(&job.output, job.sync)?;
+                let mut out = AtomicFile::create_with(&job.output, &output_rules(job))?;
                 stream(ckpt, &header, &new_data, &mut out, progress.as_mut())?;
-                out.commit()?;
+                let warnings =
+                    commit_with_map(job, &job.input, Pending::File(out), figure.as_deref())?;
+                report.warnings.extend(warnings);
                 progress.finish();
             }
         }
@@ -215,7 +214,7 @@ pub fn run(job: &ResizeJob) -> Result<ResizeReport> {
                 } else {
                     progress_for(job, data_size)
                 };
-                let mut out = AtomicFile::create(&job.output, job.sync)?;
+                let mut out = AtomicFile::create_with(&job.output, &output_rules(job))?;
                 match (&source, to_npz) {
                     (Source::Npz(n), true) => output::patch_npz(n, &plan, &new_data, &mut out)?,
                     (_, true) => output::to_npz(&source, &plan, &new_data, &mut out)?,
@@ -232,7 +231,9 @@ pub fn run(job: &ResizeJob) -> Result<ResizeReport> {
                     .metadata()
                     .map_err(|e| write::write_error(&job.output, "cannot write", e))?
                     .len();
-                out.commit()?;
+                let warnings =
+                    commit_with_map(job, &job.input, Pending::File(out), figure.as_deref())?;
+                report.warnings.extend(warnings);
                 progress.finish();
             }
         }
@@ -241,20 +242,8 @@ pub fn run(job: &ResizeJob) -> Result<ResizeReport> {
         return Ok(report);
     }
     report.bytes_written = report.output_size;
-    if let (Some(png_path), Some((change, before, after))) = (&job.map, grids.first()) {
-        let rows = GridRows::borrowed;
-        let mut after_table = change.table.clone();
-        after_table.grid = change.to;
-        let drawn = figure::figure(
-            &job.input,
-            &rows(&change.table, before),
-            Some(&rows(&after_table, after)),
-            job.refs,
-            fidelity_budget(change, job),
-        )?;
-        report.warnings.extend(drawn.notes.iter().cloned());
-        figure::write_png(png_path, &drawn.png, job.force, &job.input)?;
-        report.map = Some(png_path.to_path_buf());
+    if figure.is_some() {
+        report.map = job.map.clone();
     }
     Ok(report)
 }
@@ -301,6 +290,96 @@ fn table_fidelity(
     }
 }
 
+/// Check every output path before any work: OUT (a file, or a directory for a set) and the
+/// figure, which must be neither OUT nor an input, nor inside a set directory.
+fn check_outputs(source: &Source, job: &ResizeJob, format: Option<OutputFormat>) -> Result<()> {
+    match source {
+        Source::Sharded(set) => {
+            if format == Some(OutputFormat::Npz) {
+                return Err(Error::Usage("a sharded set is written as a sharded safetensors set; --format npz does not apply".into()));
+            }
+            write::check_destination_dir(set.dir(), &job.output, job.force)?
+        }
+        _ => write::check_destination(&job.input, &job.output, job.force)?,
+    }
+    let Some(png) = &job.map else {
+        return Ok(());
+    };
+    write::check_destination(mode_source(job, source), png, job.force)?;
+    let clash = |why: &str| {
+        Err(Error::write(
+            png,
+            format!("{why}; give the figure a path of its own"),
+        ))
+    };
+    if write::same_destination(png, &job.output) {
+        return clash("is also the checkpoint output (-o)");
+    }
+    if let Source::Sharded(set) = source {
+        if write::inside(png, set.dir()) {
+            return clash("is inside the input set's directory");
+        }
+        if write::inside(png, &job.output) {
+            return clash("is inside the output directory, which is written as a whole");
+        }
+    }
+    Ok(())
+}
+
+/// The input file whose permission bits limit the outputs' (a set's index for a set).
+fn mode_source<'a>(job: &'a ResizeJob, source: &'a Source) -> &'a Path {
+    match source {
+        Source::Sharded(set) => set.index_path(),
+        _ => &job.input,
+    }
+}
+
+fn output_rules(job: &ResizeJob) -> OutputRules {
+    OutputRules::like(&job.input, job.sync, job.force)
+}
+
+/// The before/after similarity maps of the first table as PNG bytes, if asked for. Drawn in
+/// memory before anything is written, so the figure and OUT can be committed together.
+fn draw_map(
+    job: &ResizeJob,
+    grids: &[(&TableChange, Vec<f32>, Vec<f32>)],
+    warnings: &mut Vec<String>,
+) -> Result<Option<Vec<u8>>> {
+    let (Some(_), Some((change, before, after))) = (&job.map, grids.first()) else {
+        return Ok(None);
+    };
+    let rows = GridRows::borrowed;
+    let mut after_table = change.table.clone();
+    after_table.grid = change.to;
+    let drawn = figure::figure(
+        &job.input,
+        &rows(&change.table, before),
+        Some(&rows(&after_table, after)),
+        job.refs,
+        fidelity_budget(change, job),
+    )?;
+    warnings.extend(drawn.notes.iter().cloned());
+    Ok(Some(drawn.png))
+}
+
+/// Write the figure (if any) to its temporary, then put OUT and the figure in place together:
+/// both or neither.
+fn commit_with_map(
+    job: &ResizeJob,
+    like: &Path,
+    out: Pending,
+    png: Option<&[u8]>,
+) -> Result<Vec<String>> {
+    let mut pending = vec![out];
+    if let (Some(path), Some(bytes)) = (&job.map, png) {
+        let mut file =
+            AtomicFile::create_with(path, &OutputRules::like(like, job.sync, job.force))?;
+        file.write(bytes, &mut Silent)?;
+        pending.push(Pending::File(file));
+    }
+    write::commit_all(pending)
+}
+
 fn progress_for(job: &ResizeJob, total: u64) -> Box<dyn Progress> {
     if job.progress {
         Box::new(Bar::new(total))
@@ -339,6 +418,7 @@ fn sharded_output(
     plan: &Plan,
     new_data: &HashMap<String, Vec<u8>>,
     job: &ResizeJob,
+    figure: Option<&[u8]>,
 ) -> Result<ShardedOutput> {
     let index_name = set
         .index_path()
@@ -418,12 +498,28 @@ fn sharded_output(
         return Ok(out);
     }
     let mut progress = progress_for(job, out.size);
-    let dir = AtomicDir::create(&job.output, job.sync)?;
+    let dir = AtomicDir::create_with(
+        &job.output,
+        &OutputRules::like(set.dir(), job.sync, job.force),
+    )?;
+    // Files inside the new directory: each as its input, never replacing anything.
+    let member = |name: &std::ffi::OsStr, like: &Path| {
+        AtomicFile::create_with(
+            &dir.path().join(name),
+            &OutputRules::like(like, job.sync, false),
+        )
+    };
     for ((name, ckpt), header) in set.shards.iter().zip(&headers) {
-        let mut file = AtomicFile::create(&dir.path().join(name), job.sync)?;
+        let mut file = member(name.as_ref(), ckpt.path())?;
         match header {
             Some(h) => stream(ckpt, h, new_data, &mut file, progress.as_mut())?,
-            None => file.copy_from(ckpt.file(), 0, ckpt.file_len(), progress.as_mut())?,
+            None => file.copy_from(
+                ckpt.file(),
+                ckpt.path(),
+                0,
+                ckpt.file_len(),
+                progress.as_mut(),
+            )?,
         }
         file.commit()?;
     }
@@ -431,14 +527,21 @@ fn sharded_output(
         let name = p.file_name().expect("listed files have names");
         let input = std::fs::File::open(p).map_err(|e| Error::read(p, e))?;
         let len = input.metadata().map_err(|e| Error::read(p, e))?.len();
-        let mut file = AtomicFile::create(&dir.path().join(name), job.sync)?;
-        file.copy_from(&input, 0, len, progress.as_mut())?;
+        let mut file = member(name, p)?;
+        file.copy_from(&input, p, 0, len, progress.as_mut())?;
         file.commit()?;
     }
-    let mut file = AtomicFile::create(&dir.path().join(&index_name), job.sync)?;
+    let mut file = member(index_name.as_ref(), set.index_path())?;
     file.write(index_text.as_bytes(), progress.as_mut())?;
     file.commit()?;
-    dir.commit(job.force)?;
+    // Checked again: OUTDIR may have changed during the write.
+    write::check_destination_dir(set.dir(), &job.output, job.force)?;
+    out.warnings.extend(commit_with_map(
+        job,
+        set.index_path(),
+        Pending::Dir(dir),
+        figure,
+    )?);
     progress.finish();
     Ok(out)
 }
@@ -698,7 +801,7 @@ fn stream(
                 run = match run {
                     Some((b, e)) if e == t.begin => Some((b, t.end)),
                     Some((b, e)) => {
-                        out.copy_from(ckpt.file(), b, e - b, progress)?;
+                        out.copy_from(ckpt.file(), ckpt.path(), b, e - b, progress)?;
                         Some((t.begin, t.end))
                     }
                     None => Some((t.begin, t.end)),
@@ -706,14 +809,14 @@ fn stream(
             }
             Some(bytes) => {
                 if let Some((b, e)) = run.take() {
-                    out.copy_from(ckpt.file(), b, e - b, progress)?;
+                    out.copy_from(ckpt.file(), ckpt.path(), b, e - b, progress)?;
                 }
                 out.write(bytes, progress)?;
             }
         }
     }
     if let Some((b, e)) = run {
-        out.copy_from(ckpt.file(), b, e - b, progress)?;
+        out.copy_from(ckpt.file(), ckpt.path(), b, e - b, progress)?;
     }
     Ok(())
 }

@@ -1,84 +1,170 @@
 //! Writing: a temporary file beside the output, filled by streaming, synced, then renamed into
 //! place. Until the rename the final path is untouched; on any failure or interruption the
 //! temporary file is removed.
+//!
+//! The rename itself enforces the replace rule (an atomic no-replace rename without
+//! `--force`), `--force` replaces only a regular file, a symbolic link (the link, never its
+//! target) or a directory recognisably written by an earlier run, and the output's
+//! permission bits are never wider than the input's.
 
-use std::fs::{self, File, OpenOptions};
+mod rename;
+mod signals;
+mod temp;
+
+use std::fs::{self, File, Metadata, OpenOptions};
 use std::io::{self, Read, Seek, SeekFrom, Write};
-use std::os::unix::fs::MetadataExt;
+use std::os::unix::ffi::OsStrExt;
+use std::os::unix::fs::{DirBuilderExt, MetadataExt, OpenOptionsExt, PermissionsExt};
 use std::path::{Path, PathBuf};
-use std::sync::atomic::{AtomicBool, Ordering};
-use std::sync::{Arc, OnceLock};
 
 use crate::error::{Error, Result};
 
+use signals::{deregister, temporaries, Temporary};
+pub use signals::{exit_process, install_interrupt_handler, interrupted};
+
 /// Copy chunk between progress updates and interruption checks.
 const CHUNK: u64 = 64 << 20;
+/// Largest index file of an existing output set that is read to recognise it.
+const INDEX_LIMIT: u64 = 100 << 20;
 
-static INTERRUPTED: OnceLock<Arc<AtomicBool>> = OnceLock::new();
+/// How an output is put in place.
+#[derive(Debug, Clone, Copy)]
+pub struct OutputRules {
+    /// Sync the data to disk before the rename.
+    pub sync: bool,
+    /// An existing output may be replaced (`--force`).
+    pub replace: bool,
+    /// The widest permission bits the output may have (the input's).
+    pub mode_limit: u32,
+}
 
-/// Route SIGINT and SIGTERM to a flag that writes check between chunks, so an interrupted
-/// write can remove its temporary file. Called once by the binary; harmless to call again.
-pub fn install_interrupt_handler() {
-    INTERRUPTED.get_or_init(|| {
-        let flag = Arc::new(AtomicBool::new(false));
-        for signal in [signal_hook::consts::SIGINT, signal_hook::consts::SIGTERM] {
-            // Registration fails only for forbidden signals; these two are allowed.
-            let _ = signal_hook::flag::register(signal, Arc::clone(&flag));
+impl OutputRules {
+    /// Rules for an output made from `input`: its permission bits are the limit.
+    pub fn like(input: &Path, sync: bool, replace: bool) -> Self {
+        OutputRules {
+            sync,
+            replace,
+            // An input whose mode cannot be read gives an owner-only output.
+            mode_limit: fs::metadata(input).map_or(0o700, |m| m.mode() & 0o777),
         }
-        flag
-    });
+    }
 }
 
-/// Whether SIGINT or SIGTERM has arrived.
-pub fn interrupted() -> bool {
-    INTERRUPTED.get().is_some_and(|f| f.load(Ordering::Relaxed))
+/// What kind of thing a path is, in words.
+fn kind_name(m: &Metadata) -> &'static str {
+    use std::os::unix::fs::FileTypeExt;
+    let t = m.file_type();
+    match () {
+        _ if t.is_file() => "a regular file",
+        _ if t.is_dir() => "a directory",
+        _ if t.is_symlink() => "a symbolic link",
+        _ if t.is_char_device() => "a character device",
+        _ if t.is_block_device() => "a block device",
+        _ if t.is_fifo() => "a FIFO (named pipe)",
+        _ if t.is_socket() => "a socket",
+        _ => "not a regular file",
+    }
 }
 
-/// Refuse an output that is the input (through links or `..` paths) or that exists without
-/// `force`; check that its directory exists.
+/// Refuse an output that is the input (through links or `..` paths), that exists without
+/// `force`, or that is anything but a regular file or a symbolic link; check that its
+/// directory exists.
 pub fn check_destination(input: &Path, output: &Path, force: bool) -> Result<()> {
-    let dir = parent_dir(output);
-    match fs::metadata(&dir) {
-        Ok(m) if m.is_dir() => {}
-        Ok(_) => {
-            return Err(Error::write(
-                output,
-                format!("{} is not a directory", dir.display()),
-            ))
-        }
-        Err(_) => {
-            return Err(Error::write(
-                output,
-                format!("output directory {} does not exist", dir.display()),
-            ))
-        }
+    check_parent(output)?;
+    if same_file(input, output) {
+        return Err(Error::write(
+            output,
+            format!(
+                "is the input file {} (the same file on disk); choose another output path",
+                input.display()
+            ),
+        ));
     }
-    if let (Ok(a), Ok(b)) = (fs::metadata(input), fs::metadata(output)) {
-        if a.dev() == b.dev() && a.ino() == b.ino() {
-            return Err(Error::write(
-                output,
-                format!(
-                    "is the input file {} (the same file on disk); choose another output path",
-                    input.display()
-                ),
-            ));
-        }
+    let Ok(here) = fs::symlink_metadata(output) else {
+        return Ok(());
+    };
+    let through_link = fs::metadata(output).ok();
+    if here.is_dir() || through_link.as_ref().is_some_and(Metadata::is_dir) {
+        return Err(Error::write(
+            output,
+            "is a directory; give a file path for the output",
+        ));
     }
-    if fs::symlink_metadata(output).is_ok() {
-        if fs::metadata(output).is_ok_and(|m| m.is_dir()) {
-            return Err(Error::write(
-                output,
-                "is a directory; give a file path for the output",
-            ));
-        }
-        if !force {
-            return Err(Error::write(
-                output,
-                "already exists; pass --force to replace it",
-            ));
-        }
+    if let Some(what) = unreplaceable_file(&here, through_link.as_ref()) {
+        return Err(Error::write(
+            output,
+            format!("is {what}; posgrid replaces only regular files (and symbolic links to them), even with --force"),
+        ));
+    }
+    if !force {
+        return Err(Error::write(
+            output,
+            "already exists; pass --force to replace it",
+        ));
     }
     Ok(())
+}
+
+fn check_parent(output: &Path) -> Result<()> {
+    if output.file_name().is_none() {
+        return Err(Error::write(output, "does not name a file"));
+    }
+    let dir = parent_dir(output);
+    match fs::metadata(&dir) {
+        Ok(m) if m.is_dir() => Ok(()),
+        Ok(_) => Err(Error::write(
+            output,
+            format!("{} is not a directory", dir.display()),
+        )),
+        Err(_) => Err(Error::write(
+            output,
+            format!("output directory {} does not exist", dir.display()),
+        )),
+    }
+}
+
+/// What is wrong with replacing a file at a path, given its own metadata and (if it is a
+/// link that leads somewhere) its target's: anything but a regular file, or a link to a
+/// regular file or to nothing, is kept (`/dev/stdout` is a link to a device).
+fn unreplaceable_file(here: &Metadata, target: Option<&Metadata>) -> Option<String> {
+    if here.is_file() {
+        return None;
+    }
+    if !here.file_type().is_symlink() {
+        return Some(kind_name(here).to_string());
+    }
+    match target {
+        Some(t) if !t.is_file() => Some(format!("a symbolic link to {}", kind_name(t))),
+        _ => None,
+    }
+}
+
+/// Both paths exist and are the same file (device and inode).
+fn same_file(a: &Path, b: &Path) -> bool {
+    match (fs::metadata(a), fs::metadata(b)) {
+        (Ok(a), Ok(b)) => a.dev() == b.dev() && a.ino() == b.ino(),
+        _ => false,
+    }
+}
+
+/// Where a path leads: its directory resolved (links, `..`), then the name, then the name
+/// resolved too if it exists.
+fn resolved(path: &Path) -> PathBuf {
+    let name = path.file_name().unwrap_or_default();
+    let dir = fs::canonicalize(parent_dir(path)).unwrap_or_else(|_| parent_dir(path));
+    let joined = dir.join(name);
+    fs::canonicalize(&joined).unwrap_or(joined)
+}
+
+/// Whether two output paths lead to the same place (the same name through links or `..`,
+/// or the same file on disk).
+pub fn same_destination(a: &Path, b: &Path) -> bool {
+    same_file(a, b) || resolved(a) == resolved(b)
+}
+
+/// Whether `path` leads to a place inside directory `dir` (or is it).
+pub fn inside(path: &Path, dir: &Path) -> bool {
+    resolved(path).starts_with(resolved(dir))
 }
 
 fn parent_dir(path: &Path) -> PathBuf {
@@ -88,25 +174,36 @@ fn parent_dir(path: &Path) -> PathBuf {
     }
 }
 
-/// Create a hidden temporary sibling of `final_path` (same directory, so the final rename stays
-/// on one file system) with `make`, which must fail if the name exists.
+/// Create a hidden temporary sibling of `final_path` (same directory, so the final rename
+/// stays on one file system) with `make`, which must fail if the name exists, and register it
+/// for removal on interruption. Stale temporaries of dead processes for the same output are
+/// removed first.
 fn create_sibling<T>(
     final_path: &Path,
-    what: &str,
+    is_dir: bool,
     make: impl Fn(&Path) -> io::Result<T>,
 ) -> Result<(PathBuf, T)> {
+    let what = if is_dir { "directory" } else { "file" };
+    temp::remove_stale(final_path);
     let dir = parent_dir(final_path);
-    let base = final_path
-        .file_name()
-        .map(|n| n.to_string_lossy().into_owned())
-        .unwrap_or_default();
+    let base = final_path.file_name().unwrap_or_default().as_bytes();
+    let mut list = temporaries();
+    if interrupted() {
+        return Err(Error::Interrupted {
+            path: final_path.to_path_buf(),
+        });
+    }
     for attempt in 0..100u32 {
-        let temp_path = dir.join(format!(
-            ".{base}.posgrid-{}-{attempt}.tmp",
-            std::process::id()
-        ));
+        let temp_path = dir.join(temp::name(base, std::process::id(), attempt));
         match make(&temp_path) {
-            Ok(made) => return Ok((temp_path, made)),
+            Ok(made) => {
+                list.push(Temporary {
+                    path: temp_path.clone(),
+                    output: final_path.to_path_buf(),
+                    is_dir,
+                });
+                return Ok((temp_path, made));
+            }
             Err(e) if e.kind() == io::ErrorKind::AlreadyExists => continue,
             Err(e) => {
                 return Err(write_error(
@@ -123,30 +220,72 @@ fn create_sibling<T>(
     ))
 }
 
+/// Remove a temporary (if it is still there) and forget it.
+fn discard(path: &Path, is_dir: bool) {
+    let mut list = temporaries();
+    let _ = if is_dir {
+        fs::remove_dir_all(path)
+    } else {
+        fs::remove_file(path)
+    };
+    deregister(&mut list, path);
+}
+
+/// The permission bits to give a replacement now, if `rules` allow replacing what is at
+/// `final_path`: its own bits, narrowed to the input's.
+fn kept_mode(final_path: &Path, rules: &OutputRules, is_dir: bool) -> Option<u32> {
+    let m = fs::symlink_metadata(final_path).ok()?;
+    let same_kind = if is_dir { m.is_dir() } else { m.is_file() };
+    (rules.replace && same_kind).then_some(m.mode() & rules.mode_limit & 0o777)
+}
+
 /// A temporary file that becomes `final_path` on [`AtomicFile::commit`] and is removed if
 /// dropped before that.
 pub struct AtomicFile {
     final_path: PathBuf,
     temp_path: PathBuf,
     file: Option<File>,
-    sync: bool,
+    rules: OutputRules,
     /// Bytes written so far.
     position: u64,
 }
 
 impl AtomicFile {
-    /// Create a new temporary file in the directory of `final_path`.
+    /// Create a new temporary file in the directory of `final_path`, for an output that must
+    /// not exist at the rename (permission bits: read and write, less the umask).
     pub fn create(final_path: &Path, sync: bool) -> Result<Self> {
-        let (temp_path, file) = create_sibling(final_path, "file", |p| {
-            OpenOptions::new().write(true).create_new(true).open(p)
+        let rules = OutputRules {
+            sync,
+            replace: false,
+            mode_limit: 0o666,
+        };
+        Self::create_with(final_path, &rules)
+    }
+
+    /// Create a temporary file for `final_path` under `rules`: its permission bits are the
+    /// limit's read and write bits less the umask, or, when replacing a regular file, that
+    /// file's bits within the limit.
+    pub fn create_with(final_path: &Path, rules: &OutputRules) -> Result<Self> {
+        let (temp_path, file) = create_sibling(final_path, false, |p| {
+            OpenOptions::new()
+                .write(true)
+                .create_new(true)
+                .mode(rules.mode_limit & 0o666)
+                .open(p)
         })?;
-        Ok(AtomicFile {
+        let mut made = AtomicFile {
             final_path: final_path.to_path_buf(),
             temp_path,
             file: Some(file),
-            sync,
+            rules: *rules,
             position: 0,
-        })
+        };
+        if let Some(mode) = kept_mode(final_path, rules, false) {
+            made.file()
+                .set_permissions(fs::Permissions::from_mode(mode))
+                .map_err(|e| write_error(final_path, "cannot set the permissions", e))?;
+        }
+        Ok(made)
     }
 
     /// The open temporary file.
@@ -160,32 +299,8 @@ impl AtomicFile {
     }
 
     /// Flush, sync (unless disabled), rename into place and sync the directory.
-    pub fn commit(mut self) -> Result<()> {
-        let file = self.file.take().expect("file is open until commit");
-        if interrupted() {
-            return Err(Error::Interrupted {
-                path: self.final_path.clone(),
-            });
-        }
-        if self.sync {
-            file.sync_all()
-                .map_err(|e| write_error(&self.final_path, "cannot sync the data to disk", e))?;
-        }
-        drop(file);
-        fs::rename(&self.temp_path, &self.final_path).map_err(|e| {
-            write_error(
-                &self.final_path,
-                "cannot rename the finished file into place",
-                e,
-            )
-        })?;
-        if self.sync {
-            if let Ok(dir) = File::open(parent_dir(&self.final_path)) {
-                let _ = dir.sync_all();
-            }
-        }
-        self.temp_path = PathBuf::new();
-        Ok(())
+    pub fn commit(self) -> Result<()> {
+        commit_all(vec![Pending::File(self)]).map(|_| ())
     }
 }
 
@@ -193,7 +308,7 @@ impl Drop for AtomicFile {
     fn drop(&mut self) {
         if !self.temp_path.as_os_str().is_empty() {
             self.file.take();
-            let _ = fs::remove_file(&self.temp_path);
+            discard(&self.temp_path, false);
         }
     }
 }
@@ -251,7 +366,9 @@ impl Progress for Bar {
         if percent != self.shown {
             self.shown = percent;
             let filled = (percent / 4) as usize;
-            eprint!(
+            // After SIGHUP the terminal is gone; a failed redraw must not end the write.
+            let _ = write!(
+                io::stderr(),
                 "\r  writing [{}{}] {percent:>3}%  {} / {} MiB",
                 "#".repeat(filled),
                 " ".repeat(25 - filled.min(25)),
@@ -261,16 +378,18 @@ impl Progress for Bar {
         }
     }
     fn finish(&mut self) {
-        eprintln!();
+        let _ = writeln!(io::stderr());
     }
 }
 
 impl AtomicFile {
-    /// Copy `len` bytes starting at `offset` of `input` to the end of the output. File to
-    /// file, std uses copy_file_range on Linux, so the bytes stay in the kernel.
+    /// Copy `len` bytes starting at `offset` of `input` (read from `input_path`) to the end
+    /// of the output. File to file, std uses copy_file_range on Linux, so the bytes stay in
+    /// the kernel. An input that ends early is an input problem, reported against it.
     pub fn copy_from(
         &mut self,
         input: &File,
+        input_path: &Path,
         offset: u64,
         len: u64,
         progress: &mut dyn Progress,
@@ -278,7 +397,7 @@ impl AtomicFile {
         let mut reader = input;
         reader
             .seek(SeekFrom::Start(offset))
-            .map_err(|e| write_error(&self.final_path, "cannot read the input", e))?;
+            .map_err(|e| Error::read(input_path, e))?;
         let mut left = len;
         while left > 0 {
             self.check_interrupt()?;
@@ -286,9 +405,15 @@ impl AtomicFile {
             let copied = io::copy(&mut Read::take(reader, step), self.file())
                 .map_err(|e| write_error(&self.final_path, "cannot write", e))?;
             if copied != step {
-                return Err(Error::write(
-                    &self.final_path,
-                    "the input file shrank while it was being copied; nothing was written",
+                return Err(Error::read(
+                    input_path,
+                    io::Error::new(
+                        io::ErrorKind::UnexpectedEof,
+                        format!(
+                            "the file shrank while it was being copied; {} was not written",
+                            self.final_path.display()
+                        ),
+                    ),
                 ));
             }
             self.written(step);
@@ -326,7 +451,7 @@ impl AtomicFile {
     fn written(&mut self, len: u64) {
         let start = self.position;
         self.position += len;
-        if self.sync {
+        if self.rules.sync {
             if let Some(f) = &self.file {
                 use std::os::fd::AsRawFd;
                 // SAFETY: a plain system call on an open descriptor; failure only loses the
@@ -345,7 +470,8 @@ impl AtomicFile {
 }
 
 /// Refuse an output directory that is the input directory, inside it, or holds it, or that
-/// exists without `force`; check that its parent exists.
+/// exists without `force`; with `force`, refuse one that is not recognisably an earlier
+/// output set (see [`recognise_previous_set`]); check that its parent exists.
 pub fn check_destination_dir(input_dir: &Path, output: &Path, force: bool) -> Result<()> {
     let parent = parent_dir(output);
     if !parent.is_dir() {
@@ -355,13 +481,10 @@ pub fn check_destination_dir(input_dir: &Path, output: &Path, force: bool) -> Re
         ));
     }
     let input = fs::canonicalize(input_dir).map_err(|e| Error::read(input_dir, e))?;
-    let name = output
-        .file_name()
-        .ok_or_else(|| Error::write(output, "is not a directory name"))?;
-    let out = fs::canonicalize(&parent)
-        .map_err(|e| Error::read(&parent, e))?
-        .join(name);
-    let out = fs::canonicalize(&out).unwrap_or(out);
+    if output.file_name().is_none() {
+        return Err(Error::write(output, "is not a directory name"));
+    }
+    let out = resolved(output);
     if out == input || out.starts_with(&input) || input.starts_with(&out) {
         return Err(Error::write(
             output,
@@ -371,18 +494,110 @@ pub fn check_destination_dir(input_dir: &Path, output: &Path, force: bool) -> Re
             ),
         ));
     }
-    if fs::symlink_metadata(output).is_ok() {
-        if !fs::metadata(output).is_ok_and(|m| m.is_dir()) {
-            return Err(Error::write(output, "exists and is not a directory"));
+    let Ok(here) = fs::symlink_metadata(output) else {
+        return Ok(());
+    };
+    if !here.is_dir() {
+        return Err(Error::write(
+            output,
+            format!(
+                "exists and is {}; a set is written as a new directory",
+                kind_name(&here)
+            ),
+        ));
+    }
+    if !force {
+        return Err(Error::write(
+            output,
+            "already exists; pass --force to replace it",
+        ));
+    }
+    recognise_previous_set(output, input_dir)
+}
+
+/// `--force` replaces a directory only if it looks like an earlier output set of posgrid:
+/// a real directory (not a link) holding exactly one `*.safetensors.index.json`, no
+/// sub-directories or special files, and only files posgrid writes into a set: the index, the
+/// shards it names, and files named like the regular files of the input set's directory
+/// (posgrid copies those). Anything else is refused with the reason, and nothing is removed.
+pub fn recognise_previous_set(output: &Path, input_dir: &Path) -> Result<()> {
+    let refuse = |why: String| {
+        Err(Error::write(
+            output,
+            format!("{why}; --force replaces only a directory that posgrid wrote as a set, so it was left as it is"),
+        ))
+    };
+    let mut names = Vec::new();
+    for entry in fs::read_dir(output).map_err(|e| Error::read(output, e))? {
+        let entry = entry.map_err(|e| Error::read(output, e))?;
+        let name = entry.file_name().to_string_lossy().into_owned();
+        let meta = fs::symlink_metadata(entry.path()).map_err(|e| Error::read(output, e))?;
+        if !meta.is_file() {
+            return refuse(format!("holds \"{name}\", which is {}", kind_name(&meta)));
         }
-        if !force {
-            return Err(Error::write(
-                output,
-                "already exists; pass --force to replace it",
+        names.push(name);
+    }
+    let indexes: Vec<&String> = names
+        .iter()
+        .filter(|n| n.ends_with(".safetensors.index.json"))
+        .collect();
+    let [index] = indexes.as_slice() else {
+        return refuse(format!(
+            "holds {} *.safetensors.index.json files, not one",
+            indexes.len()
+        ));
+    };
+    let listed = match index_shards(&output.join(index)) {
+        Some(l) => l,
+        None => {
+            return refuse(format!(
+                "its index \"{index}\" is not a readable shard index"
+            ))
+        }
+    };
+    let copied = input_files(input_dir);
+    for name in &names {
+        if name != *index && !listed.contains(name) && !copied.contains(name) {
+            return refuse(format!(
+                "holds \"{name}\", which is neither a shard of its index nor a file of the input set"
             ));
         }
     }
     Ok(())
+}
+
+/// The shard names an index lists, if it is a small JSON file with a `weight_map` of strings.
+fn index_shards(path: &Path) -> Option<Vec<String>> {
+    // Non-blocking: a FIFO swapped in after the listing must not hang the run.
+    let file = OpenOptions::new()
+        .read(true)
+        .custom_flags(libc::O_NONBLOCK)
+        .open(path)
+        .ok()?;
+    let meta = file.metadata().ok()?;
+    if !meta.is_file() || meta.len() > INDEX_LIMIT {
+        return None;
+    }
+    let mut text = Vec::new();
+    file.take(INDEX_LIMIT).read_to_end(&mut text).ok()?;
+    let index: serde_json::Value = serde_json::from_slice(&text).ok()?;
+    let map = index.get("weight_map")?.as_object()?;
+    map.values()
+        .map(|v| v.as_str().map(str::to_string))
+        .collect()
+}
+
+/// Names of the visible regular files of a directory.
+fn input_files(dir: &Path) -> Vec<String> {
+    let Ok(entries) = fs::read_dir(dir) else {
+        return Vec::new();
+    };
+    entries
+        .flatten()
+        .filter(|e| e.file_type().is_ok_and(|t| t.is_file()))
+        .map(|e| e.file_name().to_string_lossy().into_owned())
+        .filter(|n| !n.starts_with('.'))
+        .collect()
 }
 
 /// A temporary directory that becomes `final_path` on [`AtomicDir::commit`] and is removed
@@ -390,17 +605,26 @@ pub fn check_destination_dir(input_dir: &Path, output: &Path, force: bool) -> Re
 pub struct AtomicDir {
     final_path: PathBuf,
     temp_path: PathBuf,
-    sync: bool,
+    rules: OutputRules,
 }
 
 impl AtomicDir {
-    pub fn create(final_path: &Path, sync: bool) -> Result<Self> {
-        let (temp_path, ()) = create_sibling(final_path, "directory", |p| fs::create_dir(p))?;
-        Ok(AtomicDir {
+    /// A temporary directory for `final_path` under `rules` (its permission bits: the limit
+    /// less the umask, or, when replacing a directory, that directory's bits within the limit).
+    pub fn create_with(final_path: &Path, rules: &OutputRules) -> Result<Self> {
+        let (temp_path, ()) = create_sibling(final_path, true, |p| {
+            fs::DirBuilder::new().mode(rules.mode_limit).create(p)
+        })?;
+        let made = AtomicDir {
             final_path: final_path.to_path_buf(),
             temp_path,
-            sync,
-        })
+            rules: *rules,
+        };
+        if let Some(mode) = kept_mode(final_path, rules, true) {
+            fs::set_permissions(&made.temp_path, fs::Permissions::from_mode(mode))
+                .map_err(|e| write_error(final_path, "cannot set the permissions", e))?;
+        }
+        Ok(made)
     }
 
     /// Where to put the files until the commit.
@@ -408,58 +632,251 @@ impl AtomicDir {
         &self.temp_path
     }
 
-    /// Rename into place; with `replace`, an existing directory is moved aside first and
-    /// removed after the new one is in place.
-    pub fn commit(mut self, replace: bool) -> Result<()> {
-        if interrupted() {
-            return Err(Error::Interrupted {
-                path: self.final_path.clone(),
-            });
-        }
-        if self.sync {
-            if let Ok(d) = File::open(&self.temp_path) {
-                let _ = d.sync_all();
-            }
-        }
-        let mut aside = None;
-        if replace && self.final_path.exists() {
-            let old = self.temp_path.with_extension("old");
-            fs::rename(&self.final_path, &old).map_err(|e| {
-                write_error(
-                    &self.final_path,
-                    "cannot move the existing directory aside",
-                    e,
-                )
-            })?;
-            aside = Some(old);
-        }
-        if let Err(e) = fs::rename(&self.temp_path, &self.final_path) {
-            if let Some(old) = &aside {
-                let _ = fs::rename(old, &self.final_path);
-            }
-            return Err(write_error(
-                &self.final_path,
-                "cannot rename the finished directory into place",
-                e,
-            ));
-        }
-        self.temp_path = PathBuf::new();
-        if let Some(old) = aside {
-            let _ = fs::remove_dir_all(old);
-        }
-        if self.sync {
-            if let Ok(d) = File::open(parent_dir(&self.final_path)) {
-                let _ = d.sync_all();
-            }
-        }
-        Ok(())
+    /// Rename into place (replacing an existing directory only if the rules allow it).
+    /// Returns warnings: an old directory that could not be removed entirely is named.
+    pub fn commit(self) -> Result<Vec<String>> {
+        commit_all(vec![Pending::Dir(self)])
     }
 }
 
 impl Drop for AtomicDir {
     fn drop(&mut self) {
         if !self.temp_path.as_os_str().is_empty() {
-            let _ = fs::remove_dir_all(&self.temp_path);
+            discard(&self.temp_path, true);
         }
     }
+}
+
+/// A finished temporary waiting for its rename.
+pub enum Pending {
+    File(AtomicFile),
+    Dir(AtomicDir),
+}
+
+impl Pending {
+    fn parts(&self) -> (&Path, &Path, bool, &OutputRules) {
+        match self {
+            Pending::File(f) => (&f.temp_path, &f.final_path, false, &f.rules),
+            Pending::Dir(d) => (&d.temp_path, &d.final_path, true, &d.rules),
+        }
+    }
+
+    /// Close and sync the data (outside the lock: a sync may take long).
+    fn prepare(&mut self) -> Result<()> {
+        match self {
+            Pending::File(f) => {
+                let file = f.file.take().expect("file is open until commit");
+                if f.rules.sync {
+                    file.sync_all().map_err(|e| {
+                        write_error(&f.final_path, "cannot sync the data to disk", e)
+                    })?;
+                }
+            }
+            Pending::Dir(d) => {
+                if d.rules.sync {
+                    let _ = File::open(&d.temp_path).and_then(|dir| dir.sync_all());
+                }
+            }
+        }
+        Ok(())
+    }
+
+    /// After the rename: nothing to remove on drop.
+    fn settle(&mut self) -> PathBuf {
+        match self {
+            Pending::File(f) => std::mem::take(&mut f.temp_path),
+            Pending::Dir(d) => std::mem::take(&mut d.temp_path),
+        }
+    }
+}
+
+/// How an output went into place, so that it can be undone if a later one fails.
+enum Installed {
+    /// Nothing was there.
+    New,
+    /// The old one now sits at the temporary's path.
+    Swapped,
+    /// The old one is gone (a file system without RENAME_EXCHANGE).
+    Replaced,
+    /// The old directory was moved aside to this (registered) path.
+    Aside(PathBuf),
+}
+
+/// Put every pending output in place, all or nothing: each is renamed (or swapped with what
+/// it replaces); if one fails, those already in place are put back. Old versions are removed
+/// at the end; one that cannot be removed entirely is reported as a warning naming it.
+pub fn commit_all(mut items: Vec<Pending>) -> Result<Vec<String>> {
+    for item in &mut items {
+        item.prepare()?;
+    }
+    let mut list = temporaries();
+    if interrupted() {
+        return Err(Error::Interrupted {
+            path: items[0].parts().1.to_path_buf(),
+        });
+    }
+    let mut done = Vec::new();
+    for item in &items {
+        match install(item, &mut list) {
+            Ok(how) => done.push(how),
+            Err(e) => {
+                for (item, how) in items.iter().zip(&done).rev() {
+                    undo(item, how, &mut list);
+                }
+                return Err(e);
+            }
+        }
+    }
+    let mut leftovers = Vec::new();
+    for (item, how) in items.iter_mut().zip(done) {
+        let (_, final_path, is_dir, _) = item.parts();
+        let (final_path, is_dir) = (final_path.to_path_buf(), is_dir);
+        let temp = item.settle();
+        match how {
+            Installed::Swapped => leftovers.push(Leftover {
+                old: temp,
+                final_path,
+                is_dir,
+            }),
+            Installed::Aside(old) => leftovers.push(Leftover {
+                old,
+                final_path,
+                is_dir,
+            }),
+            Installed::New | Installed::Replaced => deregister(&mut list, &temp),
+        }
+    }
+    drop(list);
+    let warnings = remove_old(leftovers);
+    for item in &items {
+        let (_, final_path, _, rules) = item.parts();
+        if rules.sync {
+            let _ = File::open(parent_dir(final_path)).and_then(|d| d.sync_all());
+        }
+    }
+    Ok(warnings)
+}
+
+/// Rename one output into place under its rules.
+fn install(item: &Pending, list: &mut Vec<Temporary>) -> Result<Installed> {
+    let (temp, final_path, is_dir, rules) = item.parts();
+    let existing = match fs::symlink_metadata(final_path) {
+        Ok(m) => Some(m),
+        Err(e) if e.kind() == io::ErrorKind::NotFound => None,
+        Err(e) => return Err(write_error(final_path, "cannot check the output path", e)),
+    };
+    let Some(existing) = existing.filter(|_| rules.replace) else {
+        return rename::rename_noreplace(temp, final_path, is_dir)
+            .map(|()| Installed::New)
+            .map_err(|e| appeared_or(final_path, e));
+    };
+    let refused = if is_dir {
+        (!existing.is_dir()).then(|| kind_name(&existing).to_string())
+    } else {
+        unreplaceable_file(&existing, fs::metadata(final_path).ok().as_ref())
+    };
+    if let Some(what) = refused {
+        return Err(Error::write(
+            final_path,
+            format!("is now {what}, which posgrid does not replace; it was left as it is and nothing was written"),
+        ));
+    }
+    let failed = |e| {
+        write_error(
+            final_path,
+            "cannot rename the finished output into place",
+            e,
+        )
+    };
+    if rename::exchange(temp, final_path).map_err(failed)? {
+        return Ok(Installed::Swapped);
+    }
+    if !is_dir {
+        fs::rename(temp, final_path).map_err(failed)?;
+        return Ok(Installed::Replaced);
+    }
+    let base = final_path.file_name().unwrap_or_default().as_bytes();
+    let aside = parent_dir(final_path).join(temp::name(base, std::process::id(), 100));
+    fs::rename(final_path, &aside).map_err(failed)?;
+    list.push(Temporary {
+        path: aside.clone(),
+        output: final_path.to_path_buf(),
+        is_dir: true,
+    });
+    if let Err(e) = fs::rename(temp, final_path) {
+        let _ = fs::rename(&aside, final_path);
+        deregister(list, &aside);
+        return Err(failed(e));
+    }
+    Ok(Installed::Aside(aside))
+}
+
+/// A failed no-replace rename: "exists" means something appeared during the run.
+fn appeared_or(final_path: &Path, e: io::Error) -> Error {
+    let exists = e.kind() == io::ErrorKind::AlreadyExists
+        || matches!(
+            e.raw_os_error(),
+            Some(libc::ENOTEMPTY) | Some(libc::ENOTDIR)
+        );
+    if exists {
+        Error::write(
+            final_path,
+            "appeared while posgrid was writing; it was left as it is and the output was not written (pass --force to replace it)",
+        )
+    } else {
+        write_error(
+            final_path,
+            "cannot rename the finished output into place",
+            e,
+        )
+    }
+}
+
+/// Put back what [`install`] did, best effort (a later failure must not lose the old output).
+fn undo(item: &Pending, how: &Installed, list: &mut Vec<Temporary>) {
+    let (temp, final_path, _, _) = item.parts();
+    let _ = match how {
+        Installed::New => fs::rename(final_path, temp),
+        Installed::Swapped => rename::exchange(temp, final_path).map(|_| ()),
+        Installed::Replaced => Ok(()),
+        Installed::Aside(old) => {
+            let back = fs::rename(final_path, temp).and_then(|()| fs::rename(old, final_path));
+            deregister(list, old);
+            back
+        }
+    };
+}
+
+/// An old version displaced by a commit, to be removed.
+struct Leftover {
+    old: PathBuf,
+    final_path: PathBuf,
+    is_dir: bool,
+}
+
+/// Remove replaced old versions; one that cannot be removed entirely is named in a warning
+/// (it stays under its temporary name, and a later run removes it once this process is gone).
+fn remove_old(leftovers: Vec<Leftover>) -> Vec<String> {
+    let mut warnings = Vec::new();
+    for Leftover {
+        old,
+        final_path,
+        is_dir,
+    } in leftovers
+    {
+        let removed = if is_dir {
+            fs::remove_dir_all(&old)
+        } else {
+            fs::remove_file(&old)
+        };
+        if let Err(e) = removed {
+            warnings.push(format!(
+                "{} was replaced, but its previous contents, moved to {}, could not be removed entirely ({e}); remove them yourself",
+                final_path.display(),
+                old.display()
+            ));
+        }
+        deregister(&mut temporaries(), &old);
+    }
+    warnings
 }

@@ -1,6 +1,7 @@
-//! Faults while writing: disk full (a file-size limit, RLIMIT_FSIZE, with SIGXFSZ ignored),
-//! SIGINT and SIGTERM mid-copy, and an output directory that cannot be written. In every case
-//! the final path is untouched, no temporary file remains and the input is unchanged.
+//! Faults while writing: disk full (a file-size limit, RLIMIT_FSIZE, with SIGXFSZ ignored by
+//! the caller or not), SIGINT, SIGTERM and SIGHUP mid-copy, and an output directory that
+//! cannot be written. In every case the final path is untouched, no temporary file remains and
+//! the input is unchanged. Interruptions are honoured within a second in every phase.
 
 mod common;
 
@@ -59,6 +60,15 @@ fn big_sparse(dir: &Path, len: u64) -> PathBuf {
 
 #[test]
 fn disk_full_leaves_nothing_behind() {
+    disk_full(true);
+}
+
+#[test]
+fn a_file_size_limit_is_a_write_error_even_when_sigxfsz_is_not_ignored() {
+    disk_full(false);
+}
+
+fn disk_full(ignore_sigxfsz: bool) {
     let dir = tempfile::tempdir().unwrap();
     let input = small_vit(dir.path());
     let before = std::fs::read(&input).unwrap();
@@ -74,8 +84,13 @@ fn disk_full_leaves_nothing_behind() {
     ]);
     // SAFETY: only async-signal-safe libc calls between fork and exec.
     unsafe {
-        cmd.pre_exec(|| {
-            libc::signal(libc::SIGXFSZ, libc::SIG_IGN);
+        cmd.pre_exec(move || {
+            let disposition = if ignore_sigxfsz {
+                libc::SIG_IGN
+            } else {
+                libc::SIG_DFL
+            };
+            libc::signal(libc::SIGXFSZ, disposition);
             let limit = libc::rlimit {
                 rlim_cur: 100_000,
                 rlim_max: 100_000,
@@ -90,7 +105,8 @@ fn disk_full_leaves_nothing_behind() {
     assert_eq!(
         o.status.code(),
         Some(5),
-        "{}",
+        "{:?} {}",
+        o.status,
         String::from_utf8_lossy(&o.stderr)
     );
     let err = String::from_utf8_lossy(&o.stderr);
@@ -187,4 +203,213 @@ fn sigint_mid_copy_leaves_nothing_behind() {
 #[test]
 fn sigterm_mid_copy_leaves_nothing_behind() {
     interrupt_mid_copy(libc::SIGTERM);
+}
+
+#[test]
+fn sighup_mid_copy_leaves_nothing_behind() {
+    interrupt_mid_copy(libc::SIGHUP);
+}
+
+/// Start posgrid, let it work for a moment, send `signal`, and check that it ends within a
+/// second with exit 130, leaving `dir` as it was.
+fn interrupt_within_a_second(dir: &Path, args: &[&std::ffi::OsStr], signal: i32) {
+    let before = entries(dir);
+    let mut child = Command::new(env!("CARGO_BIN_EXE_posgrid"))
+        .args(args)
+        .stdout(Stdio::null())
+        .stderr(Stdio::piped())
+        .spawn()
+        .unwrap();
+    std::thread::sleep(Duration::from_millis(300));
+    assert!(
+        child.try_wait().unwrap().is_none(),
+        "the phase under test ended before the signal"
+    );
+    unsafe { libc::kill(child.id() as i32, signal) };
+    let sent = Instant::now();
+    let status = loop {
+        if let Some(status) = child.try_wait().unwrap() {
+            break status;
+        }
+        if sent.elapsed() > Duration::from_secs(30) {
+            child.kill().unwrap();
+            panic!("not ended 30 s after signal {signal}");
+        }
+        std::thread::sleep(Duration::from_millis(5));
+    };
+    let took = sent.elapsed();
+    let mut err = String::new();
+    std::io::Read::read_to_string(&mut child.stderr.take().unwrap(), &mut err).unwrap();
+    assert_eq!(status.code(), Some(130), "{status:?} {err}");
+    assert!(err.contains("interrupted"), "{err}");
+    assert!(
+        took < Duration::from_secs(1),
+        "ended {took:?} after the signal"
+    );
+    assert_eq!(entries(dir), before, "nothing left behind");
+}
+
+/// A safetensors file whose header describes `n` one-element tensors (about 70 bytes each):
+/// slow to parse and check.
+fn huge_header(dir: &Path, n: usize) -> PathBuf {
+    let mut header = String::from("{");
+    for i in 0..n {
+        if i > 0 {
+            header.push(',');
+        }
+        header.push_str(&format!(
+            r#""t{i:07}":{{"dtype":"F32","shape":[1],"data_offsets":[{},{}]}}"#,
+            4 * i,
+            4 * i + 4
+        ));
+    }
+    header.push('}');
+    let path = crafted(dir, "huge-header.safetensors", &header, &[]);
+    let f = std::fs::OpenOptions::new().write(true).open(&path).unwrap();
+    f.set_len(8 + header.len() as u64 + 4 * n as u64).unwrap();
+    path
+}
+
+#[test]
+fn interrupt_while_parsing_a_huge_header() {
+    let dir = tempfile::tempdir().unwrap();
+    let input = huge_header(dir.path(), 1_300_000);
+    interrupt_within_a_second(
+        dir.path(),
+        &["scan".as_ref(), input.as_os_str()],
+        libc::SIGINT,
+    );
+}
+
+#[test]
+fn interrupt_while_reading_a_large_shard_index() {
+    let dir = tempfile::tempdir().unwrap();
+    let set = dir.path().join("set");
+    std::fs::create_dir(&set).unwrap();
+    crafted(
+        &set,
+        "model-00001-of-00001.safetensors",
+        r#"{"a":{"dtype":"F32","shape":[1],"data_offsets":[0,4]}}"#,
+        &[0; 4],
+    );
+    // About 70 MB of weight_map entries: seconds to read and check.
+    let mut index =
+        String::from(r#"{"metadata":{},"weight_map":{"a":"model-00001-of-00001.safetensors""#);
+    for i in 0..1_500_000 {
+        index.push_str(&format!(r#","t{i:07}":"model-00001-of-00001.safetensors""#));
+    }
+    index.push_str("}}");
+    std::fs::write(set.join("model.safetensors.index.json"), index).unwrap();
+    interrupt_within_a_second(
+        dir.path(),
+        &["scan".as_ref(), set.as_os_str()],
+        libc::SIGINT,
+    );
+}
+
+/// A 192x192 table of width 384 (56 MB): resampling it, scoring its fidelity and drawing its
+/// maps take seconds.
+fn large_table(dir: &Path) -> PathBuf {
+    let (g, d) = (192, 384);
+    let values: Vec<f64> = (0..(1 + g * g) * d)
+        .map(|i| ((i % 9973) as f64 * 0.37).sin())
+        .collect();
+    write(
+        dir,
+        "large.safetensors",
+        &[floats("pos_embed", Dtype::F32, &[1, 1 + g * g, d], &values)],
+        None,
+    )
+}
+
+#[test]
+fn interrupt_while_computing_tables_and_fidelity() {
+    let dir = tempfile::tempdir().unwrap();
+    let input = large_table(dir.path());
+    let out = dir.path().join("out.safetensors");
+    let png = dir.path().join("maps.png");
+    let args = [
+        "resize".as_ref(),
+        input.as_os_str(),
+        "-o".as_ref(),
+        out.as_os_str(),
+        "--grid".as_ref(),
+        "256".as_ref(),
+        "--map".as_ref(),
+        png.as_os_str(),
+    ];
+    interrupt_within_a_second(dir.path(), &args, libc::SIGTERM);
+}
+
+#[test]
+fn interrupt_while_drawing_maps() {
+    let dir = tempfile::tempdir().unwrap();
+    let input = large_table(dir.path());
+    let png = dir.path().join("maps.png");
+    let args = [
+        "map".as_ref(),
+        input.as_os_str(),
+        "-o".as_ref(),
+        png.as_os_str(),
+    ];
+    interrupt_within_a_second(dir.path(), &args, libc::SIGHUP);
+}
+
+const STUCK_WRITER_OUT: &str = "POSGRID_TEST_STUCK_WRITER_OUT";
+
+/// Run by the next test in a child process: a library caller that installs the handler,
+/// starts writing an output, and then never looks at the interruption flag again.
+#[test]
+#[ignore = "a helper process for interrupting_a_writer_that_never_checks_removes_its_temporary"]
+fn stuck_writer() {
+    let Some(out) = std::env::var_os(STUCK_WRITER_OUT) else {
+        return;
+    };
+    posgrid::write::install_interrupt_handler();
+    let mut file = posgrid::write::AtomicFile::create(Path::new(&out), false).unwrap();
+    file.write(b"partial", &mut posgrid::write::Silent).unwrap();
+    loop {
+        std::thread::sleep(Duration::from_secs(60));
+    }
+}
+
+#[test]
+fn interrupting_a_writer_that_never_checks_removes_its_temporary() {
+    let dir = tempfile::tempdir().unwrap();
+    let out = dir.path().join("out.safetensors");
+    let mut child = Command::new(std::env::current_exe().unwrap())
+        .args(["stuck_writer", "--exact", "--ignored", "--nocapture"])
+        .env(STUCK_WRITER_OUT, &out)
+        .stdout(Stdio::null())
+        .stderr(Stdio::piped())
+        .spawn()
+        .unwrap();
+    let start = Instant::now();
+    while entries(dir.path()).is_empty() {
+        assert!(start.elapsed() < Duration::from_secs(20), "no temporary");
+        std::thread::sleep(Duration::from_millis(1));
+    }
+    unsafe { libc::kill(child.id() as i32, libc::SIGTERM) };
+    let sent = Instant::now();
+    let status = loop {
+        if let Some(status) = child.try_wait().unwrap() {
+            break status;
+        }
+        if sent.elapsed() > Duration::from_secs(10) {
+            child.kill().unwrap();
+            child.wait().unwrap();
+            panic!(
+                "not ended 10 s after SIGTERM; left: {:?}",
+                entries(dir.path())
+            );
+        }
+        std::thread::sleep(Duration::from_millis(5));
+    };
+    assert_eq!(status.code(), Some(130), "{status:?}");
+    assert!(
+        sent.elapsed() < Duration::from_secs(1),
+        "{:?}",
+        sent.elapsed()
+    );
+    assert!(entries(dir.path()).is_empty(), "{:?}", entries(dir.path()));
 }
