@@ -25,7 +25,7 @@ Exit codes:
   4    no position table found, a named tensor is missing, or a table is ambiguous
   5    the output cannot be written (exists, is the input, no space, ...); nothing is left behind
   6    a table is refused: non-finite values, integer dtype, or over the memory guard
-  130  interrupted by SIGINT or SIGTERM; nothing is left behind";
+  130  interrupted by SIGINT, SIGTERM or SIGHUP; nothing is left behind";
 
 /// Resample the position tables of vision-transformer checkpoints to a new patch grid.
 #[derive(Debug, Parser)]
