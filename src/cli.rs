@@ -6,11 +6,11 @@ use std::path::PathBuf;
 
 use clap::{Args, Parser, Subcommand};
 
+use crate::checkpoint::Format;
 use crate::checkpoint::{Source, TensorSource};
 use crate::discover::{self, Channels, Hints};
 use crate::error::{Error, Result, EXIT_NO_TABLE, EXIT_OK};
 use crate::figure;
-use crate::output::OutputFormat;
 use crate::plan::{Request, Target};
 use crate::report::{self, ScanReport};
 use crate::resample::{Antialias, Coords, Edges, Kernel, Options, DEFAULT_CUBIC_A};
@@ -200,8 +200,8 @@ kept as they are. Learned tables are resampled as usual."
     #[arg(long)]
     pub allow_nonfinite: bool,
     /// Output container: safetensors or npz (default: OUT's extension, else the input's).
-    #[arg(long, value_name = "FORMAT", value_parser = parse_text::<OutputFormat>)]
-    pub format: Option<OutputFormat>,
+    #[arg(long, value_name = "FORMAT", value_parser = parse_text::<Format>)]
+    pub format: Option<Format>,
     /// Also draw before/after similarity maps of the first resized table to this PNG.
     #[arg(long, value_name = "PNG")]
     pub map: Option<PathBuf>,

@@ -25,7 +25,6 @@ pub mod cli;
 pub mod discover;
 pub mod error;
 pub mod figure;
-pub mod output;
 pub mod plan;
 pub mod render;
 pub mod report;

@@ -7,19 +7,19 @@ use std::path::{Path, PathBuf};
 use serde::Serialize;
 
 use crate::checkpoint::sharded::ShardedSet;
-use crate::checkpoint::{safetensors, Checkpoint, Dtype, Source, TensorEntry, TensorSource};
+use crate::checkpoint::writer::{self, Destination, OutEntry, Output};
+use crate::checkpoint::{Dtype, Format, Source, TensorEntry, TensorSource};
 use crate::discover::{self, Hints};
 use crate::error::{Error, Result};
 use crate::figure::{self, GridRows};
-use crate::output::{self, OutputFormat};
 use crate::plan::{self, Plan, Request, TableChange};
 use crate::resample;
 use crate::similarity::{self, Grid};
 use crate::values;
-use crate::write::{self, AtomicDir, AtomicFile, Bar, OutputRules, Pending, Progress, Silent};
+use crate::write::{self, AtomicFile, Bar, OutputRules, Pending, Progress, Silent};
 
 /// The metadata key posgrid adds, holding its provenance as a JSON string.
-pub const PROVENANCE_KEY: &str = "posgrid";
+pub use crate::checkpoint::safetensors::PROVENANCE_KEY;
 
 /// Everything `resize` needs.
 #[derive(Debug, Clone)]
@@ -41,7 +41,7 @@ pub struct ResizeJob {
     /// Also draw the before/after similarity maps of the first table to this PNG.
     pub map: Option<PathBuf>,
     /// The output container; `None` follows OUT's extension, then the input's format.
-    pub format: Option<OutputFormat>,
+    pub format: Option<Format>,
 }
 
 /// One resized table in the report.
@@ -148,7 +148,9 @@ pub fn run(job: &ResizeJob) -> Result<ResizeReport> {
     }
     let format = job
         .format
-        .or_else(|| OutputFormat::from_extension(&job.output));
+        .or_else(|| Format::from_extension(&job.output))
+        .unwrap_or(source.format());
+    let writer = writer::for_format(format);
     check_outputs(&source, job, format)?;
 
     let Computed {
@@ -160,88 +162,55 @@ pub fn run(job: &ResizeJob) -> Result<ResizeReport> {
         report_table.fidelity = fidelity;
         report.warnings.extend(notes);
     }
-    let data_size: u64 = source
-        .entries()
-        .iter()
-        .map(|t| {
-            new_data
-                .get(&t.name)
-                .map_or(t.byte_len(), |b| b.len() as u64)
-        })
-        .sum();
-    let figure = if job.dry_run {
-        None
-    } else {
-        draw_map(job, &grids, &mut report.warnings)?
+    let output = Output {
+        source: source.reader(),
+        entries: source
+            .entries()
+            .iter()
+            .map(|t| OutEntry {
+                name: t.name.clone(),
+                shape: plan.new_shape(&t.name).unwrap_or(&t.shape).clone(),
+                origin: t,
+                new: new_data.get(&t.name).map(Vec::as_slice),
+            })
+            .collect(),
+        provenance: provenance(&plan),
     };
-    match (&source, format) {
-        (Source::Sharded(set), _) => {
-            let written = sharded_output(set, &plan, &new_data, job, figure.as_deref())?;
-            report.output_size = written.size;
-            report.shards_rewritten = Some(written.rewritten);
-            report.shards_copied = Some(written.copied);
-            report.warnings.extend(written.warnings);
-        }
-        (Source::Single(ckpt), None | Some(OutputFormat::Safetensors)) => {
-            let header = patched_header(ckpt, &plan, &new_data);
-            report.output_size = patched_size(ckpt, &header, &new_data);
-            if !job.dry_run {
-                let mut progress = progress_for(job, report.output_size);
-                let mut out = AtomicFile::create_with(&job.output, &output_rules(job))?;
-                stream(ckpt, &header, &new_data, &mut out, progress.as_mut())?;
-                let warnings =
-                    commit_with_map(job, &job.input, Pending::File(out), figure.as_deref())?;
-                report.warnings.extend(warnings);
-                progress.finish();
-            }
-        }
-        (_, format) => {
-            // npz in or out: sizes are known only once written (compression, member headers).
-            report.output_size = data_size;
-            let to_npz = match format {
-                Some(f) => f == OutputFormat::Npz,
-                None => matches!(source, Source::Npz(_)),
-            };
-            if to_npz {
-                report.warnings.push(
-                    "npz archives hold no metadata: the provenance record is not stored".into(),
-                );
-            }
-            if !job.dry_run {
-                // The ZIP writer reports no progress; a bar is drawn for safetensors output only.
-                let mut progress: Box<dyn Progress> = if to_npz {
-                    Box::new(Silent)
-                } else {
-                    progress_for(job, data_size)
-                };
-                let mut out = AtomicFile::create_with(&job.output, &output_rules(job))?;
-                match (&source, to_npz) {
-                    (Source::Npz(n), true) => output::patch_npz(n, &plan, &new_data, &mut out)?,
-                    (_, true) => output::to_npz(&source, &plan, &new_data, &mut out)?,
-                    (_, false) => output::to_safetensors(
-                        &source,
-                        &plan,
-                        &new_data,
-                        &mut out,
-                        progress.as_mut(),
-                    )?,
-                }
-                report.output_size = out
-                    .file()
-                    .metadata()
-                    .map_err(|e| write::write_error(&job.output, "cannot write", e))?
-                    .len();
-                let warnings =
-                    commit_with_map(job, &job.input, Pending::File(out), figure.as_deref())?;
-                report.warnings.extend(warnings);
-                progress.finish();
-            }
-        }
+    writer.check(&output)?;
+    let preview = writer.preview(&output)?;
+    report.output_size = preview.size;
+    if let Some(layout) = preview.layout {
+        report.shards_rewritten = Some(layout.rewritten);
+        report.shards_copied = Some(layout.copied);
     }
+    report.warnings.extend(preview.notes);
     if job.dry_run {
         return Ok(report);
     }
-    report.bytes_written = report.output_size;
+    let figure = draw_map(job, &grids, &mut report.warnings)?;
+    let like = mode_source(job, &source);
+    let dest = Destination {
+        path: &job.output,
+        sync: job.sync,
+        force: job.force,
+        like,
+    };
+    // The ZIP writer reports no progress; a bar is drawn for the others.
+    let mut progress = match format {
+        Format::Npz => Box::new(Silent),
+        _ => progress_for(job, preview.size),
+    };
+    let written = writer.write(&output, &dest, progress.as_mut())?;
+    report.output_size = written.size;
+    report.bytes_written = written.size;
+    report.warnings.extend(written.warnings);
+    report.warnings.extend(commit_with_map(
+        job,
+        like,
+        written.pending,
+        figure.as_deref(),
+    )?);
+    progress.finish();
     if figure.is_some() {
         report.map = job.map.clone();
     }
@@ -292,12 +261,10 @@ fn table_fidelity(
 
 /// Check every output path before any work: OUT (a file, or a directory for a set) and the
 /// figure, which must be neither OUT nor an input, nor inside a set directory.
-fn check_outputs(source: &Source, job: &ResizeJob, format: Option<OutputFormat>) -> Result<()> {
-    match source {
-        Source::Sharded(set) => {
-            if format == Some(OutputFormat::Npz) {
-                return Err(Error::Usage("a sharded set is written as a sharded safetensors set; --format npz does not apply".into()));
-            }
+fn check_outputs(source: &Source, job: &ResizeJob, format: Format) -> Result<()> {
+    let set = source.downcast::<ShardedSet>();
+    match (format, set) {
+        (Format::ShardedSafetensors, Some(set)) => {
             write::check_destination_dir(set.dir(), &job.output, job.force)?
         }
         _ => write::check_destination(&job.input, &job.output, job.force)?,
@@ -315,11 +282,11 @@ fn check_outputs(source: &Source, job: &ResizeJob, format: Option<OutputFormat>)
     if write::same_destination(png, &job.output) {
         return clash("is also the checkpoint output (-o)");
     }
-    if let Source::Sharded(set) = source {
+    if let Some(set) = set {
         if write::inside(png, set.dir()) {
             return clash("is inside the input set's directory");
         }
-        if write::inside(png, &job.output) {
+        if format == Format::ShardedSafetensors && write::inside(png, &job.output) {
             return clash("is inside the output directory, which is written as a whole");
         }
     }
@@ -328,14 +295,10 @@ fn check_outputs(source: &Source, job: &ResizeJob, format: Option<OutputFormat>)
 
 /// The input file whose permission bits limit the outputs' (a set's index for a set).
 fn mode_source<'a>(job: &'a ResizeJob, source: &'a Source) -> &'a Path {
-    match source {
-        Source::Sharded(set) => set.index_path(),
-        _ => &job.input,
+    match source.downcast::<ShardedSet>() {
+        Some(set) => set.index_path(),
+        None => &job.input,
     }
-}
-
-fn output_rules(job: &ResizeJob) -> OutputRules {
-    OutputRules::like(&job.input, job.sync, job.force)
 }
 
 /// The before/after similarity maps of the first table as PNG bytes, if asked for. Drawn in
@@ -386,164 +349,6 @@ fn progress_for(job: &ResizeJob, total: u64) -> Box<dyn Progress> {
     } else {
         Box::new(Silent)
     }
-}
-
-/// Size of a patched single file: the new header plus every tensor's new or old bytes.
-fn patched_size(ckpt: &Checkpoint, header: &[u8], new_data: &HashMap<String, Vec<u8>>) -> u64 {
-    header.len() as u64
-        + ckpt
-            .tensors()
-            .iter()
-            .map(|t| {
-                new_data
-                    .get(&t.name)
-                    .map_or(t.byte_len(), |b| b.len() as u64)
-            })
-            .sum::<u64>()
-}
-
-/// What writing a sharded set produced.
-struct ShardedOutput {
-    size: u64,
-    rewritten: Vec<String>,
-    copied: Vec<String>,
-    warnings: Vec<String>,
-}
-
-/// Write a sharded set into a temporary directory beside OUTDIR, then rename it into place:
-/// shards holding a changed tensor are rewritten (streaming), the others and any other files
-/// of the set's directory copied unchanged, and the index written with the new total size.
-fn sharded_output(
-    set: &ShardedSet,
-    plan: &Plan,
-    new_data: &HashMap<String, Vec<u8>>,
-    job: &ResizeJob,
-    figure: Option<&[u8]>,
-) -> Result<ShardedOutput> {
-    let index_name = set
-        .index_path()
-        .file_name()
-        .map(|n| n.to_string_lossy().into_owned())
-        .unwrap_or_default();
-    let mut out = ShardedOutput {
-        size: 0,
-        rewritten: Vec::new(),
-        copied: Vec::new(),
-        warnings: Vec::new(),
-    };
-    let mut headers: Vec<Option<Vec<u8>>> = Vec::new();
-    for (name, ckpt) in &set.shards {
-        if ckpt
-            .tensors()
-            .iter()
-            .any(|t| new_data.contains_key(&t.name))
-        {
-            let header = patched_header(ckpt, plan, new_data);
-            out.size += patched_size(ckpt, &header, new_data);
-            headers.push(Some(header));
-            out.rewritten.push(name.clone());
-        } else {
-            out.size += ckpt.file_len();
-            headers.push(None);
-            out.copied.push(name.clone());
-        }
-    }
-    let total_size: u64 = set
-        .entries()
-        .iter()
-        .map(|t| {
-            new_data
-                .get(&t.name)
-                .map_or(t.byte_len(), |b| b.len() as u64)
-        })
-        .sum();
-    let mut index = set.index.clone();
-    let metadata = index
-        .entry("metadata")
-        .or_insert_with(|| serde_json::Value::Object(Default::default()));
-    if let serde_json::Value::Object(m) = metadata {
-        m.insert("total_size".into(), serde_json::Value::from(total_size));
-    }
-    let index_text = serde_json::to_string_pretty(&index).expect("JSON serialises") + "\n";
-    out.size += index_text.len() as u64;
-    let shard_names: Vec<&str> = set.shards.iter().map(|(n, _)| n.as_str()).collect();
-    let others: Vec<PathBuf> = std::fs::read_dir(set.dir())
-        .map_err(|e| Error::read(set.dir(), e))?
-        .filter_map(|e| e.ok())
-        .filter(|e| e.file_type().is_ok_and(|t| t.is_file()))
-        .map(|e| e.path())
-        .filter(|p| {
-            let n = p
-                .file_name()
-                .map(|n| n.to_string_lossy().into_owned())
-                .unwrap_or_default();
-            n != index_name && !shard_names.contains(&n.as_str()) && !n.starts_with('.')
-        })
-        .collect();
-    if !others.is_empty() {
-        let names: Vec<String> = others
-            .iter()
-            .filter_map(|p| p.file_name())
-            .map(|n| n.to_string_lossy().into_owned())
-            .collect();
-        out.warnings.push(format!(
-            "copied unchanged beside the shards: {} (update any image size they record)",
-            names.join(", ")
-        ));
-        for p in &others {
-            out.size += std::fs::metadata(p).map_err(|e| Error::read(p, e))?.len();
-        }
-    }
-    if job.dry_run {
-        return Ok(out);
-    }
-    let mut progress = progress_for(job, out.size);
-    let dir = AtomicDir::create_with(
-        &job.output,
-        &OutputRules::like(set.dir(), job.sync, job.force),
-    )?;
-    // Files inside the new directory: each as its input, never replacing anything.
-    let member = |name: &std::ffi::OsStr, like: &Path| {
-        AtomicFile::create_with(
-            &dir.path().join(name),
-            &OutputRules::like(like, job.sync, false),
-        )
-    };
-    for ((name, ckpt), header) in set.shards.iter().zip(&headers) {
-        let mut file = member(name.as_ref(), ckpt.path())?;
-        match header {
-            Some(h) => stream(ckpt, h, new_data, &mut file, progress.as_mut())?,
-            None => file.copy_from(
-                ckpt.file(),
-                ckpt.path(),
-                0,
-                ckpt.file_len(),
-                progress.as_mut(),
-            )?,
-        }
-        file.commit()?;
-    }
-    for p in &others {
-        let name = p.file_name().expect("listed files have names");
-        let input = std::fs::File::open(p).map_err(|e| Error::read(p, e))?;
-        let len = input.metadata().map_err(|e| Error::read(p, e))?.len();
-        let mut file = member(name, p)?;
-        file.copy_from(&input, p, 0, len, progress.as_mut())?;
-        file.commit()?;
-    }
-    let mut file = member(index_name.as_ref(), set.index_path())?;
-    file.write(index_text.as_bytes(), progress.as_mut())?;
-    file.commit()?;
-    // Checked again: OUTDIR may have changed during the write.
-    write::check_destination_dir(set.dir(), &job.output, job.force)?;
-    out.warnings.extend(commit_with_map(
-        job,
-        set.index_path(),
-        Pending::Dir(dir),
-        figure,
-    )?);
-    progress.finish();
-    Ok(out)
 }
 
 /// The new bytes of every changed tensor, by name, and each table's grid rows before and
@@ -707,52 +512,9 @@ fn refuse_nonfinite_output(
     ))
 }
 
-/// Tensors in data order (by their offsets in the input).
-fn data_order(ckpt: &Checkpoint) -> Vec<&TensorEntry> {
-    let mut order: Vec<&TensorEntry> = ckpt.tensors().iter().collect();
-    order.sort_by_key(|t| (t.begin, t.end));
-    order
-}
-
-/// The header of the output: same key order and data order, new shapes and offsets, the
-/// metadata kept with the provenance key added.
-fn patched_header(ckpt: &Checkpoint, plan: &Plan, new_data: &HashMap<String, Vec<u8>>) -> Vec<u8> {
-    let mut offsets: HashMap<&str, (u64, u64)> = HashMap::new();
-    let mut cursor = 0u64;
-    for t in data_order(ckpt) {
-        let len = new_data
-            .get(&t.name)
-            .map_or(t.byte_len(), |b| b.len() as u64);
-        offsets.insert(&t.name, (cursor, cursor + len));
-        cursor += len;
-    }
-    let entries: Vec<_> = ckpt
-        .tensors()
-        .iter()
-        .map(|t| {
-            let (b, e) = offsets[t.name.as_str()];
-            let shape = plan.new_shape(&t.name).unwrap_or(&t.shape).clone();
-            (t.name.clone(), t.dtype, shape, b, e)
-        })
-        .collect();
-    let mut metadata: Vec<(String, String)> =
-        ckpt.metadata().map(<[_]>::to_vec).unwrap_or_default();
-    let previous = metadata
-        .iter()
-        .position(|(k, _)| k == PROVENANCE_KEY)
-        .map(|i| metadata.remove(i).1);
-    metadata.push((PROVENANCE_KEY.to_string(), provenance(plan, previous)));
-    let position = if ckpt.metadata().is_some() {
-        ckpt.header().metadata_position
-    } else {
-        0
-    };
-    safetensors::encode_header(&entries, Some(&metadata), position)
-}
-
-/// Provenance: the version and, per table, the grids, slots and options. A provenance record
-/// already in the input is kept under `previous`.
-pub(crate) fn provenance(plan: &Plan, previous: Option<String>) -> String {
+/// Provenance: the version and, per table, the grids, slots and options. A writer whose
+/// container holds metadata adds a record already in its source under `previous`.
+pub(crate) fn provenance(plan: &Plan) -> serde_json::Value {
     let tables: Vec<serde_json::Value> = plan
         .tables
         .iter()
@@ -772,51 +534,10 @@ pub(crate) fn provenance(plan: &Plan, previous: Option<String>) -> String {
             })
         })
         .collect();
-    let mut record = serde_json::json!({
+    serde_json::json!({
         "tool": "posgrid",
         "version": env!("CARGO_PKG_VERSION"),
         "tables": tables,
         "companions": plan.companions.iter().map(|c| &c.name).collect::<Vec<_>>(),
-    });
-    if let Some(p) = previous {
-        record["previous"] = serde_json::Value::String(p);
-    }
-    record.to_string()
-}
-
-/// Write the header, then the data in input order: untouched runs copied in the kernel, new
-/// tensors written from memory.
-fn stream(
-    ckpt: &Checkpoint,
-    header: &[u8],
-    new_data: &HashMap<String, Vec<u8>>,
-    out: &mut AtomicFile,
-    progress: &mut dyn Progress,
-) -> Result<()> {
-    out.write(header, progress)?;
-    let mut run: Option<(u64, u64)> = None; // a pending range of untouched input bytes
-    for t in data_order(ckpt) {
-        match new_data.get(&t.name) {
-            None => {
-                run = match run {
-                    Some((b, e)) if e == t.begin => Some((b, t.end)),
-                    Some((b, e)) => {
-                        out.copy_from(ckpt.file(), ckpt.path(), b, e - b, progress)?;
-                        Some((t.begin, t.end))
-                    }
-                    None => Some((t.begin, t.end)),
-                }
-            }
-            Some(bytes) => {
-                if let Some((b, e)) = run.take() {
-                    out.copy_from(ckpt.file(), ckpt.path(), b, e - b, progress)?;
-                }
-                out.write(bytes, progress)?;
-            }
-        }
-    }
-    if let Some((b, e)) = run {
-        out.copy_from(ckpt.file(), ckpt.path(), b, e - b, progress)?;
-    }
-    Ok(())
+    })
 }

@@ -1,11 +1,14 @@
-//! Checkpoint containers. Each sub-module reads one format into the same [`Checkpoint`] value:
-//! a validated list of tensors (name, dtype, shape, byte span) plus positioned reads of one
-//! tensor's bytes. Validation happens when the file is opened, before any tensor data is used.
+//! Checkpoint containers, one module each, behind one interface per side: a [`Reader`] lists
+//! a container's tensors (name, dtype, shape, where the bytes lie) and reads one; a writer
+//! ([`writer`]) takes the ordered output entries, each "copy the source's bytes" or "these new
+//! bytes", and commits atomically. Validation happens when a container is opened, before any
+//! tensor data is used.
 
 pub mod json;
 pub mod npz;
 pub mod safetensors;
 pub mod sharded;
+pub mod writer;
 
 use std::fs::{File, FileType, Metadata, OpenOptions};
 use std::io::Read;
@@ -54,7 +57,30 @@ pub enum Format {
     Npz,
 }
 
+impl std::str::FromStr for Format {
+    type Err = String;
+    /// The names `--format` takes.
+    fn from_str(s: &str) -> std::result::Result<Self, String> {
+        match s {
+            "safetensors" => Ok(Format::Safetensors),
+            "npz" => Ok(Format::Npz),
+            _ => Err(format!(
+                "unknown format \"{s}\"; expected safetensors or npz"
+            )),
+        }
+    }
+}
+
 impl Format {
+    /// The format an output path asks for by its extension.
+    pub fn from_extension(path: &Path) -> Option<Self> {
+        match path.extension()?.to_str()? {
+            "npz" => Some(Format::Npz),
+            "safetensors" => Some(Format::Safetensors),
+            _ => None,
+        }
+    }
+
     /// The name used in reports.
     pub fn name(self) -> &'static str {
         match self {
@@ -334,12 +360,66 @@ impl TensorSource for InMemory<'_> {
     }
 }
 
-/// Any checkpoint posgrid reads: a single file, a sharded set or an npz archive.
+/// A run of a file that holds one tensor's bytes exactly as a writer needs them
+/// (little-endian, C order): writers copy such runs file to file, in the kernel.
+#[derive(Debug, Clone, Copy)]
+pub struct Span<'a> {
+    pub file: &'a File,
+    /// The file's path, for error messages.
+    pub path: &'a Path,
+    pub offset: u64,
+    pub len: u64,
+}
+
+/// An opened, validated container: what every reader offers the job and the writers. It lists
+/// its entries ([`TensorSource::entries`]), reads or streams one, and says where an entry's
+/// bytes lie when they are stored as they are ([`Reader::span`]).
+pub trait Reader: TensorSource + std::fmt::Debug {
+    /// The container format.
+    fn format(&self) -> Format;
+    /// Bytes on disk (all files of a set).
+    fn file_len(&self) -> u64;
+    /// Where `tensor`'s bytes lie, when a file holds them as they are.
+    fn span(&self, _tensor: &TensorEntry) -> Option<Span<'_>> {
+        None
+    }
+    /// String metadata the container carries (safetensors `__metadata__`), in file order.
+    fn metadata(&self) -> Option<&[(String, String)]> {
+        None
+    }
+    /// The concrete reader, for a writer of the same container that keeps more than tensors
+    /// (an npz member's compressed bytes, a set's shard layout).
+    fn as_any(&self) -> &dyn std::any::Any;
+}
+
+impl Reader for Checkpoint {
+    fn format(&self) -> Format {
+        self.format
+    }
+    fn file_len(&self) -> u64 {
+        self.file_len
+    }
+    fn span(&self, tensor: &TensorEntry) -> Option<Span<'_>> {
+        Some(Span {
+            file: &self.file,
+            path: &self.path,
+            offset: tensor.begin,
+            len: tensor.byte_len(),
+        })
+    }
+    fn metadata(&self) -> Option<&[(String, String)]> {
+        self.header.metadata.as_deref()
+    }
+    fn as_any(&self) -> &dyn std::any::Any {
+        self
+    }
+}
+
+/// Any checkpoint posgrid reads — a single safetensors file, a sharded set or an npz archive —
+/// opened behind the one [`Reader`] interface.
 #[derive(Debug)]
-pub enum Source {
-    Single(Checkpoint),
-    Sharded(sharded::ShardedSet),
-    Npz(npz::Npz),
+pub struct Source {
+    reader: Box<dyn Reader>,
 }
 
 impl Source {
@@ -348,73 +428,59 @@ impl Source {
     pub fn open(path: impl AsRef<Path>) -> Result<Self> {
         let path = path.as_ref();
         let is_index = path.extension().is_some_and(|e| e == "json");
-        if path.is_dir() || is_index {
-            return Ok(Source::Sharded(sharded::ShardedSet::open(path)?));
-        }
-        let (file, meta) = open_regular(path)?;
-        let named_npz = path
-            .extension()
-            .is_some_and(|e| e.eq_ignore_ascii_case("npz"));
-        if is_zip(&file) {
-            Ok(Source::Npz(npz::Npz::open(path)?))
-        } else if named_npz {
-            let problem = if meta.len() == 0 {
-                "is empty, not an npz archive"
-            } else {
-                "has a .npz name but is not a ZIP archive (an npz file is a ZIP of .npy arrays)"
-            };
-            Err(Error::invalid(path, FormatProblem::Other(problem.into())))
+        let reader: Box<dyn Reader> = if path.is_dir() || is_index {
+            Box::new(sharded::ShardedSet::open(path)?)
         } else {
-            Ok(Source::Single(Checkpoint::open(path)?))
-        }
+            let (file, meta) = open_regular(path)?;
+            let named_npz = path
+                .extension()
+                .is_some_and(|e| e.eq_ignore_ascii_case("npz"));
+            if is_zip(&file) {
+                Box::new(npz::Npz::open(path)?)
+            } else if named_npz {
+                let problem = if meta.len() == 0 {
+                    "is empty, not an npz archive"
+                } else {
+                    "has a .npz name but is not a ZIP archive (an npz file is a ZIP of .npy arrays)"
+                };
+                return Err(Error::invalid(path, FormatProblem::Other(problem.into())));
+            } else {
+                Box::new(Checkpoint::open(path)?)
+            }
+        };
+        Ok(Source { reader })
     }
 
-    pub fn format(&self) -> Format {
-        match self {
-            Source::Single(c) => c.format(),
-            Source::Sharded(_) => Format::ShardedSafetensors,
-            Source::Npz(_) => Format::Npz,
-        }
+    /// The reader behind this source.
+    pub fn reader(&self) -> &dyn Reader {
+        self.reader.as_ref()
     }
 
-    /// Bytes on disk (all shards for a set).
-    pub fn file_len(&self) -> u64 {
-        match self {
-            Source::Single(c) => c.file_len(),
-            Source::Sharded(s) => s.total_file_len(),
-            Source::Npz(n) => n.file_len(),
-        }
+    /// The concrete reader, if it is a `T`.
+    pub fn downcast<T: 'static>(&self) -> Option<&T> {
+        self.reader.as_any().downcast_ref::<T>()
+    }
+}
+
+impl std::ops::Deref for Source {
+    type Target = dyn Reader;
+    fn deref(&self) -> &Self::Target {
+        self.reader.as_ref()
     }
 }
 
 impl TensorSource for Source {
     fn entries(&self) -> &[TensorEntry] {
-        match self {
-            Source::Single(c) => c.tensors(),
-            Source::Sharded(s) => s.entries(),
-            Source::Npz(n) => n.entries(),
-        }
+        self.reader.entries()
     }
     fn bytes(&self, tensor: &TensorEntry) -> Result<Vec<u8>> {
-        match self {
-            Source::Single(c) => c.read_bytes(tensor),
-            Source::Sharded(s) => s.read_bytes(tensor),
-            Source::Npz(n) => n.read_bytes(tensor),
-        }
+        self.reader.bytes(tensor)
     }
     fn stream(&self, tensor: &TensorEntry, sink: Sink<'_>) -> Result<()> {
-        match self {
-            Source::Single(c) => c.stream_bytes(tensor, sink),
-            Source::Sharded(s) => s.stream_bytes(tensor, sink),
-            Source::Npz(n) => n.stream_bytes(tensor, sink),
-        }
+        self.reader.stream(tensor, sink)
     }
     fn source_path(&self) -> &Path {
-        match self {
-            Source::Single(c) => c.path(),
-            Source::Sharded(s) => s.index_path(),
-            Source::Npz(n) => n.path(),
-        }
+        self.reader.source_path()
     }
 }
 

@@ -11,8 +11,10 @@ use serde::de::{Deserializer, MapAccess, Visitor};
 use serde::Deserialize;
 use serde_json::Value;
 
-use super::{Dtype, TensorEntry};
+use super::writer::{copy_entries, write_file, Destination, Output, Preview, Writer, Written};
+use super::{Checkpoint, Dtype, Format, TensorEntry};
 use crate::error::FormatProblem;
+use crate::write::{AtomicFile, Progress};
 
 /// The largest header accepted, in bytes (the limit the reference implementation also uses).
 pub const MAX_HEADER_LEN: u64 = 100_000_000;
@@ -428,4 +430,94 @@ pub fn encode_header(
     bytes.extend_from_slice(&(out.len() as u64).to_le_bytes());
     bytes.extend_from_slice(out.as_bytes());
     bytes
+}
+/// The metadata key posgrid adds, holding its provenance as a JSON string.
+pub const PROVENANCE_KEY: &str = "posgrid";
+
+/// Writes a safetensors file: header keys in output order, data in the source's data order
+/// when the source is one safetensors file (so untouched runs stay back to back and are
+/// copied in one step), the source's metadata kept with the provenance key added.
+pub struct SafetensorsWriter;
+
+impl SafetensorsWriter {
+    /// Output entry indices in the order their data is laid out.
+    fn data_order(out: &Output) -> Vec<usize> {
+        let mut order: Vec<usize> = (0..out.entries.len()).collect();
+        if out.source.as_any().is::<Checkpoint>() {
+            order.sort_by_key(|&i| (out.entries[i].origin.begin, out.entries[i].origin.end));
+        }
+        order
+    }
+
+    fn header(out: &Output, order: &[usize]) -> Vec<u8> {
+        let mut offsets = vec![(0u64, 0u64); out.entries.len()];
+        let mut cursor = 0u64;
+        for &i in order {
+            let len = out.entries[i].byte_len();
+            offsets[i] = (cursor, cursor + len);
+            cursor += len;
+        }
+        let entries: Vec<_> = out
+            .entries
+            .iter()
+            .zip(&offsets)
+            .map(|(e, &(b, end))| (e.name.clone(), e.dtype(), e.shape.clone(), b, end))
+            .collect();
+        let mut metadata: Vec<(String, String)> =
+            out.source.metadata().map(<[_]>::to_vec).unwrap_or_default();
+        let previous = metadata
+            .iter()
+            .position(|(k, _)| k == PROVENANCE_KEY)
+            .map(|i| metadata.remove(i).1);
+        let mut record = out.provenance.clone();
+        if let (Some(p), Some(map)) = (previous, record.as_object_mut()) {
+            map.insert("previous".into(), serde_json::Value::String(p));
+        }
+        metadata.push((PROVENANCE_KEY.to_string(), record.to_string()));
+        let position = match out.source.as_any().downcast_ref::<Checkpoint>() {
+            Some(c) if c.metadata().is_some() => c.header().metadata_position,
+            _ => 0,
+        };
+        encode_header(&entries, Some(&metadata), position)
+    }
+
+    /// The size of the file this writer makes.
+    pub(crate) fn size(out: &Output) -> u64 {
+        let order = Self::data_order(out);
+        Self::header(out, &order).len() as u64
+            + out.entries.iter().map(|e| e.byte_len()).sum::<u64>()
+    }
+
+    /// Fill `file` with the output.
+    pub(crate) fn fill(
+        out: &Output,
+        file: &mut AtomicFile,
+        progress: &mut dyn Progress,
+    ) -> crate::error::Result<()> {
+        let order = Self::data_order(out);
+        file.write(&Self::header(out, &order), progress)?;
+        copy_entries(out, &order, file, progress)
+    }
+}
+
+impl Writer for SafetensorsWriter {
+    fn format(&self) -> Format {
+        Format::Safetensors
+    }
+
+    fn preview(&self, out: &Output) -> crate::error::Result<Preview> {
+        Ok(Preview {
+            size: Self::size(out),
+            ..Preview::default()
+        })
+    }
+
+    fn write(
+        &self,
+        out: &Output,
+        dest: &Destination,
+        progress: &mut dyn Progress,
+    ) -> crate::error::Result<Written> {
+        write_file(dest, |file| Self::fill(out, file, progress))
+    }
 }

@@ -9,8 +9,11 @@ use std::path::{Path, PathBuf};
 
 use serde_json::Value;
 
-use super::{Checkpoint, Sink, TensorEntry};
+use super::safetensors::SafetensorsWriter;
+use super::writer::{Destination, Output, Preview, SetLayout, Writer, Written};
+use super::{Checkpoint, Format, Sink, TensorEntry};
 use crate::error::{Error, FormatProblem, Result};
+use crate::write::{AtomicDir, AtomicFile, OutputRules, Pending, Progress};
 
 /// File names that mark a shard index (common practice: `model.safetensors.index.json`).
 pub const INDEX_SUFFIX: &str = ".safetensors.index.json";
@@ -188,6 +191,27 @@ impl ShardedSet {
         self.owner.get(name).copied()
     }
 
+    /// The other visible regular files of the set's directory (configuration files and the
+    /// like), which a set output copies unchanged.
+    pub fn other_files(&self) -> Result<Vec<PathBuf>> {
+        let index_name = self.index_path.file_name().unwrap_or_default();
+        let mut found: Vec<PathBuf> = fs::read_dir(&self.dir)
+            .map_err(|e| Error::read(&self.dir, e))?
+            .filter_map(|e| e.ok())
+            .filter(|e| e.file_type().is_ok_and(|t| t.is_file()))
+            .filter(|e| {
+                let n = e.file_name();
+                let text = n.to_string_lossy();
+                n != index_name
+                    && !self.shards.iter().any(|(s, _)| s.as_str() == text)
+                    && !text.starts_with('.')
+            })
+            .map(|e| e.path())
+            .collect();
+        found.sort();
+        Ok(found)
+    }
+
     /// Total size of all shard files.
     pub fn total_file_len(&self) -> u64 {
         self.shards.iter().map(|(_, c)| c.file_len()).sum()
@@ -232,4 +256,190 @@ fn check_shard_name(name: &str) -> std::result::Result<(), String> {
 fn file_id(path: &Path) -> Result<(u64, u64)> {
     let meta = fs::metadata(path).map_err(|e| Error::read(path, e))?;
     Ok((meta.dev(), meta.ino()))
+}
+
+impl super::TensorSource for ShardedSet {
+    fn entries(&self) -> &[TensorEntry] {
+        &self.entries
+    }
+    fn bytes(&self, tensor: &TensorEntry) -> Result<Vec<u8>> {
+        self.read_bytes(tensor)
+    }
+    fn stream(&self, tensor: &TensorEntry, sink: super::Sink<'_>) -> Result<()> {
+        self.stream_bytes(tensor, sink)
+    }
+    fn source_path(&self) -> &Path {
+        &self.index_path
+    }
+}
+
+impl super::Reader for ShardedSet {
+    fn format(&self) -> super::Format {
+        super::Format::ShardedSafetensors
+    }
+    fn file_len(&self) -> u64 {
+        self.total_file_len()
+    }
+    fn span(&self, tensor: &TensorEntry) -> Option<super::Span<'_>> {
+        let i = self.shard_of(&tensor.name)?;
+        super::Reader::span(&self.shards[i].1, tensor)
+    }
+    fn as_any(&self) -> &dyn std::any::Any {
+        self
+    }
+}
+
+/// Writes a sharded set into a temporary directory beside OUTDIR: shards holding a changed
+/// tensor are rewritten (streaming), the others and every other regular file of the set's
+/// directory copied unchanged, and the index written with the new total size. Only a sharded
+/// source can be written this way (its layout is what is kept).
+pub struct SetWriter;
+
+/// The shard layout a set writer keeps, planned before anything is written.
+struct SetPlan<'a> {
+    set: &'a ShardedSet,
+    /// Per shard: its part of the output, and whether it changes.
+    shards: Vec<(Output<'a>, bool)>,
+    index_text: String,
+    others: Vec<PathBuf>,
+}
+
+impl SetWriter {
+    fn source<'a>(out: &Output<'a>) -> Result<&'a ShardedSet> {
+        out.source.as_any().downcast_ref::<ShardedSet>().ok_or_else(|| {
+            Error::Usage(
+                "only a sharded set is written as a sharded set; give OUT a .safetensors or .npz name to convert".into(),
+            )
+        })
+    }
+
+    fn plan<'a>(out: &Output<'a>) -> Result<SetPlan<'a>> {
+        let set = Self::source(out)?;
+        let shards: Vec<(Output, bool)> = set
+            .shards
+            .iter()
+            .enumerate()
+            .map(|(i, (_, ckpt))| {
+                let part = out.restricted(ckpt, |e| set.shard_of(&e.origin.name) == Some(i));
+                let changed = part.changes_anything();
+                (part, changed)
+            })
+            .collect();
+        let total_size: u64 = out.entries.iter().map(|e| e.byte_len()).sum();
+        let mut index = set.index.clone();
+        let metadata = index
+            .entry("metadata")
+            .or_insert_with(|| Value::Object(Default::default()));
+        if let Value::Object(m) = metadata {
+            m.insert("total_size".into(), Value::from(total_size));
+        }
+        let index_text = serde_json::to_string_pretty(&index).expect("JSON serialises") + "\n";
+        Ok(SetPlan {
+            set,
+            shards,
+            index_text,
+            others: set.other_files()?,
+        })
+    }
+}
+
+impl Writer for SetWriter {
+    fn format(&self) -> Format {
+        Format::ShardedSafetensors
+    }
+
+    fn check(&self, out: &Output) -> Result<()> {
+        Self::source(out).map(|_| ())
+    }
+
+    fn preview(&self, out: &Output) -> Result<Preview> {
+        let plan = Self::plan(out)?;
+        let mut preview = Preview {
+            size: plan.index_text.len() as u64,
+            layout: Some(SetLayout::default()),
+            notes: Vec::new(),
+        };
+        let layout = preview.layout.as_mut().expect("set above");
+        for ((name, ckpt), (part, changed)) in plan.set.shards.iter().zip(&plan.shards) {
+            if *changed {
+                preview.size += SafetensorsWriter::size(part);
+                layout.rewritten.push(name.clone());
+            } else {
+                preview.size += ckpt.file_len();
+                layout.copied.push(name.clone());
+            }
+        }
+        if !plan.others.is_empty() {
+            let names: Vec<String> = plan
+                .others
+                .iter()
+                .filter_map(|p| p.file_name())
+                .map(|n| n.to_string_lossy().into_owned())
+                .collect();
+            preview.notes.push(format!(
+                "copied unchanged beside the shards: {} (update any image size they record)",
+                names.join(", ")
+            ));
+            for p in &plan.others {
+                preview.size += fs::metadata(p).map_err(|e| Error::read(p, e))?.len();
+            }
+        }
+        Ok(preview)
+    }
+
+    fn write(
+        &self,
+        out: &Output,
+        dest: &Destination,
+        progress: &mut dyn Progress,
+    ) -> Result<Written> {
+        let plan = Self::plan(out)?;
+        let set = plan.set;
+        let dir = AtomicDir::create_with(
+            dest.path,
+            &OutputRules::like(set.dir(), dest.sync, dest.force),
+        )?;
+        // Files inside the new directory: each as its input, never replacing anything.
+        let member = |name: &std::ffi::OsStr, like: &Path| {
+            AtomicFile::create_with(
+                &dir.path().join(name),
+                &OutputRules::like(like, dest.sync, false),
+            )
+        };
+        let mut size = 0;
+        for ((name, ckpt), (part, changed)) in set.shards.iter().zip(&plan.shards) {
+            let mut file = member(name.as_ref(), ckpt.path())?;
+            if *changed {
+                SafetensorsWriter::fill(part, &mut file, progress)?;
+            } else {
+                file.copy_from(ckpt.file(), ckpt.path(), 0, ckpt.file_len(), progress)?;
+            }
+            size += file
+                .file()
+                .metadata()
+                .map_err(|e| crate::write::write_error(dest.path, "cannot write", e))?
+                .len();
+            file.commit()?;
+        }
+        for p in &plan.others {
+            let name = p.file_name().expect("listed files have names");
+            let (input, meta) = super::open_regular(p)?;
+            let mut file = member(name, p)?;
+            file.copy_from(&input, p, 0, meta.len(), progress)?;
+            size += meta.len();
+            file.commit()?;
+        }
+        let index_name = set.index_path().file_name().expect("an index is a file");
+        let mut file = member(index_name, set.index_path())?;
+        file.write(plan.index_text.as_bytes(), progress)?;
+        size += plan.index_text.len() as u64;
+        file.commit()?;
+        // Checked again: OUTDIR may have changed during the write.
+        crate::write::check_destination_dir(set.dir(), dest.path, dest.force)?;
+        Ok(Written {
+            pending: Pending::Dir(dir),
+            size,
+            warnings: Vec::new(),
+        })
+    }
 }

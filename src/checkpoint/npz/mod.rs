@@ -8,6 +8,10 @@ use std::fs::File;
 use std::io::Read;
 use std::path::{Path, PathBuf};
 
+mod write;
+
+pub use write::NpzWriter;
+
 use super::{Dtype, Sink, TensorEntry};
 use crate::error::{Error, FormatProblem, Result};
 
@@ -447,6 +451,33 @@ pub fn npy_header(descr: &str, shape: &[usize]) -> Vec<u8> {
     }
     out.extend(dict.as_bytes());
     out
+}
+
+impl super::TensorSource for Npz {
+    fn entries(&self) -> &[TensorEntry] {
+        &self.entries
+    }
+    fn bytes(&self, tensor: &TensorEntry) -> Result<Vec<u8>> {
+        self.read_bytes(tensor)
+    }
+    fn stream(&self, tensor: &TensorEntry, sink: super::Sink<'_>) -> Result<()> {
+        self.stream_bytes(tensor, sink)
+    }
+    fn source_path(&self) -> &Path {
+        &self.path
+    }
+}
+
+impl super::Reader for Npz {
+    fn format(&self) -> super::Format {
+        super::Format::Npz
+    }
+    fn file_len(&self) -> u64 {
+        self.file_len
+    }
+    fn as_any(&self) -> &dyn std::any::Any {
+        self
+    }
 }
 
 #[cfg(test)]
