@@ -3,6 +3,7 @@
 //! tensor's bytes. Validation happens when the file is opened, before any tensor data is used.
 
 pub mod npz;
+pub mod pickle;
 pub mod safetensors;
 pub mod sharded;
 
