@@ -1831,7 +1831,7 @@ impl<'a> Writer<'a> {
             Task::Op(op) => self.out.push(op),
             Task::Bool(b) => self.out.push(if b { 0x88 } else { 0x89 }),
             Task::FinishTuple { id, len, marked } => {
-                if self.fetch_again(id, if marked { &[b'1'] } else { &[] }, len) {
+                if self.fetch_again(id, if marked { b"1" } else { b"" }, len) {
                     return;
                 }
                 self.out.push(match len {
@@ -1843,18 +1843,18 @@ impl<'a> Writer<'a> {
                 self.memoize(id);
             }
             Task::FinishFrozenSet(id) => {
-                if !self.fetch_again(id, &[b'1'], 0) {
+                if !self.fetch_again(id, b"1", 0) {
                     self.out.push(0x91);
                     self.memoize(id);
                 }
             }
             Task::FinishCall(id) => {
-                if !self.fetch_again(id, &[b'0'], 0) {
+                if !self.fetch_again(id, b"0", 0) {
                     self.memoize(id);
                 }
             }
             Task::FinishObject(id) => {
-                if !self.fetch_again(id, &[b'0'], 0) {
+                if !self.fetch_again(id, b"0", 0) {
                     self.memoize(id);
                     self.fill_object(id);
                 }
@@ -2207,4 +2207,893 @@ fn item_batches(items: &[(NodeId, NodeId)]) -> Vec<Task> {
         tasks.push(Task::Op(if marked { b'u' } else { b's' }));
     }
     tasks
+}
+
+#[cfg(test)]
+mod tests {
+    //! Opcode bytes and their meaning follow Python's `pickletools` opcode table; the `.pkl`
+    //! fixtures are written by Python's own `pickle` module (fixtures/pickle/make_pickles.py).
+
+    use super::*;
+
+    fn cat(parts: &[&[u8]]) -> Vec<u8> {
+        parts.concat()
+    }
+
+    fn uni(s: &str) -> Vec<u8> {
+        cat(&[b"X", &(s.len() as u32).to_le_bytes(), s.as_bytes()])
+    }
+
+    fn glob(module: &str, name: &str) -> Vec<u8> {
+        format!("c{module}\n{name}\n").into_bytes()
+    }
+
+    fn parse_ok(bytes: &[u8]) -> Pickle {
+        parse(bytes, &Limits::for_len(bytes.len())).unwrap_or_else(|e| panic!("{e}"))
+    }
+
+    fn parse_err(bytes: &[u8]) -> PickleError {
+        parse(bytes, &Limits::for_len(bytes.len())).expect_err("stream must be refused")
+    }
+
+    fn root(bytes: &[u8]) -> Node {
+        let p = parse_ok(bytes);
+        p.nodes[p.root].clone()
+    }
+
+    fn fixture(name: &str) -> Vec<u8> {
+        let path = format!("{}/fixtures/pickle/{name}", env!("CARGO_MANIFEST_DIR"));
+        std::fs::read(&path).unwrap_or_else(|e| panic!("{path}: {e}"))
+    }
+
+    fn round_trip(p: &Pickle) -> Pickle {
+        let out = write(p);
+        let again =
+            parse(&out, &Limits::for_len(out.len())).unwrap_or_else(|e| panic!("re-parse: {e}"));
+        assert!(p.equivalent(&again), "round trip changed the values");
+        again
+    }
+
+    /// `GLOBAL torch FloatStorage` persistent id as the framework writes it.
+    fn storage_pid(key: &str, numel: u8) -> Vec<u8> {
+        cat(&[
+            b"(",
+            &uni("storage"),
+            &glob("torch", "FloatStorage"),
+            &uni(key),
+            &uni("cpu"),
+            &[b'K', numel],
+            b"tQ",
+        ])
+    }
+
+    /// `_rebuild_tensor_v2` call with the given argument bytes (without MARK/TUPLE).
+    fn rebuild(args: &[u8]) -> Vec<u8> {
+        cat(&[
+            &glob("torch._utils", "_rebuild_tensor_v2"),
+            b"(",
+            args,
+            b"tR",
+        ])
+    }
+
+    fn tensor_2x3(key: &str) -> Vec<u8> {
+        let hooks = cat(&[&glob("collections", "OrderedDict"), b")R"]);
+        rebuild(&cat(&[
+            &storage_pid(key, 6),
+            b"K\x00K\x02K\x03\x86K\x03K\x01\x86\x89",
+            &hooks,
+        ]))
+    }
+
+    // ---- plain data ----
+
+    #[test]
+    fn scalar_opcodes_read_as_python_reads_them() {
+        // Values: Python's pickletools opcode documentation.
+        assert_eq!(root(b"N."), Node::None);
+        assert_eq!(root(b"\x88."), Node::Bool(true));
+        assert_eq!(root(b"\x89."), Node::Bool(false));
+        assert_eq!(root(b"I00\n."), Node::Bool(false));
+        assert_eq!(root(b"I01\n."), Node::Bool(true));
+        assert_eq!(root(b"I-42\n."), Node::Int(-42));
+        assert_eq!(root(b"J\xfe\xff\xff\xff."), Node::Int(-2));
+        assert_eq!(root(b"K\xff."), Node::Int(255));
+        assert_eq!(root(b"M\x00\x01."), Node::Int(256));
+        assert_eq!(root(b"L-7L\n."), Node::Int(-7));
+        assert_eq!(root(b"\x8a\x00."), Node::Int(0));
+        assert_eq!(root(b"\x8a\x02\xff\x00."), Node::Int(255));
+        assert_eq!(root(b"\x8b\x01\x00\x00\x00\xff."), Node::Int(-1));
+        assert_eq!(root(b"F1.5\n."), Node::Float(1.5));
+        assert_eq!(root(b"G?\xf8\x00\x00\x00\x00\x00\x00."), Node::Float(1.5));
+        assert_eq!(root(b"S'a\\nb\\x41'\n."), Node::Str("a\nbA".into()));
+        assert_eq!(root(b"T\x02\x00\x00\x00hi."), Node::Str("hi".into()));
+        assert_eq!(root(b"U\x01\xff."), Node::Bytes(vec![0xff]));
+        assert_eq!(root(b"V\\u00e4x\n."), Node::Str("\u{e4}x".into()));
+        assert_eq!(
+            root(b"X\x02\x00\x00\x00\xc3\xa4."),
+            Node::Str("\u{e4}".into())
+        );
+        assert_eq!(root(b"\x8c\x01a."), Node::Str("a".into()));
+        assert_eq!(
+            root(b"\x8d\x01\x00\x00\x00\x00\x00\x00\x00a."),
+            Node::Str("a".into())
+        );
+        assert_eq!(root(b"B\x01\x00\x00\x00z."), Node::Bytes(b"z".to_vec()));
+        assert_eq!(root(b"C\x01z."), Node::Bytes(b"z".to_vec()));
+        assert_eq!(
+            root(b"\x8e\x01\x00\x00\x00\x00\x00\x00\x00z."),
+            Node::Bytes(b"z".to_vec())
+        );
+        assert_eq!(
+            root(b"\x96\x01\x00\x00\x00\x00\x00\x00\x00z."),
+            Node::ByteArray(b"z".to_vec())
+        );
+    }
+
+    #[test]
+    fn integers_beyond_i64_keep_their_twos_complement_bytes() {
+        // Bytes: Python's `pickle.encode_long(12345678901234567890)` and of -2**70.
+        let big = vec![210, 10, 31, 235, 140, 169, 84, 171, 0];
+        assert_eq!(
+            root(b"L12345678901234567890L\n."),
+            Node::BigInt(big.clone())
+        );
+        assert_eq!(root(b"I12345678901234567890\n."), Node::BigInt(big.clone()));
+        assert_eq!(root(&cat(&[b"\x8a\x09", &big, b"."])), Node::BigInt(big));
+        assert_eq!(
+            root(b"L-1180591620717411303424\n."),
+            Node::BigInt(vec![0, 0, 0, 0, 0, 0, 0, 0, 192])
+        );
+        // CPython refuses decimal integer text above 4300 digits (sys.int_info, 3.11+).
+        let long = format!("I{}\n.", "9".repeat(4301));
+        assert_eq!(parse_err(long.as_bytes()).rule, Rule::BadText("INT value"));
+    }
+
+    #[test]
+    fn containers_memo_and_stack_opcodes() {
+        let p = parse_ok(b"(K\x01K\x02t.");
+        assert!(matches!(&p.nodes[p.root], Node::Tuple(v) if v.len() == 2));
+        let p = parse_ok(b"K\x01K\x02K\x03\x87.");
+        assert!(matches!(&p.nodes[p.root], Node::Tuple(v) if v.len() == 3));
+        assert_eq!(root(b")."), Node::Tuple(vec![]));
+        let p = parse_ok(b"(K\x01l]K\x02a(K\x03K\x04ea.");
+        let Node::List(outer) = &p.nodes[p.root] else {
+            panic!()
+        };
+        assert_eq!(outer.len(), 2);
+        assert!(matches!(&p.nodes[outer[1]], Node::List(v) if v.len() == 3));
+        let p = parse_ok(b"(K\x01K\x02dK\x03K\x04s(K\x05K\x06uK\x07\x8f(K\x08\x90s.");
+        let Node::Dict { items, .. } = &p.nodes[p.root] else {
+            panic!()
+        };
+        assert_eq!(items.len(), 4);
+        assert!(matches!(&p.nodes[items[3].1], Node::Set(v) if v.len() == 1));
+        assert!(matches!(root(b"(K\x01\x91."), Node::FrozenSet(v) if v.len() == 1));
+        // PUT/GET text and binary forms, MEMOIZE, DUP, POP, POP_MARK, FRAME, PROTO 5.
+        let stream = b"\x80\x05\x95\x00\x00\x00\x00\x00\x00\x00\x00(K\x01p7\nK\x02q\x01K\x03r\x09\x00\x00\x00\x94(N1N0g7\nh\x01j\x09\x00\x00\x00h\x03\x2ct.";
+        let stream = stream.replace(b"\x2c", b"2");
+        let p = parse_ok(&stream);
+        assert_eq!(p.protocol, 5);
+        let Node::Tuple(v) = &p.nodes[p.root] else {
+            panic!()
+        };
+        let values: Vec<_> = v.iter().map(|&i| p.nodes[i].clone()).collect();
+        let ints = |xs: &[i64]| xs.iter().map(|&x| Node::Int(x)).collect::<Vec<_>>();
+        assert_eq!(values, ints(&[1, 2, 3, 1, 2, 3, 3, 3]));
+    }
+
+    trait Replace {
+        fn replace(&self, from: &[u8], to: &[u8]) -> Vec<u8>;
+    }
+
+    impl Replace for [u8] {
+        fn replace(&self, from: &[u8], to: &[u8]) -> Vec<u8> {
+            let mut out = Vec::new();
+            let mut i = 0;
+            while i < self.len() {
+                if self[i..].starts_with(from) {
+                    out.extend_from_slice(to);
+                    i += from.len();
+                } else {
+                    out.push(self[i]);
+                    i += 1;
+                }
+            }
+            out
+        }
+    }
+
+    #[test]
+    fn a_memoized_dict_filled_later_is_the_same_node_everywhere() {
+        // Python semantics: GET returns the very object PUT stored.
+        let p = parse_ok(b"}q\x00]q\x01h\x00ah\x00a0K\x01K\x02sh\x01\x86.");
+        let Node::Tuple(pair) = &p.nodes[p.root] else {
+            panic!()
+        };
+        let Node::List(list) = &p.nodes[pair[1]] else {
+            panic!()
+        };
+        assert_eq!(list, &vec![pair[0], pair[0]]);
+        assert!(matches!(&p.nodes[pair[0]], Node::Dict { items, .. } if items.len() == 1));
+    }
+
+    #[test]
+    fn a_repeated_key_replaces_the_value_in_place_as_in_a_python_dict() {
+        let p = parse_ok(&cat(&[
+            b"}(",
+            &uni("a"),
+            b"K\x01",
+            &uni("b"),
+            b"K\x02",
+            &uni("a"),
+            b"K\x03u.",
+        ]));
+        let Node::Dict { items, .. } = &p.nodes[p.root] else {
+            panic!()
+        };
+        let values: Vec<_> = items.iter().map(|&(_, v)| p.nodes[v].clone()).collect();
+        assert_eq!(values, vec![Node::Int(3), Node::Int(2)]);
+        // 1 and True are one key in Python.
+        let p = parse_ok(b"}K\x01K\x01s\x88K\x02s.");
+        assert!(matches!(&p.nodes[p.root], Node::Dict { items, .. } if items.len() == 1));
+    }
+
+    // ---- refusals ----
+
+    #[test]
+    fn opcodes_outside_the_allow_list_are_refused_with_offset_and_name() {
+        for (stream, name) in [
+            (&b"Ni__main__\nC\n."[..], "INST"),
+            (b"No.", "OBJ"),
+            (b"N\x82\x01.", "EXT1"),
+            (b"N\x83\x01\x00.", "EXT2"),
+            (b"N\x84\x01\x00\x00\x00.", "EXT4"),
+            (b"NP0\n.", "PERSID"),
+            (b"N\x97.", "NEXT_BUFFER"),
+            (b"N\x98.", "READONLY_BUFFER"),
+        ] {
+            let e = parse_err(stream);
+            assert_eq!(
+                (e.offset, e.opcode.as_str(), &e.rule),
+                (1, name, &Rule::Refused),
+                "{e}"
+            );
+        }
+        let e = parse_err(b"N\xff.");
+        assert_eq!(
+            (e.offset, e.opcode.as_str(), e.rule),
+            (1, "0xff", Rule::Unknown)
+        );
+        assert_eq!(parse_err(b"\x80\x06N.").rule, Rule::Protocol(6));
+        assert_eq!(parse_err(b"N").rule, Rule::NoStop);
+        assert_eq!(parse_err(b"N.N").rule, Rule::TrailingBytes(1));
+        assert_eq!(
+            parse_err(b"NN.").rule,
+            Rule::Leftover {
+                values: 1,
+                marks: 0
+            }
+        );
+        assert_eq!(
+            parse_err(b"(N.").rule,
+            Rule::Leftover {
+                values: 0,
+                marks: 1
+            }
+        );
+        assert_eq!(parse_err(b".").rule, Rule::StackUnderflow);
+        assert_eq!(parse_err(b"]N(a.").rule, Rule::StackUnderflow);
+        assert_eq!(parse_err(b"Nt.").rule, Rule::NoMark);
+        assert_eq!(parse_err(b"h\x05.").rule, Rule::MemoMissing(5));
+        assert_eq!(
+            parse_err(b"}(N.").rule,
+            Rule::Leftover {
+                values: 1,
+                marks: 1
+            }
+        );
+        assert_eq!(parse_err(b"}(Nu.").rule, Rule::OddItems);
+        assert_eq!(parse_err(b")K\x01a.").rule, Rule::WrongTarget("a tuple"));
+        assert_eq!(parse_err(b"]NNs.").rule, Rule::WrongTarget("a list"));
+        assert_eq!(parse_err(b"}Nb.").rule, Rule::WrongTarget("a dict"));
+        assert_eq!(
+            parse_err(b"S'abc\n.").rule,
+            Rule::BadText("STRING argument must be quoted")
+        );
+        assert_eq!(parse_err(b"X\x01\x00\x00\x00\xff.").rule, Rule::BadUtf8);
+        assert_eq!(parse_err(b"V\\ud800\n.").rule, Rule::BadUtf8);
+        assert_eq!(parse_err(b"Ifoo\n.").rule, Rule::BadText("INT value"));
+    }
+
+    #[test]
+    fn dangerous_calls_become_inert_opaque_nodes() {
+        for (module, name) in [
+            ("os", "system"),
+            ("builtins", "eval"),
+            ("subprocess", "Popen"),
+            ("posix", "system"),
+        ] {
+            let stream = cat(&[&glob(module, name), &uni("echo owned"), b"\x85R."]);
+            let p = parse_ok(&stream);
+            let Node::Opaque {
+                callable,
+                how: Build::Reduce,
+                ..
+            } = &p.nodes[p.root]
+            else {
+                panic!("{module}.{name}")
+            };
+            assert_eq!(
+                p.nodes[*callable],
+                Node::Global {
+                    module: module.into(),
+                    name: name.into()
+                }
+            );
+            // Written back unchanged, still inert.
+            round_trip(&p);
+        }
+    }
+
+    #[test]
+    fn a_pickle_that_would_create_a_file_creates_none() {
+        // Executed by Python's pickle, each of these calls creates `path`.
+        let dir = tempfile::tempdir().expect("temp dir");
+        let path = dir.path().join("created-by-pickle");
+        let command = format!("touch {}", path.display());
+        let streams = [
+            cat(&[&glob("os", "system"), &uni(&command), b"\x85R."]),
+            cat(&[
+                &glob("builtins", "open"),
+                &uni(&path.display().to_string()),
+                &uni("w"),
+                b"\x86R.",
+            ]),
+            cat(&[
+                &glob("subprocess", "Popen"),
+                b"(",
+                &uni("touch"),
+                &uni(&path.display().to_string()),
+                b"l\x85R.",
+            ]),
+        ];
+        for stream in streams {
+            let p = parse_ok(&stream);
+            let _ = (p.tensors(), write(&p));
+            assert!(!path.exists(), "parsing ran the pickle");
+        }
+    }
+
+    // ---- persistent ids, rebuild functions, objects ----
+
+    #[test]
+    fn storage_persistent_ids_and_nothing_else() {
+        let p = parse_ok(&cat(&[&storage_pid("7", 6), b"."]));
+        assert_eq!(
+            p.nodes[p.root],
+            Node::Storage {
+                class: "FloatStorage".into(),
+                key: "7".into(),
+                location: "cpu".into(),
+                numel: 6
+            }
+        );
+        let bad = [
+            cat(&[&uni("storage"), b"Q."]),
+            cat(&[&uni("storage"), &uni("x"), b"\x86Q."]),
+            cat(&[
+                b"(",
+                &uni("module"),
+                &glob("torch", "FloatStorage"),
+                &uni("7"),
+                &uni("cpu"),
+                b"K\x06tQ.",
+            ]),
+            cat(&[
+                b"(",
+                &uni("storage"),
+                &glob("os", "system"),
+                &uni("7"),
+                &uni("cpu"),
+                b"K\x06tQ.",
+            ]),
+            cat(&[
+                b"(",
+                &uni("storage"),
+                &glob("torch", "FloatStorage"),
+                b"K\x07",
+                &uni("cpu"),
+                b"K\x06tQ.",
+            ]),
+            cat(&[
+                b"(",
+                &uni("storage"),
+                &glob("torch", "FloatStorage"),
+                &uni("7"),
+                &uni("cpu"),
+                b"J\xff\xff\xff\xfftQ.",
+            ]),
+        ];
+        for stream in bad {
+            assert!(matches!(parse_err(&stream).rule, Rule::BadPersistentId(_)));
+        }
+    }
+
+    #[test]
+    fn tensor_and_parameter_rebuilds_are_checked_strictly() {
+        let p = parse_ok(&cat(&[&tensor_2x3("0"), b"."]));
+        let Node::Tensor {
+            storage,
+            offset: 0,
+            size,
+            stride,
+            requires_grad: false,
+            extra,
+            ..
+        } = &p.nodes[p.root]
+        else {
+            panic!()
+        };
+        assert_eq!(
+            (size.as_slice(), stride.as_slice(), extra.len()),
+            (&[2, 3][..], &[3, 1][..], 0)
+        );
+        assert!(matches!(&p.nodes[*storage], Node::Storage { key, .. } if key == "0"));
+
+        let param =
+            |args: &[u8], name: &str| cat(&[&glob("torch._utils", name), b"(", args, b"tR."]);
+        let p = parse_ok(&param(
+            &cat(&[&tensor_2x3("0"), b"\x88}"]),
+            "_rebuild_parameter",
+        ));
+        assert!(
+            matches!(p.nodes[p.root], Node::Parameter { requires_grad: true, ref extra, .. } if extra.is_empty())
+        );
+        let p = parse_ok(&param(
+            &cat(&[&tensor_2x3("0"), b"\x88}}"]),
+            "_rebuild_parameter_with_state",
+        ));
+        assert!(matches!(p.nodes[p.root], Node::Parameter { ref extra, .. } if extra.len() == 1));
+
+        let pid = storage_pid("0", 6);
+        let bad_tensors = [
+            rebuild(&cat(&[&pid, b"K\x00K\x02\x85K\x01\x85\x89"])), // five arguments
+            rebuild(&cat(&[b"N", b"K\x00K\x02\x85K\x01\x85\x89}"])), // no storage
+            rebuild(&cat(&[&pid, b"J\xff\xff\xff\xffK\x02\x85K\x01\x85\x89}"])), // negative offset
+            rebuild(&cat(&[&pid, b"K\x00K\x02\x85K\x01K\x01\x86\x89}"])), // size and stride disagree
+            rebuild(&cat(&[&pid, b"K\x00K\x02\x85K\x01\x85K\x00}"])), // requires_grad not a bool
+            rebuild(&cat(&[&pid, b"K\x00NK\x01\x85\x89}"])),          // size not a tuple
+        ];
+        for stream in bad_tensors {
+            let e = parse_err(&cat(&[&stream, b"."]));
+            assert!(
+                matches!(
+                    e.rule,
+                    Rule::BadRebuild {
+                        function: "_rebuild_tensor_v2",
+                        ..
+                    }
+                ),
+                "{e}"
+            );
+        }
+        let e = parse_err(&param(b"N\x88}", "_rebuild_parameter"));
+        assert!(
+            matches!(
+                e.rule,
+                Rule::BadRebuild {
+                    function: "_rebuild_parameter",
+                    ..
+                }
+            ),
+            "{e}"
+        );
+        let e = parse_err(&param(
+            &cat(&[&tensor_2x3("0"), b"\x88"]),
+            "_rebuild_parameter",
+        ));
+        assert!(matches!(e.rule, Rule::BadRebuild { .. }), "{e}");
+        let e = parse_err(&cat(&[
+            &glob("torch._utils", "_rebuild_tensor_v2"),
+            b")\x81.",
+        ]));
+        assert!(matches!(e.rule, Rule::BadRebuild { .. }), "{e}");
+        assert!(matches!(parse_err(b"NN\x85NR.").rule, Rule::BadCall(_)));
+    }
+
+    #[test]
+    fn ordered_dicts_and_opaque_objects_record_what_is_done_to_them() {
+        let od = cat(&[&glob("collections", "OrderedDict"), b")R"]);
+        let p = parse_ok(&cat(&[&od, &uni("a"), b"K\x01s}b."]));
+        assert!(
+            matches!(&p.nodes[p.root], Node::Dict { ordered: true, state: Some(_), items } if items.len() == 1)
+        );
+        let p = parse_ok(&cat(&[&glob("collections", "OrderedDict"), b"]\x85R."]));
+        assert!(matches!(&p.nodes[p.root], Node::Opaque { .. }));
+        // argparse.Namespace as Python's protocol 2 writes it: NEWOBJ then BUILD.
+        let ns = cat(&[
+            &glob("argparse", "Namespace"),
+            b")\x81}",
+            &uni("lr"),
+            b"G?\xb9\x99\x99\x99\x99\x99\x9asbK\x01aK\x02K\x03s.",
+        ]);
+        let p = parse_ok(&ns);
+        let Node::Opaque {
+            how: Build::NewObj,
+            state: Some(_),
+            items,
+            appends,
+            ..
+        } = &p.nodes[p.root]
+        else {
+            panic!()
+        };
+        assert_eq!((items.len(), appends.len()), (1, 1));
+        round_trip(&p);
+        let p = parse_ok(&cat(&[&glob("m", "C"), b")}\x92."]));
+        assert!(matches!(
+            p.nodes[p.root],
+            Node::Opaque {
+                how: Build::NewObjEx { .. },
+                ..
+            }
+        ));
+        assert!(matches!(
+            parse_err(&cat(&[&glob("m", "C"), b")N\x92."])).rule,
+            Rule::BadCall(_)
+        ));
+        assert_eq!(
+            parse_err(&cat(&[&glob("m", "C"), b")\x81}b}b."])).rule,
+            Rule::SecondBuild
+        );
+        // STACK_GLOBAL gives the same reference as GLOBAL.
+        assert_eq!(
+            root(&cat(&[&uni("os"), &uni("system"), b"\x93."])),
+            Node::Global {
+                module: "os".into(),
+                name: "system".into()
+            }
+        );
+        assert!(matches!(
+            parse_err(&cat(&[&uni("os\n"), &uni("system"), b"\x93."])).rule,
+            Rule::NewlineInGlobal
+        ));
+    }
+
+    // ---- bounds ----
+
+    #[test]
+    fn lengths_past_the_end_are_errors_not_allocations() {
+        for stream in [
+            &b"X\xff\xff\xff\xffab."[..],
+            b"\x8d\xff\xff\xff\xff\xff\xff\xff\xffab.",
+            b"\x8e\xff\xff\xff\xff\xff\xff\xff\x7fab.",
+            b"\x96\xff\xff\xff\xff\xff\xff\xff\xffab.",
+            b"B\x10\x00\x00\x00ab.",
+            b"\x95\xff\xff\xff\xff\xff\xff\xff\xffN.",
+            b"\x8a\x09\x01.",
+            b"J\x01\x00",
+            b"Ino newline",
+        ] {
+            assert!(
+                matches!(parse_err(stream).rule, Rule::Truncated { .. }),
+                "{stream:?}"
+            );
+        }
+        assert_eq!(
+            parse_err(b"T\xff\xff\xff\xffab.").rule,
+            Rule::NegativeLength
+        );
+        assert_eq!(
+            parse_err(b"\x8b\xff\xff\xff\xffab.").rule,
+            Rule::NegativeLength
+        );
+    }
+
+    #[test]
+    fn memo_stack_mark_and_node_bombs_hit_their_limits() {
+        let limits = Limits {
+            max_nodes: 100,
+            max_stack: 100,
+            max_memo: 100,
+            max_depth: 100,
+        };
+        // Memo bomb: distinct keys far apart; only the count matters, not the key values.
+        let mut memo = b"N".to_vec();
+        for k in 0..200u32 {
+            memo.push(b'r');
+            memo.extend_from_slice(&(u32::MAX - k).to_le_bytes());
+        }
+        memo.push(b'.');
+        assert_eq!(
+            parse(&memo, &limits).unwrap_err().rule,
+            Rule::TooManyMemo(100)
+        );
+        assert!(parse(&memo, &Limits::for_len(memo.len())).is_ok());
+        let stack: Vec<u8> = [&b"N"[..], &[b'2'; 200], b"."].concat();
+        assert_eq!(
+            parse(&stack, &limits).unwrap_err().rule,
+            Rule::StackTooDeep(100)
+        );
+        let marks: Vec<u8> = [&[b'('; 200][..], b"N."].concat();
+        assert_eq!(
+            parse(&marks, &limits).unwrap_err().rule,
+            Rule::StackTooDeep(100)
+        );
+        let nodes: Vec<u8> = [&b"]"[..], &b"Na".repeat(200), b"."].concat();
+        assert_eq!(
+            parse(&nodes, &limits).unwrap_err().rule,
+            Rule::TooManyNodes(100)
+        );
+    }
+
+    #[test]
+    fn deep_nesting_is_refused_without_overflowing_the_stack() {
+        let depth = 100_000;
+        let nested: Vec<u8> = [&vec![b']'; depth][..], &vec![b'a'; depth - 1], b"."].concat();
+        let e = parse_err(&nested);
+        assert_eq!(
+            (e.rule, e.opcode.as_str()),
+            (Rule::TooDeep(PYTHON_RECURSION_LIMIT), "STOP")
+        );
+        let tuples: Vec<u8> = [&b"N"[..], &vec![0x85; depth], b"."].concat();
+        assert_eq!(
+            parse_err(&tuples).rule,
+            Rule::TooDeep(PYTHON_RECURSION_LIMIT)
+        );
+        // Within CPython's recursion limit: parsed, named, written and read back.
+        let fits: Vec<u8> = [&vec![b']'; 900][..], &vec![b'a'; 899], b"."].concat();
+        let p = parse_ok(&fits);
+        assert!(p.tensors().is_empty());
+        round_trip(&p);
+    }
+
+    #[test]
+    fn a_list_appended_to_itself_a_million_times_stays_small() {
+        let n = 1_000_000;
+        let stream: Vec<u8> = [&b"]q\x00("[..], &b"h\x00".repeat(n), b"e."].concat();
+        let p = parse_ok(&stream);
+        assert_eq!(p.nodes.len(), 1);
+        assert!(p.tensors().is_empty());
+        let out = write(&p);
+        assert!(out.len() < 2 * stream.len(), "{} bytes", out.len());
+        round_trip(&p);
+    }
+
+    // ---- names ----
+
+    #[test]
+    fn tensor_names_are_key_paths_with_escapes() {
+        let t = tensor_2x3("0");
+        let stream = cat(&[
+            b"}(",
+            &uni("model"),
+            b"}(",
+            &uni("blocks.0.attn/qkv%weight"),
+            &t,
+            b"K\x05",
+            &t,
+            b"\x88",
+            &t,
+            b"N",
+            &t,
+            b"u",
+            &uni("list"),
+            b"(N",
+            &t,
+            b"l",
+            b"u.",
+        ]);
+        let p = parse_ok(&stream);
+        let names: Vec<String> = p.tensors().into_iter().map(|(n, _)| n).collect();
+        assert_eq!(
+            names,
+            [
+                "model/blocks.0.attn%2Fqkv%25weight",
+                "model/%{int 5}",
+                "model/%{true}",
+                "model/%{none}",
+                "list/1"
+            ]
+        );
+        let bare = parse_ok(&cat(&[
+            b"}(",
+            &uni("pos_embed"),
+            &t,
+            &uni("cls_token"),
+            &t,
+            b"u.",
+        ]));
+        let names: Vec<String> = bare.tensors().into_iter().map(|(n, _)| n).collect();
+        assert_eq!(names, ["pos_embed", "cls_token"]);
+    }
+
+    // ---- writing ----
+
+    #[test]
+    fn written_streams_use_protocol_2_as_python_does() {
+        // Python's pickle.dumps({'a': 1}, protocol=2) is b'\x80\x02}q\x00X\x01\x00\x00\x00aq\x01K\x01s.';
+        // the writer memoizes only values referenced twice.
+        let p = parse_ok(b"\x80\x02}q\x00X\x01\x00\x00\x00aq\x01K\x01s.");
+        assert_eq!(write(&p), b"\x80\x02}X\x01\x00\x00\x00aK\x01s.");
+        let p = parse_ok(b"\x80\x04\x95\x05\x00\x00\x00\x00\x00\x00\x00\x8f(K\x01\x90.");
+        assert_eq!(
+            write(&p)[..2],
+            [0x80, 4],
+            "a set needs protocol 4's EMPTY_SET"
+        );
+    }
+
+    #[test]
+    fn recursive_tuples_and_shared_values_survive_a_round_trip() {
+        // L = []; t = (L,); L.append(t): Python's pickler resolves it with POP and GET.
+        let p = parse_ok(b"]q\x00h\x00\x85q\x01ah\x01\x86.");
+        let again = round_trip(&p);
+        let Node::Tuple(pair) = &again.nodes[again.root] else {
+            panic!()
+        };
+        assert!(matches!(&again.nodes[pair[0]], Node::List(l) if l == &[pair[1]]));
+        assert!(matches!(&again.nodes[pair[1]], Node::Tuple(t) if t == &[pair[0]]));
+        let big = (0..3000)
+            .map(|i| cat(&[b"M", &(i as u16).to_le_bytes()]))
+            .collect::<Vec<_>>()
+            .concat();
+        round_trip(&parse_ok(&cat(&[b"](", &big, b"e}(", &big, b"u\x86."])));
+        round_trip(&parse_ok(&cat(&[b"(", &big, b"t."])));
+    }
+
+    // ---- files written by Python's own pickle module ----
+
+    #[test]
+    fn python_plain_data_in_protocols_2_to_5() {
+        for protocol in 2..=5 {
+            let p = parse_ok(&fixture(&format!("plain_p{protocol}.pkl")));
+            assert_eq!(p.protocol, protocol);
+            let Node::Dict { items, .. } = &p.nodes[p.root] else {
+                panic!()
+            };
+            let get = |key: &str| {
+                items
+                    .iter()
+                    .find(|(k, _)| p.nodes[*k] == Node::Str(key.into()))
+                    .map(|&(_, v)| &p.nodes[v])
+                    .unwrap()
+            };
+            // Values: the `plain_data()` literal in make_pickles.py.
+            let Node::List(ints) = get("ints") else {
+                panic!()
+            };
+            let ints: Vec<_> = ints.iter().map(|&i| p.nodes[i].clone()).collect();
+            assert_eq!(
+                ints[..11],
+                [
+                    0,
+                    1,
+                    -1,
+                    255,
+                    256,
+                    65535,
+                    65536,
+                    -(1 << 31),
+                    1 << 31,
+                    i64::MAX,
+                    i64::MIN
+                ]
+                .map(Node::Int)
+            );
+            assert_eq!(ints[11], Node::BigInt(vec![0, 0, 0, 0, 0, 0, 0, 0, 1]));
+            let Node::List(text) = get("text") else {
+                panic!()
+            };
+            assert_eq!(p.nodes[text[2]], Node::Str("p\u{e4}iv\u{e4}\u{e4}".into()));
+            let Node::List(looped) = get("looped") else {
+                panic!()
+            };
+            assert!(matches!(&p.nodes[looped[0]], Node::List(inner) if inner == looped));
+            let Node::List(shared) = get("shared") else {
+                panic!()
+            };
+            assert_eq!(shared[0], shared[1]);
+            assert!(matches!(get("ordered"), Node::Dict { ordered: true, .. }));
+            assert!(matches!(
+                get("namespace"),
+                Node::Opaque {
+                    how: Build::NewObj,
+                    state: Some(_),
+                    ..
+                }
+            ));
+            if protocol >= 3 {
+                assert_eq!(get("bytes"), &Node::Bytes(b"\x00\x01raw".to_vec()));
+            }
+            if protocol >= 4 {
+                assert!(matches!(get("set"), Node::Set(v) if v.len() == 3));
+                assert!(matches!(get("frozen"), Node::FrozenSet(v) if v.len() == 1));
+            }
+            round_trip(&p);
+        }
+    }
+
+    #[test]
+    fn python_written_checkpoint_layout() {
+        // make_pickles.py `checkpoint()`: the framework's data.pkl layout, protocol 2.
+        let p = parse_ok(&fixture("checkpoint_p2.pkl"));
+        let tensors = p.tensors();
+        let names: Vec<&str> = tensors.iter().map(|(n, _)| n.as_str()).collect();
+        assert_eq!(
+            names,
+            [
+                "model/pos_embed",
+                "model/blocks.0.attn.qkv.weight",
+                "model/head.weight",
+                "model_ema/pos_embed"
+            ]
+        );
+        let Node::Tensor {
+            storage,
+            offset: 20,
+            size,
+            stride,
+            ..
+        } = &p.nodes[tensors[3].1]
+        else {
+            panic!()
+        };
+        assert_eq!(
+            (size.as_slice(), stride.as_slice()),
+            (&[1, 5, 4][..], &[20, 4, 1][..])
+        );
+        assert!(
+            matches!(&p.nodes[*storage], Node::Storage { key, numel: 40, class, .. } if key == "0" && class == "FloatStorage")
+        );
+        let Node::Parameter {
+            data,
+            requires_grad: true,
+            ..
+        } = p.nodes[tensors[2].1]
+        else {
+            panic!()
+        };
+        assert!(matches!(&p.nodes[data], Node::Tensor { stride, .. } if stride == &[1, 3]));
+        let Node::Dict { items, .. } = &p.nodes[p.root] else {
+            panic!()
+        };
+        assert!(matches!(
+            &p.nodes[items[0].1],
+            Node::Dict {
+                ordered: true,
+                state: Some(_),
+                ..
+            }
+        ));
+        round_trip(&p);
+    }
+
+    /// Loads the rewritten checkpoint with Python's own pickle module and compares it with the
+    /// fixture. Needs `python3`; run with `cargo test --lib checkpoint::pickle -- --ignored`.
+    #[test]
+    #[ignore]
+    fn python_loads_the_rewritten_checkpoint_as_the_original() {
+        let p = parse_ok(&fixture("checkpoint_p2.pkl"));
+        let dir = tempfile::tempdir().expect("temp dir");
+        let out = dir.path().join("rewritten.pkl");
+        std::fs::write(&out, write(&p)).expect("write");
+        let script = format!(
+            "{}/fixtures/pickle/make_pickles.py",
+            env!("CARGO_MANIFEST_DIR")
+        );
+        let run = std::process::Command::new("python3")
+            .arg(script)
+            .arg("--check")
+            .arg(&out)
+            .output()
+            .expect("python3");
+        assert_eq!(
+            String::from_utf8_lossy(&run.stdout).trim(),
+            "same",
+            "{}",
+            String::from_utf8_lossy(&run.stderr)
+        );
+    }
 }
