@@ -1752,6 +1752,10 @@ enum Task {
     Save(NodeId),
     Op(u8),
     Bool(bool),
+    /// A tensor's storage offset.
+    Count(u64),
+    /// A tensor's size or stride tuple.
+    Counts(Vec<u64>),
     /// After a tuple's elements: the tuple itself, unless an element's save already emitted it.
     FinishTuple {
         id: NodeId,
@@ -1830,6 +1834,8 @@ impl<'a> Writer<'a> {
             Task::Save(id) => self.save(id),
             Task::Op(op) => self.out.push(op),
             Task::Bool(b) => self.out.push(if b { 0x88 } else { 0x89 }),
+            Task::Count(v) => self.emit_count(v),
+            Task::Counts(values) => self.emit_count_tuple(&values),
             Task::FinishTuple { id, len, marked } => {
                 if self.fetch_again(id, if marked { b"1" } else { b"" }, len) {
                     return;
@@ -2019,11 +2025,14 @@ impl<'a> Writer<'a> {
         };
         self.emit_global("torch._utils", "_rebuild_tensor_v2");
         self.out.push(b'(');
-        self.save(*storage);
-        self.emit_count(*offset);
-        self.emit_count_tuple(size);
-        self.emit_count_tuple(stride);
-        let mut tasks = vec![Task::Bool(*requires_grad), Task::Save(*hooks)];
+        let mut tasks = vec![
+            Task::Save(*storage),
+            Task::Count(*offset),
+            Task::Counts(size.clone()),
+            Task::Counts(stride.clone()),
+            Task::Bool(*requires_grad),
+            Task::Save(*hooks),
+        ];
         tasks.extend(extra.iter().map(|&e| Task::Save(e)));
         tasks.extend([Task::Op(b't'), Task::Op(b'R'), Task::FinishCall(id)]);
         self.schedule(tasks);
@@ -3070,30 +3079,36 @@ mod tests {
         round_trip(&p);
     }
 
-    /// Loads the rewritten checkpoint with Python's own pickle module and compares it with the
-    /// fixture. Needs `python3`; run with `cargo test --lib checkpoint::pickle -- --ignored`.
+    /// Loads each fixture and its rewrite with Python's own pickle module and compares their
+    /// values. Needs `python3`; run with `cargo test --lib checkpoint::pickle -- --ignored`.
     #[test]
     #[ignore]
-    fn python_loads_the_rewritten_checkpoint_as_the_original() {
-        let p = parse_ok(&fixture("checkpoint_p2.pkl"));
+    fn python_loads_each_rewritten_fixture_as_the_original() {
         let dir = tempfile::tempdir().expect("temp dir");
-        let out = dir.path().join("rewritten.pkl");
-        std::fs::write(&out, write(&p)).expect("write");
-        let script = format!(
-            "{}/fixtures/pickle/make_pickles.py",
-            env!("CARGO_MANIFEST_DIR")
-        );
-        let run = std::process::Command::new("python3")
-            .arg(script)
-            .arg("--check")
-            .arg(&out)
-            .output()
-            .expect("python3");
-        assert_eq!(
-            String::from_utf8_lossy(&run.stdout).trim(),
-            "same",
-            "{}",
-            String::from_utf8_lossy(&run.stderr)
-        );
+        let fixtures = format!("{}/fixtures/pickle", env!("CARGO_MANIFEST_DIR"));
+        for name in [
+            "checkpoint_p2.pkl",
+            "plain_p2.pkl",
+            "plain_p3.pkl",
+            "plain_p4.pkl",
+            "plain_p5.pkl",
+        ] {
+            let out = dir.path().join(name);
+            std::fs::write(&out, write(&parse_ok(&fixture(name)))).expect("write");
+            let run = std::process::Command::new("python3")
+                .arg(format!("{fixtures}/make_pickles.py"))
+                .arg("--check")
+                .arg(format!("{fixtures}/{name}"))
+                .arg(&out)
+                .output()
+                .expect("python3");
+            let said = String::from_utf8_lossy(&run.stdout);
+            assert_eq!(
+                said.trim(),
+                "same",
+                "{name}: {}",
+                String::from_utf8_lossy(&run.stderr)
+            );
+        }
     }
 }
