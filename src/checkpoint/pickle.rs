@@ -43,7 +43,7 @@
 //!
 //! # Writing
 //! [`write`] emits protocol 2 as Python's pickler does: nodes referenced more than once are
-//! memoized, mutable containers are created empty, memoized, then filled, recursive tuples are
+//! memoized (except numbers, `None` and bools, which Python never memoizes), mutable containers are created empty, memoized, then filled, recursive tuples are
 //! resolved with `POP`/`POP_MARK` + `GET`, storages are re-emitted as the persistent-id tuple at
 //! every reference, and no `FRAME` is written. Values protocol 2 cannot state directly (`bytes`,
 //! `set`, `frozenset`, `bytearray` nodes, which only come from streams of a later protocol) use
@@ -1611,15 +1611,16 @@ impl Pickle {
     }
 
     /// Whether `other` holds the same values with the same sharing, whatever the node ids.
-    /// Storages are compared by value: the writer re-emits them at each reference.
+    /// Numbers, `None`, bools and storages are compared by value: the writer re-emits them at
+    /// each reference.
     pub fn equivalent(&self, other: &Pickle) -> bool {
         let mut forward: HashMap<NodeId, NodeId> = HashMap::new();
         let mut backward: HashMap<NodeId, NodeId> = HashMap::new();
         let mut work = vec![(self.root, other.root)];
         while let Some((a, b)) = work.pop() {
             let (na, nb) = (&self.nodes[a], &other.nodes[b]);
-            if let (Node::Storage { .. }, Node::Storage { .. }) = (na, nb) {
-                if na != nb {
+            if written_afresh(na) || written_afresh(nb) {
+                if !same_scalars(na, nb) {
                     return false;
                 }
                 continue;
@@ -1654,6 +1655,20 @@ enum Step {
     Index(usize),
     Append(usize),
     Named(&'static str),
+}
+
+/// Values the writer emits at every reference instead of memoizing: Python's pickler never
+/// memoizes `None`, bools, ints or floats, and the framework re-emits a storage's persistent id.
+fn written_afresh(node: &Node) -> bool {
+    matches!(
+        node,
+        Node::None
+            | Node::Bool(_)
+            | Node::Int(_)
+            | Node::BigInt(_)
+            | Node::Float(_)
+            | Node::Storage { .. }
+    )
 }
 
 /// Equal kind and equal own values (children are compared by the caller).
@@ -1735,7 +1750,8 @@ fn same_scalars(a: &Node, b: &Node) -> bool {
         | (N::Str(_), N::Str(_))
         | (N::Bytes(_), N::Bytes(_))
         | (N::ByteArray(_), N::ByteArray(_))
-        | (N::Global { .. }, N::Global { .. }) => a == b,
+        | (N::Global { .. }, N::Global { .. })
+        | (N::Storage { .. }, N::Storage { .. }) => a == b,
         _ => false,
     }
 }
@@ -1783,7 +1799,7 @@ impl<'a> Writer<'a> {
             .reference_counts()
             .iter()
             .zip(&p.nodes)
-            .map(|(&count, node)| count > 1 && !matches!(node, Node::Storage { .. }))
+            .map(|(&count, node)| count > 1 && !written_afresh(node))
             .collect();
         Writer {
             p,
@@ -2932,6 +2948,14 @@ mod tests {
             [0x80, 4],
             "a set needs protocol 4's EMPTY_SET"
         );
+    }
+
+    #[test]
+    fn numbers_are_written_afresh_at_each_reference_as_python_does() {
+        // Python's pickler memoizes neither ints nor None (pickle.py save_long, save_none).
+        let p = parse_ok(b"K\x07q\x00Nq\x01\x86h\x00h\x01\x86\x86.");
+        assert_eq!(write(&p), b"\x80\x02K\x07N\x86K\x07N\x86\x86.");
+        round_trip(&p);
     }
 
     #[test]
