@@ -2979,10 +2979,11 @@ mod tests {
     // ---- files written by Python's own pickle module ----
 
     #[test]
-    fn python_plain_data_in_protocols_2_to_5() {
-        for protocol in 2..=5 {
+    fn python_plain_data_in_protocols_0_to_5() {
+        for protocol in 0..=5 {
             let p = parse_ok(&fixture(&format!("plain_p{protocol}.pkl")));
-            assert_eq!(p.protocol, protocol);
+            // PROTO exists from protocol 2 on.
+            assert_eq!(p.protocol, if protocol >= 2 { protocol } else { 0 });
             let Node::Dict { items, .. } = &p.nodes[p.root] else {
                 panic!()
             };
@@ -3029,14 +3030,22 @@ mod tests {
             };
             assert_eq!(shared[0], shared[1]);
             assert!(matches!(get("ordered"), Node::Dict { ordered: true, .. }));
-            assert!(matches!(
-                get("namespace"),
-                Node::Opaque {
-                    how: Build::NewObj,
-                    state: Some(_),
-                    ..
-                }
-            ));
+            // Before protocol 2 Python writes objects as a REDUCE of copyreg._reconstructor.
+            let Node::Opaque {
+                how,
+                state: Some(_),
+                ..
+            } = get("namespace")
+            else {
+                panic!()
+            };
+            assert_eq!(*how == Build::NewObj, protocol >= 2);
+            let Node::List(floats) = get("floats") else {
+                panic!()
+            };
+            assert_eq!(p.nodes[floats[2]], Node::Float(1e300));
+            assert_eq!(p.nodes[floats[3]], Node::Float(f64::INFINITY));
+            assert_eq!(p.nodes[text[3]], Node::Str("\u{65e5}\u{672c}".into()));
             if protocol >= 3 {
                 assert_eq!(get("bytes"), &Node::Bytes(b"\x00\x01raw".to_vec()));
             }
@@ -3112,6 +3121,8 @@ mod tests {
         let fixtures = format!("{}/fixtures/pickle", env!("CARGO_MANIFEST_DIR"));
         for name in [
             "checkpoint_p2.pkl",
+            "plain_p0.pkl",
+            "plain_p1.pkl",
             "plain_p2.pkl",
             "plain_p3.pkl",
             "plain_p4.pkl",
