@@ -1790,6 +1790,9 @@ struct Writer<'a> {
     out: Vec<u8>,
     shared: Vec<bool>,
     memo: HashMap<NodeId, u32>,
+    /// Memo keys of the globals the writer itself names (rebuild functions, storage classes).
+    own_globals: HashMap<(String, String), u32>,
+    next_key: u32,
     work: Vec<Task>,
 }
 
@@ -1806,6 +1809,8 @@ impl<'a> Writer<'a> {
             out: Vec::new(),
             shared,
             memo: HashMap::new(),
+            own_globals: HashMap::new(),
+            next_key: 0,
             work: Vec::new(),
         }
     }
@@ -1954,7 +1959,7 @@ impl<'a> Writer<'a> {
                 state,
             } => {
                 if *ordered {
-                    self.emit_global("collections", "OrderedDict");
+                    self.emit_own_global("collections", "OrderedDict");
                     self.out.extend_from_slice(b")R");
                 } else {
                     self.out.push(b'}');
@@ -1976,7 +1981,7 @@ impl<'a> Writer<'a> {
                 } else {
                     "_rebuild_parameter_with_state"
                 };
-                self.emit_global("torch._utils", function);
+                self.emit_own_global("torch._utils", function);
                 self.out.push(b'(');
                 let mut tasks = vec![
                     Task::Save(*data),
@@ -2039,7 +2044,7 @@ impl<'a> Writer<'a> {
         else {
             return;
         };
-        self.emit_global("torch._utils", "_rebuild_tensor_v2");
+        self.emit_own_global("torch._utils", "_rebuild_tensor_v2");
         self.out.push(b'(');
         let mut tasks = vec![
             Task::Save(*storage),
@@ -2074,7 +2079,14 @@ impl<'a> Writer<'a> {
         if !self.shared[id] {
             return;
         }
-        let key = self.memo.len() as u32;
+        let key = self.put();
+        self.memo.insert(id, key);
+    }
+
+    /// Stores the top of the stack under the next memo key.
+    fn put(&mut self) -> u32 {
+        let key = self.next_key;
+        self.next_key += 1;
         match u8::try_from(key) {
             Ok(k) => self.out.extend_from_slice(&[b'q', k]),
             Err(_) => {
@@ -2082,7 +2094,18 @@ impl<'a> Writer<'a> {
                 self.out.extend_from_slice(&key.to_le_bytes());
             }
         }
-        self.memo.insert(id, key);
+        key
+    }
+
+    /// A global the writer names itself, memoized on first use as Python's pickler does.
+    fn emit_own_global(&mut self, module: &str, name: &str) {
+        let id = (module.to_string(), name.to_string());
+        if let Some(&key) = self.own_globals.get(&id) {
+            return self.emit_get(key);
+        }
+        self.emit_global(module, name);
+        let key = self.put();
+        self.own_globals.insert(id, key);
     }
 
     fn emit_get(&mut self, key: u32) {
@@ -2192,7 +2215,7 @@ impl<'a> Writer<'a> {
     fn emit_persistent_id(&mut self, class: &str, key: &str, location: &str, numel: u64) {
         self.out.push(b'(');
         self.emit_str("storage");
-        self.emit_global("torch", class);
+        self.emit_own_global("torch", class);
         self.emit_str(key);
         self.emit_str(location);
         self.emit_count(numel);
@@ -3109,6 +3132,15 @@ mod tests {
                 ..
             }
         ));
+        // Python's pickler names each global once and fetches it from the memo afterwards.
+        let count =
+            |bytes: &[u8], what: &[u8]| bytes.windows(what.len()).filter(|w| *w == what).count();
+        let original = fixture("checkpoint_p2.pkl");
+        let rewritten = write(&p);
+        for name in [&b"_rebuild_tensor_v2"[..], b"FloatStorage", b"OrderedDict"] {
+            assert_eq!(count(&original, name), 1);
+            assert_eq!(count(&rewritten, name), 1);
+        }
         round_trip(&p);
     }
 
