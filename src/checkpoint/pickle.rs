@@ -1,7 +1,7 @@
 //! A pickle interpreter that executes nothing, for the `data.pkl` of the tensor framework's zip
 //! checkpoints.
 //!
-//! [`parse`] turns the byte stream into an arena of inert [`Node`]s; [`write`] turns an arena
+//! [`parse()`] turns the byte stream into an arena of inert [`Node`]s; [`write()`] turns an arena
 //! back into a pickle. Nothing named in the stream is ever imported, called or built: a global is
 //! a [`Node::Global`] reference, and a call of anything but the recognised rebuild functions
 //! becomes a [`Node::Opaque`] record of the call that is carried through unchanged.
@@ -20,8 +20,13 @@
 //! * `BINPERSID` only of `('storage', torch.<X>Storage, key, location, numel)`.
 //!
 //! `INST`, `OBJ`, `EXT1/2/4`, `PERSID`, `NEXT_BUFFER`, `READONLY_BUFFER` and unknown bytes are
-//! refused. Every length is checked against the bytes left before anything is allocated; node
-//! count, stack and mark depth, memo size and nesting depth are bounded by [`Limits`].
+//! refused, and so are: values or marks left at `STOP`, bytes after `STOP`, `BUILD` on anything
+//! but an opaque object or ordered dict (or twice on one), text that is not UTF-8 (including
+//! lone surrogates), and global names holding a newline. Python 2 strings (`STRING`,
+//! `BINSTRING`, `SHORT_BINSTRING`) become `str` when they are UTF-8, else bytes. Every length is checked against the bytes left before anything is allocated; node
+//! count, stack and mark depth, memo size and nesting depth are bounded by [`Limits`]. Nesting is
+//! measured once the stream is read, by a depth-first walk from the root; no traversal here
+//! recurses, so depth costs no call stack.
 //!
 //! Shared references keep Python's meaning: a value is one node however often it is referenced,
 //! so a memoized dict filled later is the same dict everywhere. Later values for an equal key of
@@ -42,12 +47,14 @@
 //! path in depth-first order; a parameter is named, not the tensor inside it.
 //!
 //! # Writing
-//! [`write`] emits protocol 2 as Python's pickler does: nodes referenced more than once are
-//! memoized (except numbers, `None` and bools, which Python never memoizes), mutable containers are created empty, memoized, then filled, recursive tuples are
-//! resolved with `POP`/`POP_MARK` + `GET`, storages are re-emitted as the persistent-id tuple at
-//! every reference, and no `FRAME` is written. Values protocol 2 cannot state directly (`bytes`,
-//! `set`, `frozenset`, `bytearray` nodes, which only come from streams of a later protocol) use
-//! that protocol's opcode and the header names it.
+//! [`write()`] emits protocol 2 as Python's pickler does: nodes referenced more than once are
+//! memoized (except numbers, `None` and bools, which Python never memoizes), mutable containers
+//! are created empty, memoized, then filled, recursive tuples are resolved with `POP` or
+//! `POP_MARK` and a `GET`, storages are re-emitted as the persistent-id tuple at every reference,
+//! and no `FRAME` is written. An opaque object is re-emitted as its call, then its appends, items
+//! and state. Values protocol 2 cannot state directly (`bytes`, `set`, `frozenset`, `bytearray`
+//! nodes, which only come from streams of a later protocol) use that protocol's opcode and the
+//! header names it.
 
 use std::collections::HashMap;
 use std::fmt;
