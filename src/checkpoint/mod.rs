@@ -6,6 +6,7 @@
 
 pub mod json;
 pub mod npz;
+pub mod pickle;
 pub mod safetensors;
 pub mod sharded;
 pub mod writer;
