@@ -9,6 +9,7 @@ pub mod npz;
 pub mod pickle;
 pub mod safetensors;
 pub mod sharded;
+pub mod torch;
 pub mod writer;
 
 use std::fs::{File, FileType, Metadata, OpenOptions};
@@ -56,6 +57,8 @@ pub enum Format {
     ShardedSafetensors,
     /// A ZIP of `.npy` arrays.
     Npz,
+    /// A PyTorch file in the framework's zip format (`.pth`, `.pt`, `.bin`).
+    PyTorch,
 }
 
 impl std::str::FromStr for Format {
@@ -65,8 +68,9 @@ impl std::str::FromStr for Format {
         match s {
             "safetensors" => Ok(Format::Safetensors),
             "npz" => Ok(Format::Npz),
+            "pytorch" => Ok(Format::PyTorch),
             _ => Err(format!(
-                "unknown format \"{s}\"; expected safetensors or npz"
+                "unknown format \"{s}\"; expected safetensors, npz or pytorch"
             )),
         }
     }
@@ -78,6 +82,7 @@ impl Format {
         match path.extension()?.to_str()? {
             "npz" => Some(Format::Npz),
             "safetensors" => Some(Format::Safetensors),
+            "pth" | "pt" | "bin" => Some(Format::PyTorch),
             _ => None,
         }
     }
@@ -88,6 +93,7 @@ impl Format {
             Format::Safetensors => "safetensors",
             Format::ShardedSafetensors => "safetensors-sharded",
             Format::Npz => "npz",
+            Format::PyTorch => "pytorch",
         }
     }
 }
@@ -416,7 +422,8 @@ impl Reader for Checkpoint {
     }
 }
 
-/// Any checkpoint posgrid reads — a single safetensors file, a sharded set or an npz archive —
+/// Any checkpoint posgrid reads — a single safetensors file, a sharded set, an npz archive or a
+/// PyTorch file —
 /// opened behind the one [`Reader`] interface.
 #[derive(Debug)]
 pub struct Source {
@@ -436,8 +443,12 @@ impl Source {
             let named_npz = path
                 .extension()
                 .is_some_and(|e| e.eq_ignore_ascii_case("npz"));
-            if is_zip(&file) {
+            if is_zip(&file) && torch::is_torch_zip(&file) {
+                Box::new(torch::TorchFile::open(path)?)
+            } else if is_zip(&file) {
                 Box::new(npz::Npz::open(path)?)
+            } else if torch::is_legacy(&file) {
+                return Err(torch::legacy_error(path));
             } else if named_npz {
                 let problem = if meta.len() == 0 {
                     "is empty, not an npz archive"
@@ -482,6 +493,26 @@ impl TensorSource for Source {
     }
     fn source_path(&self) -> &Path {
         self.reader.source_path()
+    }
+}
+
+/// Why an archive member's name is refused, if it is: an empty name, an absolute path, a drive
+/// letter, a `..` step, a backslash or a NUL would be unsafe to write back into an archive.
+pub(crate) fn unsafe_member_name(name: &[u8]) -> Option<&'static str> {
+    if name.is_empty() {
+        Some("has an empty name")
+    } else if name.contains(&0) {
+        Some("has a NUL byte in its name")
+    } else if name.contains(&b'\\') {
+        Some("has a backslash in its name")
+    } else if name[0] == b'/' {
+        Some("has an absolute path as its name")
+    } else if name.len() >= 2 && name[1] == b':' && name[0].is_ascii_alphabetic() {
+        Some("has a drive letter in its name")
+    } else if name.split(|&b| b == b'/').any(|part| part == b"..") {
+        Some("has a \"..\" step in its name")
+    } else {
+        None
     }
 }
 

@@ -141,6 +141,7 @@ pub fn for_format(format: Format) -> Box<dyn Writer> {
         Format::Safetensors => Box::new(super::safetensors::SafetensorsWriter),
         Format::ShardedSafetensors => Box::new(super::sharded::SetWriter),
         Format::Npz => Box::new(super::npz::NpzWriter),
+        Format::PyTorch => Box::new(super::torch::TorchWriter),
     }
 }
 

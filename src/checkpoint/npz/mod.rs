@@ -396,31 +396,12 @@ fn check_member_names(archive: &zip::ZipArchive<File>) -> std::result::Result<()
         );
     }
     for (index, raw) in archive.file_names_raw().enumerate() {
-        if let Some(why) = unsafe_member_name(raw) {
+        if let Some(why) = super::unsafe_member_name(raw) {
             let shown = String::from_utf8_lossy(raw);
             return Err(format!("ZIP member {index} ({shown:?}) {why}"));
         }
     }
     Ok(())
-}
-
-/// Why a member name is refused, if it is.
-fn unsafe_member_name(name: &[u8]) -> Option<&'static str> {
-    if name.is_empty() {
-        Some("has an empty name")
-    } else if name.contains(&0) {
-        Some("has a NUL byte in its name")
-    } else if name.contains(&b'\\') {
-        Some("has a backslash in its name")
-    } else if name[0] == b'/' {
-        Some("has an absolute path as its name")
-    } else if name.len() >= 2 && name[1] == b':' && name[0].is_ascii_alphabetic() {
-        Some("has a drive letter in its name")
-    } else if name.split(|&b| b == b'/').any(|part| part == b"..") {
-        Some("has a \"..\" step in its name")
-    } else {
-        None
-    }
 }
 
 /// A `.npy` header for `dtype` (little-endian, C order) and `shape`, version 1.0 (2.0 when the

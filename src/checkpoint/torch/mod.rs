@@ -1,0 +1,561 @@
+//! PyTorch checkpoint files in the framework's zip format (its default since 2020): a ZIP with
+//! one top folder holding `data.pkl` (the object tree, a pickle), `data/<key>` storage records,
+//! `byteorder` and `version`. The pickle is interpreted by [`super::pickle`], which executes
+//! nothing; tensors are found anywhere in the tree and named by their key path (`model/pos_embed`,
+//! see [`super::pickle`] for the rule). A tensor is a view of a storage record: an offset,
+//! a shape and strides, checked to lie inside the record; views that are C-contiguous are read
+//! (and copied by writers) straight from the file.
+//!
+//! The legacy pre-zip stream format and TorchScript archives are recognised and refused with
+//! what to do.
+
+pub mod archive;
+mod write;
+
+use std::collections::HashMap;
+use std::fs::File;
+use std::os::unix::fs::FileExt;
+use std::path::{Path, PathBuf};
+
+pub use write::TorchWriter;
+
+use self::archive::{invalid, Archive};
+use super::pickle::{self, Limits, Node, NodeId, Pickle};
+use super::{Dtype, Format, Reader, Sink, Span, TensorEntry, TensorSource};
+use crate::error::{Error, Result};
+
+/// The largest `data.pkl` accepted. Real ones are kilobytes (a training checkpoint's optimizer
+/// state included); each opcode byte can make a node of about a hundred bytes.
+const MAX_PICKLE: u64 = 64 << 20;
+/// The most nodes one `data.pkl` may build: bounds the tree's memory near 1 GiB whatever the
+/// stream, far above what a checkpoint's tree holds.
+const MAX_NODES: usize = 8 << 20;
+
+/// How the legacy format starts: protocol 2, then the pickled magic number of that format
+/// (fact of the framework's file format, read off a file it wrote: fixtures/torch/legacy.pth).
+const LEGACY_MAGIC: [u8; 14] = [
+    0x80, 0x02, 0x8a, 0x0a, 0x6c, 0xfc, 0x9c, 0x46, 0xf9, 0x20, 0x6a, 0xa8, 0x50, 0x19,
+];
+
+/// The storage classes a checkpoint carries and their element types (the framework's names).
+pub fn dtype_of_storage(class: &str) -> Option<Dtype> {
+    Some(match class {
+        "FloatStorage" => Dtype::F32,
+        "HalfStorage" => Dtype::F16,
+        "BFloat16Storage" => Dtype::BF16,
+        "DoubleStorage" => Dtype::F64,
+        "LongStorage" => Dtype::I64,
+        "IntStorage" => Dtype::I32,
+        "ShortStorage" => Dtype::I16,
+        "CharStorage" => Dtype::I8,
+        "ByteStorage" => Dtype::U8,
+        "BoolStorage" => Dtype::BOOL,
+        _ => return None,
+    })
+}
+
+/// The storage class of an element type.
+pub fn storage_of_dtype(dtype: Dtype) -> Option<&'static str> {
+    [
+        "FloatStorage",
+        "HalfStorage",
+        "BFloat16Storage",
+        "DoubleStorage",
+        "LongStorage",
+        "IntStorage",
+        "ShortStorage",
+        "CharStorage",
+        "ByteStorage",
+        "BoolStorage",
+    ]
+    .into_iter()
+    .find(|c| dtype_of_storage(c) == Some(dtype))
+}
+
+/// Whether a file starts like the legacy (pre-zip) stream format.
+pub fn is_legacy(file: &File) -> bool {
+    let mut head = [0u8; LEGACY_MAGIC.len()];
+    file.read_exact_at(&mut head, 0).is_ok() && head == LEGACY_MAGIC
+}
+
+/// Whether a ZIP archive is a PyTorch checkpoint (a `<folder>/data.pkl` record) rather than
+/// an npz.
+pub fn is_torch_zip(file: &File) -> bool {
+    let Ok(handle) = file.try_clone() else {
+        return false;
+    };
+    zip::ZipArchive::new(handle).is_ok_and(|z| {
+        z.file_names_raw().any(|n| {
+            n.strip_suffix(b"/data.pkl")
+                .is_some_and(|folder| !folder.contains(&b'/'))
+        })
+    })
+}
+
+/// The refusal of the legacy format, with what to do.
+pub fn legacy_error(path: &Path) -> Error {
+    invalid(
+        path,
+        "is a PyTorch file in the legacy (pre-2020) format, which posgrid does not read; \
+         re-save it with a current framework (torch.save writes the zip format) in a trusted environment",
+    )
+}
+
+/// Modules whose functions run programs, touch files or the network, or load code, and the
+/// built-in functions that evaluate text or reach attributes: a checkpoint has no reason to
+/// call any of them, so a file that does is refused as hostile (common practice of safe
+/// loaders: such calls are how a malicious pickle runs its payload).
+const DANGEROUS_MODULES: &[&str] = &[
+    "os",
+    "posix",
+    "nt",
+    "subprocess",
+    "sys",
+    "shutil",
+    "socket",
+    "pty",
+    "importlib",
+    "runpy",
+    "pickle",
+    "_pickle",
+    "marshal",
+    "ctypes",
+    "code",
+    "codeop",
+    "webbrowser",
+    "multiprocessing",
+    "signal",
+    "asyncio",
+    "io",
+    "pathlib",
+    "tempfile",
+    "urllib",
+    "http",
+    "ftplib",
+    "smtplib",
+    "telnetlib",
+];
+const DANGEROUS_BUILTINS: &[&str] = &[
+    "eval",
+    "exec",
+    "compile",
+    "__import__",
+    "open",
+    "getattr",
+    "setattr",
+    "delattr",
+    "globals",
+    "locals",
+    "vars",
+    "input",
+    "breakpoint",
+    "exit",
+    "quit",
+    "apply",
+    "execfile",
+    "file",
+];
+
+/// Why a global, if called, marks the file as hostile.
+fn dangerous(module: &str, name: &str) -> bool {
+    let top = module.split('.').next().unwrap_or(module);
+    DANGEROUS_MODULES.contains(&top)
+        || (matches!(module, "builtins" | "__builtin__") && DANGEROUS_BUILTINS.contains(&name))
+        || (module == "operator" && matches!(name, "attrgetter" | "methodcaller"))
+}
+
+/// Refuse a pickle that would call a dangerous function if it were executed (posgrid never
+/// executes it; the refusal tells the user what the file is).
+fn refuse_dangerous_calls(path: &Path, p: &Pickle) -> Result<()> {
+    for node in &p.nodes {
+        let Node::Opaque { callable, .. } = node else {
+            continue;
+        };
+        if let Node::Global { module, name } = &p.nodes[*callable] {
+            if dangerous(module, name) {
+                return Err(invalid(
+                    path,
+                    format!(
+                        "data.pkl calls {module}.{name}, which a checkpoint never needs: the file is built to run code when loaded. Nothing was executed; do not load it with the framework"
+                    ),
+                ));
+            }
+        }
+    }
+    Ok(())
+}
+
+/// Where one tensor's elements lie.
+#[derive(Debug, Clone)]
+struct View {
+    /// The storage record (index into the archive's records).
+    record: usize,
+    elem: usize,
+    /// In elements, from the start of the storage.
+    offset: u64,
+    shape: Vec<u64>,
+    stride: Vec<u64>,
+    contiguous: bool,
+    /// The view covers its whole storage record (so its CRC-32 can be checked).
+    whole_record: bool,
+}
+
+/// An opened, validated PyTorch file.
+pub struct TorchFile {
+    path: PathBuf,
+    file: File,
+    file_len: u64,
+    archive: Archive,
+    pickle: Pickle,
+    entries: Vec<TensorEntry>,
+    views: Vec<View>,
+    /// Per entry, the node named (a tensor or a parameter) and the tensor node itself.
+    nodes: Vec<(NodeId, NodeId)>,
+    by_name: HashMap<String, usize>,
+}
+
+impl std::fmt::Debug for TorchFile {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.debug_struct("TorchFile")
+            .field("path", &self.path)
+            .field("tensors", &self.entries.len())
+            .finish()
+    }
+}
+
+impl TorchFile {
+    /// Open and validate a file: the archive, the pickle and every tensor's view.
+    pub fn open(path: &Path) -> Result<Self> {
+        let (file, meta) = super::open_regular(path)?;
+        let file_len = meta.len();
+        let archive = Archive::open(path, &file, file_len)?;
+        if archive.get("constants.pkl").is_some() || archive.has_prefix("code/") {
+            return Err(invalid(
+                path,
+                "is a TorchScript archive (a compiled model), not a checkpoint of weights; \
+                 save the model's state_dict() with torch.save and resize that",
+            ));
+        }
+        if let Some(r) = archive.get("byteorder") {
+            let order = archive::read_whole(path, &file, r, 16)?;
+            if order != b"little" {
+                return Err(invalid(
+                    path,
+                    "stores its tensors big-endian (byteorder record), which posgrid does not read",
+                ));
+            }
+        }
+        let pkl = archive
+            .get("data.pkl")
+            .expect("the archive's folder is the folder of its data.pkl");
+        let bytes = archive::read_whole(path, &file, pkl, MAX_PICKLE)?;
+        let limits = Limits {
+            max_nodes: MAX_NODES,
+            ..Limits::for_len(bytes.len())
+        };
+        let pickle = pickle::parse(&bytes, &limits)
+            .map_err(|e| invalid(path, format!("data.pkl: {e}")))?;
+        refuse_dangerous_calls(path, &pickle)?;
+        let mut ckpt = TorchFile {
+            path: path.to_path_buf(),
+            file,
+            file_len,
+            archive,
+            pickle,
+            entries: Vec::new(),
+            views: Vec::new(),
+            nodes: Vec::new(),
+            by_name: HashMap::new(),
+        };
+        for (name, named) in ckpt.pickle.tensors() {
+            let tensor = match &ckpt.pickle.nodes[named] {
+                Node::Parameter { data, .. } => *data,
+                _ => named,
+            };
+            let (entry, view) = ckpt.view(&name, tensor)?;
+            ckpt.by_name.insert(name, ckpt.entries.len());
+            ckpt.entries.push(entry);
+            ckpt.views.push(view);
+            ckpt.nodes.push((named, tensor));
+        }
+        Ok(ckpt)
+    }
+
+    /// Check one tensor node against its storage record.
+    fn view(&self, name: &str, tensor: NodeId) -> Result<(TensorEntry, View)> {
+        let bad = |why: String| invalid(&self.path, format!("tensor \"{name}\": {why}"));
+        let Node::Tensor {
+            storage,
+            offset,
+            size,
+            stride,
+            ..
+        } = &self.pickle.nodes[tensor]
+        else {
+            return Err(bad("a parameter that does not wrap a tensor".into()));
+        };
+        let Node::Storage {
+            class, key, numel, ..
+        } = &self.pickle.nodes[*storage]
+        else {
+            return Err(bad("its storage is not a storage record".into()));
+        };
+        let dtype = dtype_of_storage(class)
+            .ok_or_else(|| bad(format!("storage type {class} is not one posgrid reads")))?;
+        if key.is_empty() || key.contains('/') || key.contains('\\') || key == ".." {
+            return Err(bad(format!(
+                "storage key {key:?} is not a plain record name"
+            )));
+        }
+        let record = self
+            .archive
+            .records
+            .iter()
+            .position(|r| r.name == format!("{}/data/{key}", self.archive.folder))
+            .ok_or_else(|| bad(format!("its storage record data/{key} is missing")))?;
+        let r = &self.archive.records[record];
+        if !r.stored {
+            return Err(bad(format!(
+                "storage record data/{key} is compressed; the framework stores storages as they are"
+            )));
+        }
+        let elem = (dtype.bitsize() / 8).max(1);
+        if numel.checked_mul(elem as u64) != Some(r.size) {
+            return Err(bad(format!(
+                "storage record data/{key} holds {} bytes, not the {numel} elements of {dtype} its reference says",
+                r.size
+            )));
+        }
+        let count = check_view(size, stride, *offset, *numel)
+            .ok_or_else(|| bad(format!("its view (offset {offset}, shape {size:?}, strides {stride:?}) does not lie inside its storage of {numel} elements")))?;
+        let shape: Vec<usize> = size.iter().map(|&d| d as usize).collect();
+        let begin = r.data_start + offset * elem as u64;
+        let view = View {
+            record,
+            elem,
+            offset: *offset,
+            shape: size.clone(),
+            stride: stride.clone(),
+            contiguous: is_contiguous(size, stride),
+            whole_record: *offset == 0 && count == *numel,
+        };
+        let entry = TensorEntry {
+            name: name.to_string(),
+            dtype,
+            shape,
+            begin,
+            end: begin + count * elem as u64,
+        };
+        Ok((entry, view))
+    }
+
+    pub fn path(&self) -> &Path {
+        &self.path
+    }
+
+    /// The object tree.
+    pub fn pickle(&self) -> &Pickle {
+        &self.pickle
+    }
+
+    /// The archive's records.
+    pub fn archive(&self) -> &Archive {
+        &self.archive
+    }
+
+    pub fn file(&self) -> &File {
+        &self.file
+    }
+
+    /// The keys of the root dict, named as tensor paths name them (see [`super::pickle`]);
+    /// empty when the root is not a dict.
+    pub fn root_keys(&self) -> Vec<String> {
+        let Node::Dict { items, .. } = &self.pickle.nodes[self.pickle.root] else {
+            return Vec::new();
+        };
+        items
+            .iter()
+            .filter_map(|&(k, _)| match &self.pickle.nodes[k] {
+                Node::Str(s) => Some(s.replace('%', "%25").replace('/', "%2F")),
+                _ => None,
+            })
+            .collect()
+    }
+
+    /// The named node and the tensor node of an entry.
+    pub fn nodes_of(&self, name: &str) -> Option<(NodeId, NodeId)> {
+        self.by_name.get(name).map(|&i| self.nodes[i])
+    }
+
+    fn view_of(&self, t: &TensorEntry) -> &View {
+        &self.views[*self
+            .by_name
+            .get(&t.name)
+            .expect("entries come from the file")]
+    }
+
+    /// A contiguous view's bytes, in chunks; the CRC-32 is checked when it covers its record.
+    fn stream_contiguous(&self, t: &TensorEntry, v: &View, sink: Sink<'_>) -> Result<()> {
+        let mut crc = crc32fast::Hasher::new();
+        let mut buf = vec![0u8; super::chunk_len(t.byte_len())];
+        let (mut at, mut left) = (t.begin, t.byte_len());
+        while left > 0 {
+            let n = super::chunk_len(left);
+            self.file
+                .read_exact_at(&mut buf[..n], at)
+                .map_err(|e| Error::read(&self.path, e))?;
+            crc.update(&buf[..n]);
+            sink(&buf[..n])?;
+            at += n as u64;
+            left -= n as u64;
+        }
+        if v.whole_record {
+            archive::check_crc(&self.path, &self.archive.records[v.record], crc.finalize())?;
+        }
+        Ok(())
+    }
+
+    /// A strided view gathered into C order.
+    fn gather(&self, t: &TensorEntry, v: &View) -> Result<Vec<u8>> {
+        let r = &self.archive.records[v.record];
+        let span = span_elements(&v.shape, &v.stride);
+        let len = usize::try_from(span * v.elem as u64).unwrap_or(usize::MAX);
+        let mut storage = crate::values::try_filled(len, 0u8)
+            .map_err(|e| crate::values::out_of_memory(&self.path, &t.name, e))?;
+        self.file
+            .read_exact_at(&mut storage, r.data_start + v.offset * v.elem as u64)
+            .map_err(|e| Error::read(&self.path, e))?;
+        let mut out = super::whole_tensor_buffer(&self.path, t)?;
+        for index in 0..t.numel() as u64 {
+            let at = strided_position(index, &v.shape, &v.stride) as usize * v.elem;
+            out.extend_from_slice(&storage[at..at + v.elem]);
+        }
+        Ok(out)
+    }
+}
+
+/// The number of elements of a view, if it lies inside a storage of `numel` elements.
+fn check_view(size: &[u64], stride: &[u64], offset: u64, numel: u64) -> Option<u64> {
+    if size.len() != stride.len() {
+        return None;
+    }
+    let count = size.iter().try_fold(1u64, |n, &d| n.checked_mul(d))?;
+    usize::try_from(count).ok()?;
+    if count == 0 {
+        return (offset <= numel).then_some(0);
+    }
+    let last = offset.checked_add(span_elements_checked(size, stride)? - 1)?;
+    (last < numel).then_some(count)
+}
+
+/// How many elements a view spans from its first to its last, inclusive.
+fn span_elements_checked(size: &[u64], stride: &[u64]) -> Option<u64> {
+    size.iter().zip(stride).try_fold(1u64, |acc, (&d, &s)| {
+        acc.checked_add((d - 1).checked_mul(s)?)
+    })
+}
+
+fn span_elements(size: &[u64], stride: &[u64]) -> u64 {
+    span_elements_checked(size, stride).expect("checked when the file was opened")
+}
+
+/// Whether strides are the C-order strides of the shape (dimensions of one element ignored).
+fn is_contiguous(size: &[u64], stride: &[u64]) -> bool {
+    let mut expected = 1u64;
+    for (&d, &s) in size.iter().zip(stride).rev() {
+        if d != 1 && s != expected {
+            return false;
+        }
+        expected = expected.saturating_mul(d);
+    }
+    true
+}
+
+/// The storage position (relative to the view's offset) of the `index`-th element in C order.
+fn strided_position(mut index: u64, size: &[u64], stride: &[u64]) -> u64 {
+    let mut at = 0;
+    for (&d, &s) in size.iter().zip(stride).rev() {
+        at += (index % d) * s;
+        index /= d;
+    }
+    at
+}
+
+impl TensorSource for TorchFile {
+    fn entries(&self) -> &[TensorEntry] {
+        &self.entries
+    }
+    fn bytes(&self, t: &TensorEntry) -> Result<Vec<u8>> {
+        let v = self.view_of(t);
+        if !v.contiguous {
+            return self.gather(t, v);
+        }
+        let mut out = super::whole_tensor_buffer(&self.path, t)?;
+        self.stream_contiguous(t, v, &mut |chunk| {
+            out.extend_from_slice(chunk);
+            Ok(())
+        })?;
+        Ok(out)
+    }
+    fn stream(&self, t: &TensorEntry, sink: Sink<'_>) -> Result<()> {
+        let v = self.view_of(t);
+        if v.contiguous {
+            return self.stream_contiguous(t, v, sink);
+        }
+        for chunk in self.gather(t, v)?.chunks(super::COPY_CHUNK) {
+            sink(chunk)?;
+        }
+        Ok(())
+    }
+    fn source_path(&self) -> &Path {
+        &self.path
+    }
+}
+
+impl Reader for TorchFile {
+    fn format(&self) -> Format {
+        Format::PyTorch
+    }
+    fn file_len(&self) -> u64 {
+        self.file_len
+    }
+    fn span(&self, t: &TensorEntry) -> Option<Span<'_>> {
+        self.view_of(t).contiguous.then_some(Span {
+            file: &self.file,
+            path: &self.path,
+            offset: t.begin,
+            len: t.byte_len(),
+        })
+    }
+    fn as_any(&self) -> &dyn std::any::Any {
+        self
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn views_inside_and_outside_their_storage() {
+        // A [2, 3] view with C strides at offset 4 of 10 elements ends at element 9.
+        assert_eq!(check_view(&[2, 3], &[3, 1], 4, 10), Some(6));
+        assert_eq!(check_view(&[2, 3], &[3, 1], 5, 10), None);
+        // A transposed view: strides (1, 2) over a 2x3 storage.
+        assert_eq!(check_view(&[3, 2], &[1, 3], 0, 6), Some(6));
+        assert!(!is_contiguous(&[3, 2], &[1, 3]));
+        assert!(is_contiguous(&[1, 4, 2], &[99, 2, 1]));
+        assert_eq!(check_view(&[2], &[1, 1], 0, 10), None);
+        assert_eq!(check_view(&[u64::MAX, 2], &[1, 1], 0, 10), None);
+        assert_eq!(check_view(&[0, 5], &[5, 1], 3, 3), Some(0));
+    }
+
+    #[test]
+    fn strided_positions_follow_c_order() {
+        // Transpose of a 2x3 row-major matrix: element (i, j) of the view is (j, i) of the base.
+        let pos: Vec<u64> = (0..6)
+            .map(|i| strided_position(i, &[3, 2], &[1, 3]))
+            .collect();
+        assert_eq!(pos, vec![0, 3, 1, 4, 2, 5]);
+    }
+}
