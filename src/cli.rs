@@ -15,6 +15,7 @@ use crate::plan::{Request, Target};
 use crate::report::{self, ScanReport};
 use crate::resample::{Antialias, Coords, Edges, Kernel, Options, DEFAULT_CUBIC_A};
 use crate::resize::{self, ResizeJob};
+use crate::selection::SelectionRequest;
 use crate::similarity::DEFAULT_REFS;
 
 const EXIT_CODES: &str = "\
@@ -202,6 +203,26 @@ kept as they are. Learned tables are resampled as usual."
     /// Output container: safetensors or npz (default: OUT's extension, else the input's).
     #[arg(long, value_name = "FORMAT", value_parser = parse_text::<Format>)]
     pub format: Option<Format>,
+    /// Which state dict of a PyTorch file a flat output holds (its key path, e.g. model).
+    #[arg(
+        long,
+        value_name = "PATH",
+        long_help = "Which state dict of a PyTorch file a flat output (.safetensors, .npz, or .pth with \
+--model-only) holds, by its key path as scan shows it: model, model_ema, teacher, state_dict ... Default: \
+the one dict that holds the position tables."
+    )]
+    pub state_dict: Option<String>,
+    /// Remove this prefix from every written tensor name (e.g. module.).
+    #[arg(long, value_name = "TEXT")]
+    pub strip_prefix: Option<String>,
+    /// For a PyTorch output: write only the model's state dict (optimizer and the rest dropped).
+    #[arg(
+        long,
+        long_help = "For a PyTorch output: write only the model's state dict (the one --state-dict names, \
+or the one holding the position tables) as one ordered dict; optimizer state, schedulers, epoch counters \
+and other entries are dropped and listed. The usual first step before fine-tuning from a training checkpoint."
+    )]
+    pub model_only: bool,
     /// Also draw before/after similarity maps of the first resized table to this PNG.
     #[arg(long, value_name = "PNG")]
     pub map: Option<PathBuf>,
@@ -376,6 +397,11 @@ fn resize_cmd(args: ResizeArgs) -> Result<i32> {
         refs: args.refs,
         map: args.map.clone(),
         format: args.format,
+        selection: SelectionRequest {
+            state_dict: args.state_dict.clone(),
+            strip_prefix: args.strip_prefix.clone(),
+            model_only: args.model_only,
+        },
     };
     let report = resize::run(&job)?;
     if args.json {

@@ -30,6 +30,7 @@ pub mod render;
 pub mod report;
 pub mod resample;
 pub mod resize;
+pub mod selection;
 pub mod similarity;
 pub mod sincos;
 pub mod values;

@@ -92,6 +92,13 @@ impl Plan {
             })
     }
 
+    /// Keep only the changes (and tables at target) whose tensors `keep` accepts.
+    pub fn retain(&mut self, keep: impl Fn(&str) -> bool) {
+        self.tables.retain(|t| keep(&t.table.name));
+        self.companions.retain(|c| keep(&c.name));
+        self.already_at_target.retain(|n| keep(n));
+    }
+
     /// Whether the tensor with this name is changed by the plan.
     pub fn changes(&self, name: &str) -> bool {
         self.tables.iter().any(|t| t.table.name == name)

@@ -7,6 +7,7 @@ use std::path::{Path, PathBuf};
 use serde::Serialize;
 
 use crate::checkpoint::sharded::ShardedSet;
+use crate::checkpoint::torch::TorchFile;
 use crate::checkpoint::writer::{self, Destination, OutEntry, Output};
 use crate::checkpoint::{Dtype, Format, Source, TensorEntry, TensorSource};
 use crate::discover::{self, Hints};
@@ -14,6 +15,7 @@ use crate::error::{Error, Result};
 use crate::figure::{self, GridRows};
 use crate::plan::{self, Plan, Request, TableChange};
 use crate::resample;
+use crate::selection::{self, SelectionRequest};
 use crate::similarity::{self, Grid};
 use crate::values;
 use crate::write::{self, AtomicFile, Bar, OutputRules, Pending, Progress, Silent};
@@ -42,6 +44,8 @@ pub struct ResizeJob {
     pub map: Option<PathBuf>,
     /// The output container; `None` follows OUT's extension, then the input's format.
     pub format: Option<Format>,
+    /// Which state dict of a tree-shaped checkpoint a flat output holds, and its names.
+    pub selection: SelectionRequest,
 }
 
 /// One resized table in the report.
@@ -88,6 +92,9 @@ pub struct ResizeReport {
     pub shards_copied: Option<Vec<String>>,
     /// The similarity-map PNG, when one was drawn.
     pub map: Option<PathBuf>,
+    /// Tensors and other values of the input that the output does not hold (a flat output
+    /// of a tree-shaped checkpoint holds one state dict).
+    pub dropped: Vec<String>,
     pub warnings: Vec<String>,
 }
 
@@ -121,7 +128,15 @@ fn table_report(change: &TableChange) -> TableReport {
 pub fn run(job: &ResizeJob) -> Result<ResizeReport> {
     let source = Source::open(&job.input)?;
     let found = discover::discover(&source, &job.hints)?;
-    let plan = plan::build(&source, &found, &job.request)?;
+    let format = job
+        .format
+        .or_else(|| Format::from_extension(&job.output))
+        .unwrap_or(source.format());
+    let table_names: Vec<&str> = found.tables.iter().map(|t| t.name.as_str()).collect();
+    let selection = selection::choose(&source, format, &table_names, &job.selection)?;
+    let mut plan = plan::build(&source, &found, &job.request)?;
+    // Tables the output does not hold are not resized.
+    plan.retain(|name| selection::out_name(name, &selection).is_some());
     let mut report = ResizeReport {
         input: job.input.clone(),
         output: job.output.clone(),
@@ -141,15 +156,12 @@ pub fn run(job: &ResizeJob) -> Result<ResizeReport> {
         shards_rewritten: None,
         shards_copied: None,
         map: None,
+        dropped: Vec::new(),
         warnings: found.warnings.clone(),
     };
     if plan.is_noop() {
         return Ok(report);
     }
-    let format = job
-        .format
-        .or_else(|| Format::from_extension(&job.output))
-        .unwrap_or(source.format());
     let writer = writer::for_format(format);
     check_outputs(&source, job, format)?;
 
@@ -167,15 +179,24 @@ pub fn run(job: &ResizeJob) -> Result<ResizeReport> {
         entries: source
             .entries()
             .iter()
-            .map(|t| OutEntry {
-                name: t.name.clone(),
-                shape: plan.new_shape(&t.name).unwrap_or(&t.shape).clone(),
-                origin: t,
-                new: new_data.get(&t.name).map(Vec::as_slice),
+            .filter_map(|t| {
+                Some(OutEntry {
+                    name: selection::out_name(&t.name, &selection)?,
+                    shape: plan.new_shape(&t.name).unwrap_or(&t.shape).clone(),
+                    origin: t,
+                    new: new_data.get(&t.name).map(Vec::as_slice),
+                })
             })
             .collect(),
         provenance: provenance(&plan),
     };
+    report.dropped = dropped(&source, &output);
+    report
+        .copied
+        .retain(|n| output.entries.iter().any(|e| &e.origin.name == n));
+    if source.format() == Format::PyTorch {
+        report.warnings.extend(stale_moments(&output, &plan));
+    }
     writer.check(&output)?;
     let preview = writer.preview(&output)?;
     report.output_size = preview.size;
@@ -257,6 +278,52 @@ fn table_fidelity(
             vec![format!("\"{name}\": fidelity not computed: {e}")],
         ),
     }
+}
+
+/// What the input holds that the output does not: tensors left out, and (for a PyTorch
+/// input) top-level values of its tree holding nothing written.
+fn dropped(source: &Source, output: &Output) -> Vec<String> {
+    let written = |n: &str| output.entries.iter().any(|e| e.origin.name == n);
+    let mut out: Vec<String> = source
+        .entries()
+        .iter()
+        .filter(|t| !written(&t.name))
+        .map(|t| t.name.clone())
+        .collect();
+    if let Some(torch) = source.downcast::<TorchFile>() {
+        for key in torch.root_keys() {
+            let inside = format!("{key}/");
+            let holds_written = output
+                .entries
+                .iter()
+                .any(|e| e.origin.name == key || e.origin.name.starts_with(&inside));
+            let listed = out.iter().any(|n| n == &key || n.starts_with(&inside));
+            if !holds_written && !listed {
+                out.push(key);
+            }
+        }
+    }
+    out
+}
+
+/// Tensors written unchanged that have the shape of a table before its resize: in a training
+/// checkpoint, optimizer moments of the old table, which no longer fit the resized model.
+fn stale_moments(output: &Output, plan: &Plan) -> Vec<String> {
+    let old_shapes: Vec<&Vec<usize>> = plan.tables.iter().map(|c| &c.table.shape).collect();
+    let stale: Vec<&str> = output
+        .entries
+        .iter()
+        .filter(|e| e.new.is_none() && old_shapes.contains(&&e.origin.shape))
+        .filter(|e| !plan.already_at_target.contains(&e.origin.name))
+        .map(|e| e.origin.name.as_str())
+        .collect();
+    if stale.is_empty() {
+        return Vec::new();
+    }
+    vec![format!(
+        "kept unchanged with the shape of a table before its resize (optimizer moments?): {}; they no longer fit the resized model — pass --model-only to write only the model's state dict",
+        stale.join(", ")
+    )]
 }
 
 /// Check every output path before any work: OUT (a file, or a directory for a set) and the

@@ -253,8 +253,8 @@ impl TorchFile {
             max_nodes: MAX_NODES,
             ..Limits::for_len(bytes.len())
         };
-        let pickle = pickle::parse(&bytes, &limits)
-            .map_err(|e| invalid(path, format!("data.pkl: {e}")))?;
+        let pickle =
+            pickle::parse(&bytes, &limits).map_err(|e| invalid(path, format!("data.pkl: {e}")))?;
         refuse_dangerous_calls(path, &pickle)?;
         let mut ckpt = TorchFile {
             path: path.to_path_buf(),

@@ -1,0 +1,142 @@
+//! Which tensors of a tree-shaped checkpoint (a PyTorch file: `model/...`, `model_ema/...`,
+//! `optimizer/...`, `epoch`) go into a flat output, and under which names. A flat container
+//! (safetensors, npz) — or a PyTorch output asked to hold only the model — receives one state
+//! dict: the one named by `--state-dict`, else the one dict that holds the position tables.
+//! Its tensors keep their names inside it, less an optional prefix (`--strip-prefix module.`);
+//! everything else is dropped and listed.
+
+use crate::checkpoint::{Format, Source, TensorSource};
+use crate::error::{Error, Result};
+
+/// How the output is named and filtered.
+#[derive(Debug, Clone, Default, PartialEq, Eq)]
+pub struct Selection {
+    /// The state dict written (its key path; empty for the root), or `None` to keep the
+    /// whole tree.
+    pub dict: Option<String>,
+    /// A prefix removed from every written name.
+    pub strip: Option<String>,
+}
+
+/// What the user asked for.
+#[derive(Debug, Clone, Default)]
+pub struct SelectionRequest {
+    /// `--state-dict PATH`.
+    pub state_dict: Option<String>,
+    /// `--strip-prefix TEXT`.
+    pub strip_prefix: Option<String>,
+    /// `--model-only`: a PyTorch output holds only the state dict.
+    pub model_only: bool,
+}
+
+/// The dict a tensor name lies in: everything before its last `/` (empty at the root).
+pub fn parent(name: &str) -> &str {
+    name.rfind('/').map_or("", |i| &name[..i])
+}
+
+/// The name a tensor gets in the output, or `None` when it is not written.
+pub fn out_name(name: &str, sel: &Selection) -> Option<String> {
+    let inside = match sel.dict.as_deref() {
+        None => name,
+        Some("") => (!name.contains('/')).then_some(name)?,
+        Some(dict) => name
+            .strip_prefix(dict)
+            .and_then(|rest| rest.strip_prefix('/'))
+            .filter(|rest| !rest.contains('/'))?,
+    };
+    Some(match sel.strip.as_deref() {
+        Some(p) => inside.strip_prefix(p).unwrap_or(inside).to_string(),
+        None => inside.to_string(),
+    })
+}
+
+/// Decide the selection for writing `source` as `format`; `tables` are the names of the
+/// position tables discovery found.
+pub fn choose(
+    source: &Source,
+    format: Format,
+    tables: &[&str],
+    req: &SelectionRequest,
+) -> Result<Selection> {
+    // Only a PyTorch file is a tree: npz names use `/` too, but as plain text.
+    let tree =
+        source.format() == Format::PyTorch && source.entries().iter().any(|t| t.name.contains('/'));
+    let flat = format != Format::PyTorch || req.model_only;
+    let strip = req.strip_prefix.clone();
+    if !flat || !tree {
+        return Ok(Selection { dict: None, strip });
+    }
+    let dict = match &req.state_dict {
+        Some(asked) => {
+            let asked = asked.trim_end_matches('/').to_string();
+            let holds = source.entries().iter().any(|t| parent(&t.name) == asked);
+            if !holds {
+                return Err(Error::table(
+                    source.source_path(),
+                    format!("--state-dict {asked}: no tensors lie directly in a dict of that path"),
+                ));
+            }
+            asked
+        }
+        None => only_dict(source, tables)?,
+    };
+    Ok(Selection {
+        dict: Some(dict),
+        strip,
+    })
+}
+
+/// The one dict holding the position tables.
+fn only_dict(source: &Source, tables: &[&str]) -> Result<String> {
+    let mut dicts: Vec<&str> = tables.iter().map(|t| parent(t)).collect();
+    dicts.sort();
+    dicts.dedup();
+    match dicts.as_slice() {
+        [one] => Ok(one.to_string()),
+        [] => Err(Error::table(
+            source.source_path(),
+            "no position table tells which state dict to write; pass --state-dict PATH",
+        )),
+        many => Err(Error::table(
+            source.source_path(),
+            format!(
+                "position tables lie in several state dicts ({}); a flat output holds one: pass --state-dict with one of them",
+                many.iter()
+                    .map(|d| if d.is_empty() { "<root>" } else { d })
+                    .collect::<Vec<_>>()
+                    .join(", ")
+            ),
+        )),
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn names_inside_the_chosen_dict_are_kept_less_the_prefix() {
+        let sel = Selection {
+            dict: Some("model".into()),
+            strip: Some("module.".into()),
+        };
+        assert_eq!(
+            out_name("model/module.pos_embed", &sel).as_deref(),
+            Some("pos_embed")
+        );
+        assert_eq!(
+            out_name("model/cls_token", &sel).as_deref(),
+            Some("cls_token")
+        );
+        assert_eq!(out_name("model_ema/pos_embed", &sel), None);
+        assert_eq!(out_name("model/inner/x", &sel), None);
+        let root = Selection {
+            dict: Some(String::new()),
+            strip: None,
+        };
+        assert_eq!(out_name("pos_embed", &root).as_deref(), Some("pos_embed"));
+        assert_eq!(out_name("optimizer/state/0/exp_avg", &root), None);
+        let all = Selection::default();
+        assert_eq!(out_name("a/b/c", &all).as_deref(), Some("a/b/c"));
+    }
+}
