@@ -1,10 +1,11 @@
 #!/usr/bin/env bash
 # Performance benchmark of `posgrid resize` against cp, like for like, in one run.
 #
-#   bash bench/resize.sh [RUNS]      (default 5 runs of each command, alternating)
+#   bash bench/resize.sh [RUNS] [safetensors|pth]   (default 5 runs, safetensors)
 #
 # Generates (with the project's own code) a ~1.2 GB F32 checkpoint shaped like a 24-block,
-# width-1024 vision transformer, then times, alternating:
+# width-1024 vision transformer (as safetensors, and as a PyTorch file written by posgrid's own
+# PyTorch writer), then times, alternating, on the chosen container:
 #   durable pair:  posgrid resize --grid 24          vs  cp + sync of the copy
 #   scratch pair:  posgrid resize --grid 24 --no-sync  vs  plain cp
 # The destination is removed before every run. Prints the median wall time of each command,
@@ -12,13 +13,15 @@
 set -euo pipefail
 cd "$(dirname "$0")/.."
 runs=${1:-5}
+ext=${2:-safetensors}
 work=${BENCH_DIR:-target/bench}
 mkdir -p "$work"
 cargo build --release --quiet --bin posgrid --example make_large
 bin=target/release/posgrid
-src="$work/vit-large-224.safetensors"
-[ -f "$src" ] || target/release/examples/make_large "$src"
-dst="$work/out.safetensors"
+base="$work/vit-large-224.safetensors"
+[ -f "$base" ] && [ -f "$work/vit-large-224.pth" ] || target/release/examples/make_large "$base" "$work/vit-large-224.pth"
+src="$work/vit-large-224.$ext"
+dst="$work/out.$ext"
 sync
 
 measure() { # label, then the command; appends "label seconds peak_kib" to $work/times

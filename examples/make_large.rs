@@ -2,7 +2,10 @@
 //! transformer (a 14x14 table with one class slot; about 1.2 GB of random weights), for the
 //! performance benchmark (bench/resize.sh). Streams the data, so it needs little memory.
 //!
-//!     cargo run --release --example make_large -- OUT.safetensors
+//!     cargo run --release --example make_large -- OUT.safetensors [OUT.pth]
+//!
+//! With a second path, the same checkpoint is also written as a PyTorch file (one ordered dict
+//! of tensors, as the framework saves a state dict) by posgrid's own PyTorch writer.
 
 use std::io::{BufWriter, Write};
 
@@ -94,8 +97,44 @@ fn main() {
     }
     w.write_all(&buf).expect("write data");
     w.flush().expect("flush");
+    drop(w);
     println!(
         "wrote {out} ({:.2} GB)",
         (header.len() as u64 + offset) as f64 / 1e9
     );
+    if let Some(pth) = std::env::args().nth(2) {
+        write_pth(&out, &pth);
+        println!("wrote {pth}");
+    }
+}
+
+/// The same tensors as a PyTorch file, through posgrid's writer interface.
+fn write_pth(input: &str, pth: &str) {
+    use posgrid::checkpoint::writer::{self, Destination, OutEntry, Output};
+    use posgrid::checkpoint::{Format, Source, TensorSource};
+    let source = Source::open(input).expect("open the safetensors file");
+    let output = Output {
+        source: source.reader(),
+        entries: source
+            .entries()
+            .iter()
+            .map(|t| OutEntry {
+                name: t.name.clone(),
+                shape: t.shape.clone(),
+                origin: t,
+                new: None,
+            })
+            .collect(),
+        provenance: serde_json::json!({}),
+    };
+    let dest = Destination {
+        path: std::path::Path::new(pth),
+        sync: false,
+        force: true,
+        like: std::path::Path::new(input),
+    };
+    let written = writer::for_format(Format::PyTorch)
+        .write(&output, &dest, &mut posgrid::write::Silent)
+        .expect("write the PyTorch file");
+    posgrid::write::commit_all(vec![written.pending]).expect("commit");
 }

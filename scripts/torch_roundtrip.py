@@ -254,14 +254,17 @@ def check_pair(path_in, path_out, opts):
         return 2
     report = Report()
     flat_output = str(path_out).endswith(".safetensors")
-    if flat_output:
+    # A PyTorch output holding only a state dict of the input (posgrid's --model-only) is
+    # compared like a flat one, against the dict it came from.
+    model_only = not flat_output and opts.model_only
+    if flat_output or model_only:
         match = match_flat(tree_in, tree_out)
         if match is None:
             print(f"FAIL {path_in} -> {path_out}: no dict of the input has the output's {len(tree_out)} names")
             return 1
         where, prefix, tree_in = match
         report.detail(f"compared with input dict {show(where)}" + (f", prefix {prefix!r} stripped" if prefix else ""))
-    compare_trees(tree_in, tree_out, not flat_output, opts, report)
+    compare_trees(tree_in, tree_out, not flat_output and not model_only, opts, report)
     if report.dropped:
         shown = ", ".join(report.dropped[:6]) + (" ..." if len(report.dropped) > 6 else "")
         (report.detail if opts.allow_dropped else report.fail)(f"dropped from the output: {shown}")
@@ -394,6 +397,7 @@ def parse_args(argv):
     parser.add_argument("--mode", default="bicubic", choices=["bicubic", "bilinear"], help="interpolate mode")
     parser.add_argument("--antialias", action="store_true", help="interpolate with antialias=True")
     parser.add_argument("--allow-dropped", action="store_true", help="entries missing from OUTPUT are not a failure")
+    parser.add_argument("--model-only", action="store_true", help="a .pth OUTPUT holds one state dict of INPUT (compare with that dict)")
     parser.add_argument("--safe-global", action="append", default=[], metavar="MODULE.NAME", help="allow this global in safe mode")
     parser.add_argument("--self-test", action="store_true", help="check the checker on pairs made here")
     opts = parser.parse_args(argv)
