@@ -4,25 +4,9 @@
 mod common;
 
 use std::path::{Path, PathBuf};
-use std::process::{Command, Output};
 
 use common::*;
 use safetensors::{Dtype, SafeTensors};
-
-fn posgrid(args: &[&str]) -> Output {
-    Command::new(env!("CARGO_BIN_EXE_posgrid"))
-        .args(args)
-        .output()
-        .unwrap()
-}
-
-fn code(o: &Output) -> i32 {
-    o.status.code().unwrap_or(-1)
-}
-
-fn s(p: &Path) -> &str {
-    p.to_str().unwrap()
-}
 
 /// A ViT-like file: table [1, 197, 16] F32, kernel, two other tensors, and metadata.
 fn vit(dir: &Path, dt: Dtype) -> PathBuf {

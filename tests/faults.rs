@@ -13,15 +13,6 @@ use std::time::{Duration, Instant};
 use common::*;
 use safetensors::Dtype;
 
-fn entries(dir: &Path) -> Vec<String> {
-    let mut v: Vec<String> = std::fs::read_dir(dir)
-        .unwrap()
-        .map(|e| e.unwrap().file_name().to_string_lossy().into_owned())
-        .collect();
-    v.sort();
-    v
-}
-
 fn small_vit(dir: &Path) -> PathBuf {
     let d = 64;
     write(

@@ -15,26 +15,6 @@ use common::*;
 use posgrid::write::{self, AtomicDir, AtomicFile, OutputRules, Pending};
 use safetensors::Dtype;
 
-fn posgrid<S: AsRef<std::ffi::OsStr>>(args: &[S]) -> Output {
-    Command::new(env!("CARGO_BIN_EXE_posgrid"))
-        .args(args)
-        .output()
-        .unwrap()
-}
-
-fn stderr(o: &Output) -> String {
-    String::from_utf8_lossy(&o.stderr).into_owned()
-}
-
-fn names(dir: &Path) -> Vec<String> {
-    let mut v: Vec<String> = fs::read_dir(dir)
-        .unwrap()
-        .map(|e| e.unwrap().file_name().to_string_lossy().into_owned())
-        .collect();
-    v.sort();
-    v
-}
-
 fn small_vit(dir: &Path, file: &str) -> PathBuf {
     let d = 16;
     write(
@@ -121,7 +101,7 @@ fn a_bad_figure_path_leaves_no_checkpoint_behind() {
     let o = resize(&input, &out, &["--map", "/nonexistent-dir/maps.png"]);
     assert_eq!(o.status.code(), Some(5), "{}", stderr(&o));
     assert!(!out.exists());
-    assert_eq!(names(dir.path()), ["in.safetensors"]);
+    assert_eq!(entries(dir.path()), ["in.safetensors"]);
     // The figure and OUT together when all is well.
     let png = dir.path().join("maps.png");
     let o = resize(&input, &out, &["--map".as_ref(), png.as_os_str()]);
@@ -153,14 +133,14 @@ fn outputs_committed_together_are_all_or_nothing() {
     assert_eq!(e.exit_code(), 5, "{e}");
     assert!(!a.exists());
     assert_eq!(fs::read(&b).unwrap(), b"someone else's");
-    assert_eq!(names(dir.path()), ["b.png"], "no temporaries");
+    assert_eq!(entries(dir.path()), ["b.png"], "no temporaries");
     // Replacing: a failure puts the old first output back.
     fs::write(&a, "old checkpoint").unwrap();
     let first = staged(&a, b"checkpoint", true);
     let second = staged(&b, b"figure", false);
     assert!(write::commit_all(vec![Pending::File(first), Pending::File(second)]).is_err());
     assert_eq!(fs::read(&a).unwrap(), b"old checkpoint");
-    assert_eq!(names(dir.path()), ["a.safetensors", "b.png"]);
+    assert_eq!(entries(dir.path()), ["a.safetensors", "b.png"]);
     // Both can go: both are there.
     fs::remove_file(&b).unwrap();
     let first = staged(&a, b"checkpoint", true);
@@ -168,7 +148,7 @@ fn outputs_committed_together_are_all_or_nothing() {
     write::commit_all(vec![Pending::File(first), Pending::File(second)]).unwrap();
     assert_eq!(fs::read(&a).unwrap(), b"checkpoint");
     assert_eq!(fs::read(&b).unwrap(), b"figure");
-    assert_eq!(names(dir.path()), ["a.safetensors", "b.png"]);
+    assert_eq!(entries(dir.path()), ["a.safetensors", "b.png"]);
 }
 
 #[test]
@@ -181,7 +161,7 @@ fn a_file_that_appears_at_out_during_the_write_is_never_replaced() {
     assert_eq!(e.exit_code(), 5);
     assert!(e.to_string().contains("appeared"), "{e}");
     assert_eq!(fs::read(&out).unwrap(), b"appeared");
-    assert_eq!(names(dir.path()), ["out.safetensors"]);
+    assert_eq!(entries(dir.path()), ["out.safetensors"]);
 
     let set = dir.path().join("set");
     let rules = OutputRules {
@@ -194,8 +174,8 @@ fn a_file_that_appears_at_out_during_the_write_is_never_replaced() {
     fs::create_dir(&set).unwrap();
     fs::write(set.join("mine.txt"), "kept").unwrap();
     assert_eq!(staged_dir.commit().unwrap_err().exit_code(), 5);
-    assert_eq!(names(&set), ["mine.txt"]);
-    assert_eq!(names(dir.path()), ["out.safetensors", "set"]);
+    assert_eq!(entries(&set), ["mine.txt"]);
+    assert_eq!(entries(dir.path()), ["out.safetensors", "set"]);
 }
 
 /// A valid checkpoint whose second tensor is `len` zero bytes in a sparse file, so that the
@@ -225,7 +205,7 @@ fn start_long_copy(dir: &Path, out: &Path) -> (PathBuf, std::process::Child) {
         .spawn()
         .unwrap();
     let start = Instant::now();
-    while names(dir).len() < 2 {
+    while entries(dir).len() < 2 {
         assert!(
             start.elapsed() < Duration::from_secs(20),
             "no temporary file"
@@ -244,7 +224,7 @@ fn out_created_by_someone_else_during_the_run_survives() {
     let o = child.wait_with_output().unwrap();
     assert_eq!(o.status.code(), Some(5), "{}", stderr(&o));
     assert_eq!(fs::read(&out).unwrap(), b"precious");
-    assert_eq!(names(dir.path()), ["big.safetensors", "out.safetensors"]);
+    assert_eq!(entries(dir.path()), ["big.safetensors", "out.safetensors"]);
 }
 
 #[test]
@@ -262,7 +242,7 @@ fn an_input_that_shrinks_during_the_copy_is_an_input_error() {
     assert_eq!(o.status.code(), Some(3), "{}", stderr(&o));
     assert!(stderr(&o).contains("big.safetensors: "), "{}", stderr(&o));
     assert!(stderr(&o).contains("shrank"), "{}", stderr(&o));
-    assert_eq!(names(dir.path()), ["big.safetensors"]);
+    assert_eq!(entries(dir.path()), ["big.safetensors"]);
 }
 
 #[test]
@@ -347,7 +327,11 @@ fn force_replaces_only_a_directory_that_is_an_earlier_output_set() {
     // An earlier output set is replaced.
     let o = resize(&set, &out, &["--force"]);
     assert_eq!(o.status.code(), Some(0), "{}", stderr(&o));
-    assert_eq!(names(dir.path()), ["out", "set"], "nothing left beside it");
+    assert_eq!(
+        entries(dir.path()),
+        ["out", "set"],
+        "nothing left beside it"
+    );
     // A user's file in it, a sub-directory, or no index: refused, nothing removed.
     fs::write(out.join("notes.txt"), "mine").unwrap();
     let o = resize(&set, &out, &["--force"]);
@@ -394,7 +378,7 @@ fn stale_temporaries_of_dead_processes_are_removed() {
     fs::write(dir.path().join(&stale_dir).join("shard"), "x").unwrap();
     let o = resize(&input, &out, &[] as &[&str]);
     assert_eq!(o.status.code(), Some(0), "{}", stderr(&o));
-    let left = names(dir.path());
+    let left = entries(dir.path());
     assert!(
         !left.contains(&stale) && !left.contains(&stale_dir),
         "{left:?}"
@@ -412,7 +396,7 @@ fn any_valid_output_name_works() {
     let out = dir.path().join(&name);
     let o = resize(&input, &out, &[] as &[&str]);
     assert_eq!(o.status.code(), Some(0), "{}", stderr(&o));
-    assert_eq!(names(dir.path()), ["in.safetensors".to_string(), name]);
+    assert_eq!(entries(dir.path()), ["in.safetensors".to_string(), name]);
 }
 
 fn mode(path: &Path) -> u32 {
@@ -550,7 +534,7 @@ fn a_figure_inside_a_set_directory_is_refused() {
     let out = dir.path().join("out");
     let o = resize(&set, &out, &[] as &[&str]);
     assert_eq!(o.status.code(), Some(0), "{}", stderr(&o));
-    let listed = names(&set);
+    let listed = entries(&set);
     for figure in [set.join("maps.png"), out.join("maps.png")] {
         let o = resize(
             &set,
@@ -560,5 +544,5 @@ fn a_figure_inside_a_set_directory_is_refused() {
         assert_eq!(o.status.code(), Some(5), "{}", stderr(&o));
         assert!(!figure.exists());
     }
-    assert_eq!(names(&set), listed);
+    assert_eq!(entries(&set), listed);
 }

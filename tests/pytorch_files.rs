@@ -7,8 +7,9 @@
 
 mod common;
 
+use common::{posgrid, s};
+
 use std::path::{Path, PathBuf};
-use std::process::{Command, Output};
 
 use posgrid::checkpoint::{Source, TensorSource};
 use serde_json::Value;
@@ -22,18 +23,6 @@ fn fixture(name: &str) -> PathBuf {
 fn manifest() -> Value {
     let text = std::fs::read_to_string(fixture("manifest.json")).unwrap();
     serde_json::from_str(&text).unwrap()
-}
-
-fn posgrid(args: &[&str]) -> Output {
-    Command::new(env!("CARGO_BIN_EXE_posgrid"))
-        .current_dir(env!("CARGO_MANIFEST_DIR"))
-        .args(args)
-        .output()
-        .unwrap()
-}
-
-fn s(p: &Path) -> &str {
-    p.to_str().unwrap()
 }
 
 /// A key path joined as posgrid names tensors: `/` between keys, `%` and `/` inside a string

@@ -6,21 +6,9 @@
 mod common;
 
 use std::path::Path;
-use std::process::{Command, Output};
 
 use common::*;
 use safetensors::Dtype;
-
-fn posgrid(args: &[&str]) -> Output {
-    Command::new(env!("CARGO_BIN_EXE_posgrid"))
-        .args(args)
-        .output()
-        .unwrap()
-}
-
-fn s(p: &Path) -> &str {
-    p.to_str().unwrap()
-}
 
 /// Names that would set the window title, clear the screen, reverse the text direction and
 /// print a fake line of their own if printed raw.

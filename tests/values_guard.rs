@@ -11,30 +11,6 @@ use std::process::{Command, Output};
 use common::*;
 use safetensors::Dtype;
 
-fn posgrid(args: &[&str]) -> Output {
-    Command::new(env!("CARGO_BIN_EXE_posgrid"))
-        .args(args)
-        .output()
-        .unwrap()
-}
-
-fn s(p: &Path) -> &str {
-    p.to_str().unwrap()
-}
-
-fn stderr(o: &Output) -> String {
-    String::from_utf8_lossy(&o.stderr).into_owned()
-}
-
-fn entries(dir: &Path) -> Vec<String> {
-    let mut v: Vec<String> = std::fs::read_dir(dir)
-        .unwrap()
-        .map(|e| e.unwrap().file_name().to_string_lossy().into_owned())
-        .collect();
-    v.sort();
-    v
-}
-
 /// A table `[1, 1 + side², d]` whose every grid row steps from -peak to +peak halfway across:
 /// a bicubic kernel overshoots a step by up to about 17 %.
 fn step(dir: &Path, dtype: Dtype, peak: f64, side: usize, d: usize) -> PathBuf {

@@ -149,3 +149,37 @@ pub fn crafted(dir: &Path, file: &str, header: &str, data: &[u8]) -> PathBuf {
     bytes.extend_from_slice(data);
     raw(dir, file, &bytes)
 }
+
+/// Run the posgrid binary (from the crate's folder) with `args`.
+pub fn posgrid<S: AsRef<std::ffi::OsStr>>(args: &[S]) -> std::process::Output {
+    std::process::Command::new(env!("CARGO_BIN_EXE_posgrid"))
+        .current_dir(env!("CARGO_MANIFEST_DIR"))
+        .args(args)
+        .output()
+        .unwrap()
+}
+
+/// The exit code of a run (-1 when a signal ended it).
+pub fn code(o: &std::process::Output) -> i32 {
+    o.status.code().unwrap_or(-1)
+}
+
+/// What a run printed on stderr.
+pub fn stderr(o: &std::process::Output) -> String {
+    String::from_utf8_lossy(&o.stderr).into_owned()
+}
+
+/// A path as the `&str` an argument list takes.
+pub fn s(p: &Path) -> &str {
+    p.to_str().unwrap()
+}
+
+/// The names in a directory, sorted.
+pub fn entries(dir: &Path) -> Vec<String> {
+    let mut v: Vec<String> = std::fs::read_dir(dir)
+        .unwrap()
+        .map(|e| e.unwrap().file_name().to_string_lossy().into_owned())
+        .collect();
+    v.sort();
+    v
+}
