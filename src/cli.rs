@@ -344,7 +344,8 @@ fn ckpt_path(ckpt: &Source) -> PathBuf {
 fn scan(args: ScanArgs) -> Result<i32> {
     let ckpt = Source::open(&args.checkpoint)?;
     check_named_tensors(&ckpt, &args.discovery.tensors)?;
-    let found = discover::discover(&ckpt, &args.discovery.hints())?;
+    let mut found = discover::discover(&ckpt, &args.discovery.hints())?;
+    found.warnings.extend(ckpt.notes());
     let report = ScanReport::new(&args.checkpoint, &ckpt, found);
     if args.json {
         print_json(&report);

@@ -1,7 +1,7 @@
 //! The main job: open, discover, plan, compute the new tables, stream the patched checkpoint.
 //! Every check that can fail runs before the temporary output file is created.
 
-use std::collections::HashMap;
+use std::collections::{HashMap, HashSet};
 use std::path::{Path, PathBuf};
 
 use serde::Serialize;
@@ -127,7 +127,8 @@ fn table_report(change: &TableChange) -> TableReport {
 /// Run a resize job.
 pub fn run(job: &ResizeJob) -> Result<ResizeReport> {
     let source = Source::open(&job.input)?;
-    let found = discover::discover(&source, &job.hints)?;
+    let mut found = discover::discover(&source, &job.hints)?;
+    found.warnings.extend(source.notes());
     let format = job
         .format
         .or_else(|| Format::from_extension(&job.output))
@@ -190,10 +191,14 @@ pub fn run(job: &ResizeJob) -> Result<ResizeReport> {
             .collect(),
         provenance: provenance(&plan),
     };
-    report.dropped = dropped(&source, &output);
-    report
-        .copied
-        .retain(|n| output.entries.iter().any(|e| &e.origin.name == n));
+    refuse_repeated_names(&source, &output)?;
+    let written: HashSet<&str> = output
+        .entries
+        .iter()
+        .map(|e| e.origin.name.as_str())
+        .collect();
+    report.dropped = dropped(&source, &output, &written);
+    report.copied.retain(|n| written.contains(n.as_str()));
     if source.format() == Format::PyTorch {
         report.warnings.extend(stale_moments(&output, &plan));
     }
@@ -282,28 +287,43 @@ fn table_fidelity(
 
 /// What the input holds that the output does not: tensors left out, and (for a PyTorch
 /// input) top-level values of its tree holding nothing written.
-fn dropped(source: &Source, output: &Output) -> Vec<String> {
-    let written = |n: &str| output.entries.iter().any(|e| e.origin.name == n);
+fn dropped(source: &Source, output: &Output, written: &HashSet<&str>) -> Vec<String> {
     let mut out: Vec<String> = source
         .entries()
         .iter()
-        .filter(|t| !written(&t.name))
+        .filter(|t| !written.contains(t.name.as_str()))
         .map(|t| t.name.clone())
         .collect();
     if let Some(torch) = source.downcast::<TorchFile>() {
-        for key in torch.root_keys() {
-            let inside = format!("{key}/");
-            let holds_written = output
-                .entries
-                .iter()
-                .any(|e| e.origin.name == key || e.origin.name.starts_with(&inside));
-            let listed = out.iter().any(|n| n == &key || n.starts_with(&inside));
-            if !holds_written && !listed {
-                out.push(key);
-            }
-        }
+        // The first key of every tensor name, written or listed, by set.
+        let first = |n: &str| n.split('/').next().unwrap_or(n).to_string();
+        let seen: HashSet<String> = output
+            .entries
+            .iter()
+            .map(|e| first(&e.origin.name))
+            .chain(out.iter().map(|n| first(n)))
+            .collect();
+        out.extend(torch.root_keys().into_iter().filter(|k| !seen.contains(k)));
     }
     out
+}
+
+/// Two tensors written under one name (`--strip-prefix` can make them) would make a file no
+/// reader accepts: refused, naming both.
+fn refuse_repeated_names(source: &Source, output: &Output) -> Result<()> {
+    let mut first: HashMap<&str, &str> = HashMap::new();
+    for e in &output.entries {
+        if let Some(other) = first.insert(&e.name, &e.origin.name) {
+            return Err(Error::table(
+                source.source_path(),
+                format!(
+                    "\"{other}\" and \"{}\" would both be written as \"{}\"; choose another --strip-prefix or --state-dict",
+                    e.origin.name, e.name
+                ),
+            ));
+        }
+    }
+    Ok(())
 }
 
 /// Tensors written unchanged that have the shape of a table before its resize: in a training

@@ -5,6 +5,7 @@
 //! Its tensors keep their names inside it, less an optional prefix (`--strip-prefix module.`);
 //! everything else is dropped and listed.
 
+use crate::checkpoint::pickle::unescape_key;
 use crate::checkpoint::{Format, Source, TensorSource};
 use crate::error::{Error, Result};
 
@@ -34,19 +35,21 @@ pub fn parent(name: &str) -> &str {
     name.rfind('/').map_or("", |i| &name[..i])
 }
 
-/// The name a tensor gets in the output, or `None` when it is not written.
+/// The name a tensor gets in the output, or `None` when it is not written. A name inside the
+/// chosen dict is its key as it is (the `%2F`/`%25` escapes of the path are undone).
 pub fn out_name(name: &str, sel: &Selection) -> Option<String> {
     let inside = match sel.dict.as_deref() {
-        None => name,
-        Some("") => (!name.contains('/')).then_some(name)?,
-        Some(dict) => name
-            .strip_prefix(dict)
-            .and_then(|rest| rest.strip_prefix('/'))
-            .filter(|rest| !rest.contains('/'))?,
+        None => name.to_string(),
+        Some("") => unescape_key((!name.contains('/')).then_some(name)?),
+        Some(dict) => unescape_key(
+            name.strip_prefix(dict)
+                .and_then(|rest| rest.strip_prefix('/'))
+                .filter(|rest| !rest.contains('/'))?,
+        ),
     };
     Some(match sel.strip.as_deref() {
-        Some(p) => inside.strip_prefix(p).unwrap_or(inside).to_string(),
-        None => inside.to_string(),
+        Some(p) => inside.strip_prefix(p).unwrap_or(&inside).to_string(),
+        None => inside,
     })
 }
 
@@ -59,13 +62,23 @@ pub fn choose(
     req: &SelectionRequest,
 ) -> Result<Selection> {
     // Only a PyTorch file is a tree: npz names use `/` too, but as plain text.
-    let tree =
-        source.format() == Format::PyTorch && source.entries().iter().any(|t| t.name.contains('/'));
+    let torch = source.format() == Format::PyTorch;
     let flat = format != Format::PyTorch || req.model_only;
     let strip = req.strip_prefix.clone();
-    if !flat || !tree {
+    if req.state_dict.is_some() && !(torch && flat) {
+        return Err(Error::Usage(
+            "--state-dict chooses the state dict of a PyTorch input that a flat output (.safetensors, .npz) or --model-only holds".into(),
+        ));
+    }
+    if torch && !flat && strip.is_some() {
+        return Err(Error::Usage(
+            "--strip-prefix renames the tensors of one state dict: with a PyTorch output, add --model-only (the whole tree is otherwise kept as it is)".into(),
+        ));
+    }
+    if !torch || !flat {
         return Ok(Selection { dict: None, strip });
     }
+    let tree = source.entries().iter().any(|t| t.name.contains('/'));
     let dict = match &req.state_dict {
         Some(asked) => {
             let asked = asked.trim_end_matches('/').to_string();
@@ -78,6 +91,7 @@ pub fn choose(
             }
             asked
         }
+        None if !tree => String::new(),
         None => only_dict(source, tables)?,
     };
     Ok(Selection {
@@ -136,6 +150,9 @@ mod tests {
         };
         assert_eq!(out_name("pos_embed", &root).as_deref(), Some("pos_embed"));
         assert_eq!(out_name("optimizer/state/0/exp_avg", &root), None);
+        // Escaped keys come out as they are: a `/` and a `%` inside a key.
+        assert_eq!(out_name("a%2Fb", &root).as_deref(), Some("a/b"));
+        assert_eq!(out_name("100%25", &root).as_deref(), Some("100%"));
         let all = Selection::default();
         assert_eq!(out_name("a/b/c", &all).as_deref(), Some("a/b/c"));
     }

@@ -358,3 +358,156 @@ fn training_checkpoints_warn_of_stale_moments_and_can_keep_only_the_model() {
     assert!(model.find("pos_embed").is_some());
     assert!(model.entries().iter().all(|t| !t.name.contains('/')));
 }
+
+fn edge(name: &str) -> PathBuf {
+    fixture("edge").join(name)
+}
+
+#[test]
+fn storages_outside_named_tensors_are_kept_when_written_back() {
+    // A bare storage beside the weights, and a parameter carrying a tensor attribute: both
+    // written by the framework (fixtures/torch/make_edge_cases.py). Their records must survive.
+    let dir = tempfile::tempdir().unwrap();
+    for file in ["bare_storage.pth", "param_state_tensor.pth"] {
+        let out = dir.path().join(file);
+        let o = posgrid(&[
+            "resize",
+            s(&edge(file)),
+            "-o",
+            s(&out),
+            "--grid",
+            "6",
+            "--slots",
+            "1",
+        ]);
+        assert_eq!(
+            o.status.code(),
+            Some(0),
+            "{file}: {}",
+            String::from_utf8_lossy(&o.stderr)
+        );
+        let before = zip::ZipArchive::new(std::fs::File::open(edge(file)).unwrap()).unwrap();
+        let after = zip::ZipArchive::new(std::fs::File::open(&out).unwrap()).unwrap();
+        let storages = |z: &zip::ZipArchive<std::fs::File>| {
+            z.file_names_raw()
+                .filter(|n| n.windows(6).any(|w| w == b"/data/"))
+                .count()
+        };
+        // The table's old storage is replaced by a new one: the count stays.
+        assert_eq!(storages(&before), storages(&after), "{file}");
+    }
+}
+
+#[test]
+fn empty_and_expanded_tensors_are_read_or_refused_without_a_crash() {
+    let dir = tempfile::tempdir().unwrap();
+    // Empty and 0-dim tensors, as the framework writes them: converted like any other.
+    let out = dir.path().join("z.safetensors");
+    let o = posgrid(&[
+        "resize",
+        s(&edge("zero_dims.pth")),
+        "-o",
+        s(&out),
+        "--grid",
+        "6",
+        "--slots",
+        "1",
+    ]);
+    assert_eq!(
+        o.status.code(),
+        Some(0),
+        "{}",
+        String::from_utf8_lossy(&o.stderr)
+    );
+    let flat = Source::open(&out).unwrap();
+    assert_eq!(flat.find("empty_t").unwrap().shape, vec![0, 5]);
+    assert_eq!(flat.find("scalar").unwrap().shape, Vec::<usize>::new());
+    // 2^61 doubles expanded from one stored value: more bytes than a file can hold.
+    let o = posgrid(&["scan", s(&edge("expand_wrap.pth"))]);
+    assert_eq!(
+        o.status.code(),
+        Some(3),
+        "{}",
+        String::from_utf8_lossy(&o.stderr)
+    );
+    assert!(String::from_utf8_lossy(&o.stderr).contains("bias_all"));
+}
+
+#[test]
+fn dangerous_objects_are_refused_wherever_they_sit() {
+    // os.system handed to functools.partial, and timeit.timeit called on text: neither is the
+    // callable of the call itself, and both must be refused, with nothing run.
+    let marker = fixture("EXECUTED");
+    for file in ["partial_system.pth", "timeit_text.pth"] {
+        let o = posgrid(&["scan", s(&edge(file))]);
+        assert_eq!(o.status.code(), Some(3), "{file}");
+        assert!(
+            String::from_utf8_lossy(&o.stderr).contains("never needs"),
+            "{file}"
+        );
+    }
+    assert!(!marker.exists());
+}
+
+#[test]
+fn flat_outputs_take_keys_as_they_are_and_never_repeat_a_name() {
+    let dir = tempfile::tempdir().unwrap();
+    let out = dir.path().join("k.safetensors");
+    let o = posgrid(&[
+        "resize",
+        s(&edge("key_escapes.pth")),
+        "-o",
+        s(&out),
+        "--grid",
+        "6",
+        "--slots",
+        "1",
+    ]);
+    assert_eq!(
+        o.status.code(),
+        Some(0),
+        "{}",
+        String::from_utf8_lossy(&o.stderr)
+    );
+    let flat = Source::open(&out).unwrap();
+    assert!(flat.find("a/b").is_some() && flat.find("100%").is_some());
+    // module.head.bias and head.bias both become head.bias: refused, naming both.
+    let input = edge("strip_dup.pth");
+    let out = dir.path().join("d.safetensors");
+    let o = posgrid(&[
+        "resize",
+        s(&input),
+        "-o",
+        s(&out),
+        "--grid",
+        "6",
+        "--slots",
+        "1",
+        "--strip-prefix",
+        "module.",
+    ]);
+    assert_eq!(o.status.code(), Some(4));
+    assert!(String::from_utf8_lossy(&o.stderr).contains("model/module.head.bias"));
+    assert!(!out.exists());
+    // Flags that would be ignored are usage errors.
+    let pth = dir.path().join("p.pth");
+    for extra in [["--state-dict", "model"], ["--strip-prefix", "module."]] {
+        let mut args = vec!["resize", s(&input), "-o", s(&pth), "--grid", "6"];
+        args.extend(extra);
+        assert_eq!(posgrid(&args).status.code(), Some(2), "{extra:?}");
+    }
+}
+
+#[test]
+fn ambiguous_names_and_lying_archives_are_refused() {
+    for (file, says) in [
+        ("dup_opaque_key.pth", "same name"),
+        ("zip64_count_lie.pth", "ZIP"),
+    ] {
+        let o = posgrid(&["scan", s(&edge(file))]);
+        assert_eq!(o.status.code(), Some(3), "{file}");
+        let err = String::from_utf8_lossy(&o.stderr);
+        assert!(err.contains(says), "{file}: {err}");
+        assert!(!err.contains("npz"), "{file}: {err}");
+    }
+}

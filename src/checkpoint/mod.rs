@@ -390,6 +390,10 @@ pub trait Reader: TensorSource + std::fmt::Debug {
     fn span(&self, _tensor: &TensorEntry) -> Option<Span<'_>> {
         None
     }
+    /// What a user should know about the container beyond its tensors (shown as warnings).
+    fn notes(&self) -> Vec<String> {
+        Vec::new()
+    }
     /// String metadata the container carries (safetensors `__metadata__`), in file order.
     fn metadata(&self) -> Option<&[(String, String)]> {
         None
@@ -443,7 +447,9 @@ impl Source {
             let named_npz = path
                 .extension()
                 .is_some_and(|e| e.eq_ignore_ascii_case("npz"));
-            if is_zip(&file) && torch::is_torch_zip(&file) {
+            // A PyTorch name with a damaged ZIP inside is reported as a PyTorch file.
+            let named_torch = Format::from_extension(path) == Some(Format::PyTorch);
+            if is_zip(&file) && (named_torch || torch::is_torch_zip(&file)) {
                 Box::new(torch::TorchFile::open(path)?)
             } else if is_zip(&file) {
                 Box::new(npz::Npz::open(path)?)

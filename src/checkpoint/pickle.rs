@@ -62,6 +62,30 @@ use std::fmt;
 /// Index of a node in [`Pickle::nodes`].
 pub type NodeId = usize;
 
+/// A `str` key as it appears in a tensor name: `%` written `%25`, `/` written `%2F`.
+pub fn escape_key(key: &str) -> String {
+    key.replace('%', "%25").replace('/', "%2F")
+}
+
+/// The key an escaped name part stands for (the inverse of [`escape_key`]).
+pub fn unescape_key(part: &str) -> String {
+    let mut out = String::with_capacity(part.len());
+    let mut rest = part;
+    while let Some(i) = rest.find('%') {
+        out.push_str(&rest[..i]);
+        let tail = &rest[i..];
+        let (plain, skip) = match tail.get(..3) {
+            Some("%25") => ('%', 3),
+            Some("%2F") => ('/', 3),
+            _ => ('%', 1),
+        };
+        out.push(plain);
+        rest = &tail[skip..];
+    }
+    out.push_str(rest);
+    out
+}
+
 /// CPython's default recursion limit: its pickler cannot write nesting deeper than this.
 const PYTHON_RECURSION_LIMIT: usize = 1000;
 /// CPython (3.11+) refuses decimal integer text longer than this (`sys.int_info`).
@@ -1477,6 +1501,26 @@ impl Pickle {
         false
     }
 
+    /// Which nodes are reachable from the root (each visited once, without recursion).
+    pub fn reachable(&self) -> Vec<bool> {
+        let mut seen = vec![false; self.nodes.len()];
+        let mut work = vec![self.root];
+        while let Some(id) = work.pop() {
+            if !std::mem::replace(&mut seen[id], true) {
+                work.extend(self.edges(id));
+            }
+        }
+        seen
+    }
+
+    /// The tensor node a named node stands for: a parameter's data, or the node itself.
+    pub fn tensor_of(&self, id: NodeId) -> NodeId {
+        match &self.nodes[id] {
+            Node::Parameter { data, .. } => *data,
+            _ => id,
+        }
+    }
+
     /// How many references each node reachable from the root has (the root counts one).
     fn reference_counts(&self) -> Vec<u32> {
         let mut counts = vec![0u32; self.nodes.len()];
@@ -1608,7 +1652,7 @@ impl Pickle {
             Step::KeyAt(i) => format!("%{{key {i}}}"),
             Step::Named(what) => format!("%{{{what}}}"),
             Step::Key(key) => match &self.nodes[*key] {
-                Node::Str(s) => s.replace('%', "%25").replace('/', "%2F"),
+                Node::Str(s) => escape_key(s),
                 Node::Int(i) => format!("%{{int {i}}}"),
                 Node::Bool(true) => "%{true}".into(),
                 Node::Bool(false) => "%{false}".into(),

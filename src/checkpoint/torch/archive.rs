@@ -76,9 +76,14 @@ impl Archive {
 
     /// The record `<folder>/<name>`.
     pub fn get(&self, name: &str) -> Option<&Record> {
+        self.index_of(name).map(|i| &self.records[i])
+    }
+
+    /// The position of the record `<folder>/<name>` among the records.
+    pub fn index_of(&self, name: &str) -> Option<usize> {
         self.by_name
             .get(&format!("{}/{name}", self.folder))
-            .map(|&i| &self.records[i])
+            .copied()
     }
 
     /// Whether a record `<folder>/<prefix>...` exists.

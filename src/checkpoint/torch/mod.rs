@@ -27,9 +27,10 @@ use crate::error::{Error, Result};
 /// The largest `data.pkl` accepted. Real ones are kilobytes (a training checkpoint's optimizer
 /// state included); each opcode byte can make a node of about a hundred bytes.
 const MAX_PICKLE: u64 = 64 << 20;
-/// The most nodes one `data.pkl` may build: bounds the tree's memory near 1 GiB whatever the
-/// stream, far above what a checkpoint's tree holds.
-const MAX_NODES: usize = 8 << 20;
+/// The most nodes one `data.pkl` may build: bounds the tree's memory (a node takes up to about
+/// two hundred bytes) near 400 MiB whatever the stream, far above what a checkpoint's tree
+/// holds (a few nodes per tensor, and the optimizer's state).
+const MAX_NODES: usize = 2 << 20;
 
 /// How the legacy format starts: protocol 2, then the pickled magic number of that format
 /// (fact of the framework's file format, read off a file it wrote: fixtures/torch/legacy.pth).
@@ -50,6 +51,7 @@ pub fn dtype_of_storage(class: &str) -> Option<Dtype> {
         "CharStorage" => Dtype::I8,
         "ByteStorage" => Dtype::U8,
         "BoolStorage" => Dtype::BOOL,
+        "ComplexFloatStorage" => Dtype::C64,
         _ => return None,
     })
 }
@@ -67,6 +69,7 @@ pub fn storage_of_dtype(dtype: Dtype) -> Option<&'static str> {
         "CharStorage",
         "ByteStorage",
         "BoolStorage",
+        "ComplexFloatStorage",
     ]
     .into_iter()
     .find(|c| dtype_of_storage(c) == Some(dtype))
@@ -101,10 +104,11 @@ pub fn legacy_error(path: &Path) -> Error {
     )
 }
 
-/// Modules whose functions run programs, touch files or the network, or load code, and the
-/// built-in functions that evaluate text or reach attributes: a checkpoint has no reason to
-/// call any of them, so a file that does is refused as hostile (common practice of safe
-/// loaders: such calls are how a malicious pickle runs its payload).
+/// Modules whose functions run programs, touch files or the network, load or evaluate code,
+/// or run a debugger or profiler over code given as text, and the built-in functions that
+/// evaluate text or reach attributes: a checkpoint has no reason to name any of them, so a file
+/// that does is refused as hostile (common practice of safe loaders: such objects are how a
+/// malicious pickle runs its payload, called directly or handed to another callable).
 const DANGEROUS_MODULES: &[&str] = &[
     "os",
     "posix",
@@ -134,6 +138,19 @@ const DANGEROUS_MODULES: &[&str] = &[
     "ftplib",
     "smtplib",
     "telnetlib",
+    "timeit",
+    "pdb",
+    "bdb",
+    "cProfile",
+    "profile",
+    "trace",
+    "doctest",
+    "pydoc",
+    "imp",
+    "zipimport",
+    "commands",
+    "popen2",
+    "platform",
 ];
 const DANGEROUS_BUILTINS: &[&str] = &[
     "eval",
@@ -156,33 +173,53 @@ const DANGEROUS_BUILTINS: &[&str] = &[
     "file",
 ];
 
-/// Why a global, if called, marks the file as hostile.
+/// Whether a global marks the file as hostile wherever it appears.
 fn dangerous(module: &str, name: &str) -> bool {
     let top = module.split('.').next().unwrap_or(module);
     DANGEROUS_MODULES.contains(&top)
         || (matches!(module, "builtins" | "__builtin__") && DANGEROUS_BUILTINS.contains(&name))
         || (module == "operator" && matches!(name, "attrgetter" | "methodcaller"))
+        || module.starts_with("numpy.testing")
 }
 
-/// Refuse a pickle that would call a dangerous function if it were executed (posgrid never
-/// executes it; the refusal tells the user what the file is).
-fn refuse_dangerous_calls(path: &Path, p: &Pickle) -> Result<()> {
-    for node in &p.nodes {
-        let Node::Opaque { callable, .. } = node else {
+/// Globals of the framework's own checkpoint vocabulary (the rebuild functions, storage
+/// classes, ordered dicts); anything else is carried through inert and named in a note.
+fn framework_global(module: &str, name: &str) -> bool {
+    matches!(
+        (module, name),
+        ("collections", "OrderedDict")
+            | ("torch._utils", "_rebuild_tensor_v2")
+            | ("torch._utils", "_rebuild_parameter")
+            | ("torch._utils", "_rebuild_parameter_with_state")
+    ) || (module == "torch" && dtype_of_storage(name).is_some())
+}
+
+/// Refuse a pickle that names a dangerous object anywhere in its tree (posgrid never runs it;
+/// the refusal tells the user what the file is); return the other foreign globals.
+fn check_globals(path: &Path, p: &Pickle) -> Result<Vec<String>> {
+    let reachable = p.reachable();
+    let mut foreign = Vec::new();
+    for (id, node) in p.nodes.iter().enumerate() {
+        let Node::Global { module, name } = node else {
             continue;
         };
-        if let Node::Global { module, name } = &p.nodes[*callable] {
-            if dangerous(module, name) {
-                return Err(invalid(
-                    path,
-                    format!(
-                        "data.pkl calls {module}.{name}, which a checkpoint never needs: the file is built to run code when loaded. Nothing was executed; do not load it with the framework"
-                    ),
-                ));
-            }
+        if !reachable[id] {
+            continue;
+        }
+        if dangerous(module, name) {
+            return Err(invalid(
+                path,
+                format!(
+                    "data.pkl names {module}.{name}, which a checkpoint never needs: the file is built to run code when loaded. Nothing was executed; do not load it with the framework"
+                ),
+            ));
+        }
+        let full = format!("{module}.{name}");
+        if !framework_global(module, name) && !foreign.contains(&full) {
+            foreign.push(full);
         }
     }
-    Ok(())
+    Ok(foreign)
 }
 
 /// Where one tensor's elements lie.
@@ -212,6 +249,8 @@ pub struct TorchFile {
     /// Per entry, the node named (a tensor or a parameter) and the tensor node itself.
     nodes: Vec<(NodeId, NodeId)>,
     by_name: HashMap<String, usize>,
+    /// Globals outside the framework's checkpoint vocabulary, carried through inert.
+    foreign: Vec<String>,
 }
 
 impl std::fmt::Debug for TorchFile {
@@ -255,7 +294,7 @@ impl TorchFile {
         };
         let pickle =
             pickle::parse(&bytes, &limits).map_err(|e| invalid(path, format!("data.pkl: {e}")))?;
-        refuse_dangerous_calls(path, &pickle)?;
+        let foreign = check_globals(path, &pickle)?;
         let mut ckpt = TorchFile {
             path: path.to_path_buf(),
             file,
@@ -266,19 +305,73 @@ impl TorchFile {
             views: Vec::new(),
             nodes: Vec::new(),
             by_name: HashMap::new(),
+            foreign,
         };
+        ckpt.check_storages()?;
         for (name, named) in ckpt.pickle.tensors() {
-            let tensor = match &ckpt.pickle.nodes[named] {
-                Node::Parameter { data, .. } => *data,
-                _ => named,
-            };
+            let tensor = ckpt.pickle.tensor_of(named);
             let (entry, view) = ckpt.view(&name, tensor)?;
-            ckpt.by_name.insert(name, ckpt.entries.len());
+            if ckpt
+                .by_name
+                .insert(name.clone(), ckpt.entries.len())
+                .is_some()
+            {
+                return Err(invalid(
+                    path,
+                    format!("two tensors have the same name \"{name}\" (a key set twice); which one is meant is ambiguous"),
+                ));
+            }
             ckpt.entries.push(entry);
             ckpt.views.push(view);
             ckpt.nodes.push((named, tensor));
         }
         Ok(ckpt)
+    }
+
+    /// Every storage the tree refers to — through a tensor or on its own — must name a
+    /// record of the archive that holds exactly its elements.
+    fn check_storages(&self) -> Result<()> {
+        let reachable = self.pickle.reachable();
+        for (id, node) in self.pickle.nodes.iter().enumerate() {
+            if reachable[id] && matches!(node, Node::Storage { .. }) {
+                self.storage_record(id)
+                    .map_err(|why| invalid(&self.path, format!("data.pkl: {why}")))?;
+            }
+        }
+        Ok(())
+    }
+
+    /// The element type and record of a storage node, checked; or why it is refused.
+    fn storage_record(&self, storage: NodeId) -> std::result::Result<(Dtype, usize), String> {
+        let Node::Storage {
+            class, key, numel, ..
+        } = &self.pickle.nodes[storage]
+        else {
+            return Err("its storage is not a storage record".into());
+        };
+        let dtype = dtype_of_storage(class)
+            .ok_or_else(|| format!("storage type {class} is not one posgrid reads"))?;
+        if key.is_empty() || key.contains('/') || key.contains('\\') || key == ".." {
+            return Err(format!("storage key {key:?} is not a plain record name"));
+        }
+        let record = self
+            .archive
+            .index_of(&format!("data/{key}"))
+            .ok_or_else(|| format!("storage record data/{key} is missing"))?;
+        let r = &self.archive.records[record];
+        if !r.stored {
+            return Err(format!(
+                "storage record data/{key} is compressed; the framework stores storages as they are"
+            ));
+        }
+        let elem = (dtype.bitsize() / 8).max(1) as u64;
+        if numel.checked_mul(elem) != Some(r.size) {
+            return Err(format!(
+                "storage record data/{key} holds {} bytes, not the {numel} elements of {dtype} its reference says",
+                r.size
+            ));
+        }
+        Ok((dtype, record))
     }
 
     /// Check one tensor node against its storage record.
@@ -294,57 +387,42 @@ impl TorchFile {
         else {
             return Err(bad("a parameter that does not wrap a tensor".into()));
         };
-        let Node::Storage {
-            class, key, numel, ..
-        } = &self.pickle.nodes[*storage]
-        else {
-            return Err(bad("its storage is not a storage record".into()));
+        let (dtype, record) = self.storage_record(*storage).map_err(bad)?;
+        let Node::Storage { numel, .. } = &self.pickle.nodes[*storage] else {
+            unreachable!("checked by storage_record")
         };
-        let dtype = dtype_of_storage(class)
-            .ok_or_else(|| bad(format!("storage type {class} is not one posgrid reads")))?;
-        if key.is_empty() || key.contains('/') || key.contains('\\') || key == ".." {
-            return Err(bad(format!(
-                "storage key {key:?} is not a plain record name"
-            )));
-        }
-        let record = self
-            .archive
-            .records
-            .iter()
-            .position(|r| r.name == format!("{}/data/{key}", self.archive.folder))
-            .ok_or_else(|| bad(format!("its storage record data/{key} is missing")))?;
-        let r = &self.archive.records[record];
-        if !r.stored {
-            return Err(bad(format!(
-                "storage record data/{key} is compressed; the framework stores storages as they are"
-            )));
-        }
         let elem = (dtype.bitsize() / 8).max(1);
-        if numel.checked_mul(elem as u64) != Some(r.size) {
+        let r = &self.archive.records[record];
+        let outside = || {
+            bad(format!("its view (offset {offset}, shape {size:?}, strides {stride:?}) does not lie inside its storage of {numel} elements"))
+        };
+        let count = check_view(size, stride, *offset, *numel).ok_or_else(outside)?;
+        // Byte positions: checked, so a view of 2^61 elements of one stored value cannot wrap.
+        let begin = offset
+            .checked_mul(elem as u64)
+            .and_then(|o| o.checked_add(r.data_start));
+        let len = count.checked_mul(elem as u64);
+        let (Some(begin), Some(len)) = (begin, len) else {
             return Err(bad(format!(
-                "storage record data/{key} holds {} bytes, not the {numel} elements of {dtype} its reference says",
-                r.size
+                "its shape {size:?} holds more bytes than a file can"
             )));
-        }
-        let count = check_view(size, stride, *offset, *numel)
-            .ok_or_else(|| bad(format!("its view (offset {offset}, shape {size:?}, strides {stride:?}) does not lie inside its storage of {numel} elements")))?;
-        let shape: Vec<usize> = size.iter().map(|&d| d as usize).collect();
-        let begin = r.data_start + offset * elem as u64;
+        };
+        let end = begin.checked_add(len).ok_or_else(outside)?;
         let view = View {
             record,
             elem,
             offset: *offset,
             shape: size.clone(),
             stride: stride.clone(),
-            contiguous: is_contiguous(size, stride),
+            contiguous: count == 0 || is_contiguous(size, stride),
             whole_record: *offset == 0 && count == *numel,
         };
         let entry = TensorEntry {
             name: name.to_string(),
             dtype,
-            shape,
+            shape: size.iter().map(|&d| d as usize).collect(),
             begin,
-            end: begin + count * elem as u64,
+            end,
         };
         Ok((entry, view))
     }
@@ -376,7 +454,7 @@ impl TorchFile {
         items
             .iter()
             .filter_map(|&(k, _)| match &self.pickle.nodes[k] {
-                Node::Str(s) => Some(s.replace('%', "%25").replace('/', "%2F")),
+                Node::Str(s) => Some(pickle::escape_key(s)),
                 _ => None,
             })
             .collect()
@@ -418,8 +496,9 @@ impl TorchFile {
     /// A strided view gathered into C order.
     fn gather(&self, t: &TensorEntry, v: &View) -> Result<Vec<u8>> {
         let r = &self.archive.records[v.record];
-        let span = span_elements(&v.shape, &v.stride);
-        let len = usize::try_from(span * v.elem as u64).unwrap_or(usize::MAX);
+        // Checked when the file was opened; an empty view is contiguous and never gathered.
+        let span = span_elements_checked(&v.shape, &v.stride).unwrap_or(0);
+        let len = usize::try_from(span.saturating_mul(v.elem as u64)).unwrap_or(usize::MAX);
         let mut storage = crate::values::try_filled(len, 0u8)
             .map_err(|e| crate::values::out_of_memory(&self.path, &t.name, e))?;
         self.file
@@ -451,12 +530,8 @@ fn check_view(size: &[u64], stride: &[u64], offset: u64, numel: u64) -> Option<u
 /// How many elements a view spans from its first to its last, inclusive.
 fn span_elements_checked(size: &[u64], stride: &[u64]) -> Option<u64> {
     size.iter().zip(stride).try_fold(1u64, |acc, (&d, &s)| {
-        acc.checked_add((d - 1).checked_mul(s)?)
+        acc.checked_add(d.checked_sub(1)?.checked_mul(s)?)
     })
-}
-
-fn span_elements(size: &[u64], stride: &[u64]) -> u64 {
-    span_elements_checked(size, stride).expect("checked when the file was opened")
 }
 
 /// Whether strides are the C-order strides of the shape (dimensions of one element ignored).
@@ -518,6 +593,15 @@ impl Reader for TorchFile {
     }
     fn file_len(&self) -> u64 {
         self.file_len
+    }
+    fn notes(&self) -> Vec<String> {
+        if self.foreign.is_empty() {
+            return Vec::new();
+        }
+        vec![format!(
+            "data.pkl names objects outside the framework's checkpoint types ({}); posgrid carries them through unchanged and never runs them, but the framework's safe loader (weights_only) will ask you to allow them",
+            self.foreign.join(", ")
+        )]
     }
     fn span(&self, t: &TensorEntry) -> Option<Span<'_>> {
         self.view_of(t).contiguous.then_some(Span {

@@ -83,6 +83,7 @@ impl Writer for TorchWriter {
 
     fn preview(&self, out: &Output) -> Result<Preview> {
         let records = records(out)?;
+        check_names(&records)?;
         Ok(Preview {
             size: layout(&records).total,
             layout: None,
@@ -97,6 +98,7 @@ impl Writer for TorchWriter {
         progress: &mut dyn Progress,
     ) -> Result<Written> {
         let records = records(out)?;
+        check_names(&records)?;
         write_file(dest, |file| write_archive(&records, file, progress))
     }
 }
@@ -144,6 +146,17 @@ fn fresh_key(taken: &mut HashSet<String>) -> String {
             return key;
         }
         n += 1;
+    }
+}
+
+/// A ZIP record name is at most 65535 bytes long.
+fn check_names(records: &[RecordOut]) -> Result<()> {
+    match records.iter().find(|r| r.name.len() > u16::MAX as usize) {
+        Some(r) => Err(Error::Usage(format!(
+            "the record name of {} bytes is too long for a ZIP archive; write a .safetensors output instead",
+            r.name.len()
+        ))),
+        None => Ok(()),
     }
 }
 
@@ -242,22 +255,16 @@ fn retarget(tree: &mut Pickle, tensor: NodeId, key: &str, shape: &[usize]) {
     }
 }
 
-/// Keys of the storages the tree's tensors use.
+/// Keys of every storage the tree still refers to — through a tensor, a parameter's state,
+/// or on its own.
 fn storage_keys(tree: &Pickle) -> HashSet<String> {
-    tree.tensors()
-        .into_iter()
-        .filter_map(|(_, id)| {
-            let tensor = match &tree.nodes[id] {
-                Node::Parameter { data, .. } => *data,
-                _ => id,
-            };
-            match &tree.nodes[tensor] {
-                Node::Tensor { storage, .. } => match &tree.nodes[*storage] {
-                    Node::Storage { key, .. } => Some(key.clone()),
-                    _ => None,
-                },
-                _ => None,
-            }
+    let reachable = tree.reachable();
+    tree.nodes
+        .iter()
+        .zip(reachable)
+        .filter_map(|(node, live)| match node {
+            Node::Storage { key, .. } if live => Some(key.clone()),
+            _ => None,
         })
         .collect()
 }
