@@ -119,7 +119,8 @@ impl DiscoveryArgs {
 
 #[derive(Debug, Args)]
 pub struct ScanArgs {
-    /// The checkpoint: a .safetensors or .npz file, or a sharded set (directory or index .json).
+    /// The checkpoint: a .safetensors, .npz or PyTorch (.pth, .pt, .bin) file, or a sharded set
+    /// (directory or index .json).
     pub checkpoint: PathBuf,
     /// Print one JSON object on stdout instead of the summary.
     #[arg(long)]
@@ -131,8 +132,8 @@ pub struct ScanArgs {
 #[derive(Debug, Args)]
 #[command(group(clap::ArgGroup::new("target").required(true).args(["grid", "image"])))]
 pub struct ResizeArgs {
-    /// The checkpoint to read: a .safetensors or .npz file, or a sharded set (its directory or
-    /// index .json). It is never changed.
+    /// The checkpoint to read: a .safetensors, .npz or PyTorch (.pth, .pt, .bin) file, or a
+    /// sharded set (its directory or index .json). It is never changed.
     pub checkpoint: PathBuf,
     /// Where to write the patched checkpoint (a directory for a sharded set).
     #[arg(short, long, value_name = "OUT")]
@@ -200,7 +201,7 @@ kept as they are. Learned tables are resampled as usual."
     /// Resize tables that hold NaN or infinity instead of refusing them.
     #[arg(long)]
     pub allow_nonfinite: bool,
-    /// Output container: safetensors or npz (default: OUT's extension, else the input's).
+    /// Output container: safetensors, npz or pytorch (default: OUT's extension, else the input's).
     #[arg(long, value_name = "FORMAT", value_parser = parse_text::<Format>)]
     pub format: Option<Format>,
     /// Which state dict of a PyTorch file a flat output holds (its key path, e.g. model).
