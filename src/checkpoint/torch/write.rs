@@ -5,6 +5,7 @@
 //! of tensors, as the framework saves a state dict. Records are stored, each one's data aligned
 //! to 64 bytes (so the framework can map the file), with its CRC-32; ZIP64 where sizes need it.
 
+use std::borrow::Cow;
 use std::collections::HashSet;
 
 use super::{storage_of_dtype, TorchFile};
@@ -28,10 +29,8 @@ pub struct TorchWriter;
 
 /// Where one record's bytes come from.
 enum Body<'a> {
-    /// Bytes made here (the pickle, small text records, new storages).
-    Bytes(Vec<u8>),
-    /// New bytes of an output entry.
-    Borrowed(&'a [u8]),
+    /// Bytes made here (the pickle, small text records) or an entry's new bytes.
+    Bytes(Cow<'a, [u8]>),
     /// A run of a source file, copied as it is: a record of a PyTorch source (with the CRC-32
     /// and size its archive records) or a tensor's span (CRC-32 computed by reading it once).
     Copy {
@@ -54,7 +53,6 @@ impl RecordOut<'_> {
     fn sizes(&self) -> (u64, u64) {
         match &self.body {
             Body::Bytes(b) => (b.len() as u64, b.len() as u64),
-            Body::Borrowed(b) => (b.len() as u64, b.len() as u64),
             Body::Copy { span, size, .. } => (span.len, *size),
             Body::Stream(_, e) => (e.byte_len(), e.byte_len()),
         }
@@ -121,11 +119,7 @@ fn records<'a>(out: &'a Output<'a>) -> Result<Vec<RecordOut<'a>>> {
 /// Whether the output holds exactly the source's tensors, under the same names.
 fn same_tensors(src: &TorchFile, out: &Output) -> bool {
     use crate::checkpoint::TensorSource;
-    src.entries().len() == out.entries.len()
-        && out
-            .entries
-            .iter()
-            .all(|e| e.name == e.origin.name && src.nodes_of(&e.name).is_some())
+    src.entries().len() == out.entries.len() && out.entries.iter().all(|e| e.name == e.origin.name)
 }
 
 /// C-order strides of a shape.
@@ -184,7 +178,7 @@ fn patched<'a>(src: &'a TorchFile, out: &'a Output<'a>) -> Result<Vec<RecordOut<
     let pickle_name = format!("{folder}/data.pkl");
     let mut records = vec![RecordOut {
         name: pickle_name.clone(),
-        body: Body::Bytes(pickle::write(&tree)),
+        body: Body::Bytes(Cow::Owned(pickle::write(&tree))),
     }];
     for r in &src.archive().records {
         let unused_storage = r
@@ -216,7 +210,7 @@ fn patched<'a>(src: &'a TorchFile, out: &'a Output<'a>) -> Result<Vec<RecordOut<
         .map_or(1, |i| i + 1);
     let new_records = new_storages.into_iter().map(|(key, bytes)| RecordOut {
         name: format!("{storage_prefix}{key}"),
-        body: Body::Borrowed(bytes),
+        body: Body::Bytes(Cow::Borrowed(bytes)),
     });
     records.splice(at..at, new_records);
     Ok(records)
@@ -326,7 +320,7 @@ fn fresh<'a>(out: &'a Output<'a>) -> Result<Vec<RecordOut<'a>>> {
         storages.push(RecordOut {
             name: format!("{FRESH_FOLDER}/data/{i}"),
             body: match (entry.new, out.source.span(entry.origin)) {
-                (Some(bytes), _) => Body::Borrowed(bytes),
+                (Some(bytes), _) => Body::Bytes(Cow::Borrowed(bytes)),
                 (None, Some(span)) => Body::Copy {
                     span,
                     crc32: None,
@@ -346,12 +340,12 @@ fn fresh<'a>(out: &'a Output<'a>) -> Result<Vec<RecordOut<'a>>> {
     tree.root = root;
     let text = |name: &str, body: &str| RecordOut {
         name: format!("{FRESH_FOLDER}/{name}"),
-        body: Body::Bytes(body.as_bytes().to_vec()),
+        body: Body::Bytes(Cow::Owned(body.as_bytes().to_vec())),
     };
     let mut records = vec![
         RecordOut {
             name: format!("{FRESH_FOLDER}/data.pkl"),
-            body: Body::Bytes(pickle::write(&tree)),
+            body: Body::Bytes(Cow::Owned(pickle::write(&tree))),
         },
         text("byteorder", "little"),
     ];
@@ -476,7 +470,6 @@ fn write_archive(
 fn record_crc(r: &RecordOut) -> Result<u32> {
     Ok(match &r.body {
         Body::Bytes(b) => crc32fast::hash(b),
-        Body::Borrowed(b) => crc32fast::hash(b),
         Body::Copy {
             crc32: Some(crc), ..
         } => *crc,
@@ -512,7 +505,6 @@ fn span_crc(span: &Span) -> Result<u32> {
 fn write_body(r: &RecordOut, file: &mut AtomicFile, progress: &mut dyn Progress) -> Result<()> {
     match &r.body {
         Body::Bytes(b) => file.write(b, progress),
-        Body::Borrowed(b) => file.write(b, progress),
         Body::Copy { span, .. } => {
             file.copy_from(span.file, span.path, span.offset, span.len, progress)
         }
