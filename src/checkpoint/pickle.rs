@@ -1218,7 +1218,10 @@ impl<'a> Parser<'a> {
             return Err("first field is not 'storage'");
         }
         let class = match field(class) {
-            Node::Global { module, name } if module == "torch" && name.ends_with("Storage") => {
+            Node::Global { module, name }
+                if (module == "torch" || module == "torch.storage")
+                    && name.ends_with("Storage") =>
+            {
                 name.clone()
             }
             _ => return Err("second field is not a torch storage class"),

@@ -349,8 +349,14 @@ impl TorchFile {
         else {
             return Err("its storage is not a storage record".into());
         };
-        let dtype = dtype_of_storage(class)
-            .ok_or_else(|| format!("storage type {class} is not one posgrid reads"))?;
+        let dtype = dtype_of_storage(class).ok_or_else(|| match class.as_str() {
+            "UntypedStorage" => {
+                "an untyped storage (newer framework versions save uint16, uint32, \
+                uint64 and float8 tensors so), which posgrid does not read yet"
+                    .to_string()
+            }
+            _ => format!("storage type {class} is not one posgrid reads"),
+        })?;
         if key.is_empty() || key.contains('/') || key.contains('\\') || key == ".." {
             return Err(format!("storage key {key:?} is not a plain record name"));
         }
