@@ -343,6 +343,8 @@ fn training_checkpoints_warn_of_stale_moments_and_can_keep_only_the_model() {
     let warnings = report["warnings"].to_string();
     assert!(warnings.contains("exp_avg"), "{warnings}");
     assert!(warnings.contains("--model-only"), "{warnings}");
+    // The namespace and numpy scalar are carried through inert, and named.
+    assert!(warnings.contains("argparse.Namespace"), "{warnings}");
     let out = dir.path().join("m.pth");
     let report = resize("training.pth", &out, &["--model-only"]);
     let dropped: Vec<&str> = report["dropped"]

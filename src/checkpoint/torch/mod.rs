@@ -635,7 +635,7 @@ impl Reader for TorchFile {
             return Vec::new();
         }
         vec![format!(
-            "data.pkl names objects outside the framework's checkpoint types ({}); posgrid carries them through unchanged and never runs them, but the framework's safe loader (weights_only) will ask you to allow them",
+            "data.pkl names objects outside the framework's checkpoint types ({}); posgrid carries them through unchanged and never runs them, but the framework's safe loader (weights_only) may ask you to allow them",
             self.foreign.join(", ")
         )]
     }
