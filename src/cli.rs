@@ -304,27 +304,32 @@ fn map_cmd(args: MapArgs) -> Result<i32> {
         args.force,
         args.memory_limit,
     )?;
-    for w in &report.warnings {
-        eprintln!("warning: {w}");
-    }
+    print_warnings(&report.warnings);
     if args.json {
         print_json(&report);
     } else {
-        print!("{}", report::map_text(&report));
+        print_text(&report::map_text(&report));
     }
     Ok(EXIT_OK)
 }
 
-fn print_json<T: serde::Serialize>(value: &T) {
-    println!(
-        "{}",
-        serde_json::to_string_pretty(value).expect("reports serialise")
-    );
+/// Results on stdout. A closed or full stdout (a pipe whose reader left, /dev/full) loses the
+/// printout but not the outcome: the work is done and the exit status still tells.
+fn print_text(text: &str) {
+    use std::io::Write;
+    let mut out = std::io::stdout().lock();
+    let _ = out.write_all(text.as_bytes()).and_then(|()| out.flush());
 }
 
-/// Warnings go to stderr, so stdout holds only the result a script reads.
+fn print_json<T: serde::Serialize>(value: &T) {
+    print_text(&(serde_json::to_string_pretty(value).expect("reports serialise") + "\n"));
+}
+
+/// Warnings go to stderr, so stdout holds only the result a script reads; a closed stderr
+/// loses them, nothing else.
 fn print_warnings(warnings: &[String]) {
-    eprint!("{}", report::warnings_text(warnings));
+    use std::io::Write;
+    let _ = std::io::stderr().write_all(report::warnings_text(warnings).as_bytes());
 }
 
 /// A `--tensor` name the checkpoint does not hold is an error for every command (exit 4).
@@ -351,7 +356,7 @@ fn scan(args: ScanArgs) -> Result<i32> {
     if args.json {
         print_json(&report);
     } else {
-        print!("{}", report::scan_text(&report));
+        print_text(&report::scan_text(&report));
     }
     print_warnings(&report.discovery.warnings);
     Ok(if report.is_conclusive() {
@@ -409,7 +414,7 @@ fn resize_cmd(args: ResizeArgs) -> Result<i32> {
     if args.json {
         print_json(&report);
     } else if !args.quiet {
-        print!("{}", report::resize_text(&report));
+        print_text(&report::resize_text(&report));
     }
     if !args.quiet {
         print_warnings(&report.warnings);

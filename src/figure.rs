@@ -241,6 +241,14 @@ pub fn write_png(path: &Path, png: &[u8], force: bool, input: &Path) -> Result<(
     out.commit()
 }
 
+/// A figure may not land among the files of an input set.
+fn refuse_inside_set(source: &Source, output: &Path) -> Result<()> {
+    match source.downcast::<crate::checkpoint::sharded::ShardedSet>() {
+        Some(set) => write::outside_set(output, set.dir()),
+        None => Ok(()),
+    }
+}
+
 /// The whole `map` command as a library call. `memory_limit` bounds the tables read, the maps
 /// and the score together.
 pub fn run(
@@ -257,11 +265,13 @@ pub fn run(
         write::check_destination(input, output, force)?;
     }
     let ckpt = Source::open(before_path)?;
+    refuse_inside_set(&ckpt, output)?;
     let before = load_table(&ckpt, hints, None, memory_limit)?;
     let left = memory_limit.saturating_sub(table_f32_bytes(&before.table));
     let after = match after_path {
         Some(p) => {
             let ck = Source::open(p)?;
+            refuse_inside_set(&ck, output)?;
             // The same table by name; its grid comes from the file, not from the hints.
             let after_hints = Hints {
                 tensors: vec![before.table.name.clone()],

@@ -356,6 +356,10 @@ fn check_outputs(source: &Source, job: &ResizeJob, format: Format) -> Result<()>
         }
         _ => write::check_destination(&job.input, &job.output, job.force)?,
     }
+    if let Some(set) = set {
+        // A set converted to one file must not land among the files it is read from.
+        write::outside_set(&job.output, set.dir())?;
+    }
     let Some(png) = &job.map else {
         return Ok(());
     };

@@ -167,6 +167,21 @@ pub fn inside(path: &Path, dir: &Path) -> bool {
     resolved(path).starts_with(resolved(dir))
 }
 
+/// Refuse an output file inside the directory of an input set: it could replace a shard, the
+/// index or a file copied beside them.
+pub fn outside_set(output: &Path, set_dir: &Path) -> Result<()> {
+    if inside(output, set_dir) {
+        return Err(Error::write(
+            output,
+            format!(
+                "is inside the directory of the input set {}; choose a path outside it",
+                set_dir.display()
+            ),
+        ));
+    }
+    Ok(())
+}
+
 fn parent_dir(path: &Path) -> PathBuf {
     match path.parent() {
         Some(p) if !p.as_os_str().is_empty() => p.to_path_buf(),
@@ -184,7 +199,7 @@ fn create_sibling<T>(
     make: impl Fn(&Path) -> io::Result<T>,
 ) -> Result<(PathBuf, T)> {
     let what = if is_dir { "directory" } else { "file" };
-    temp::remove_stale(final_path);
+    temp::remove_stale(final_path, is_dir);
     let dir = parent_dir(final_path);
     let base = final_path.file_name().unwrap_or_default().as_bytes();
     let mut list = temporaries();
@@ -696,8 +711,6 @@ enum Installed {
     New,
     /// The old one now sits at the temporary's path.
     Swapped,
-    /// The old one is gone (a file system without RENAME_EXCHANGE).
-    Replaced,
     /// The old directory was moved aside to this (registered) path.
     Aside(PathBuf),
 }
@@ -727,6 +740,8 @@ pub fn commit_all(mut items: Vec<Pending>) -> Result<Vec<String>> {
             }
         }
     }
+    // From here the outputs are in place: an interruption must not say otherwise.
+    signals::mark_committed();
     let mut leftovers = Vec::new();
     for (item, how) in items.iter_mut().zip(done) {
         let (_, final_path, is_dir, _) = item.parts();
@@ -743,7 +758,7 @@ pub fn commit_all(mut items: Vec<Pending>) -> Result<Vec<String>> {
                 final_path,
                 is_dir,
             }),
-            Installed::New | Installed::Replaced => deregister(&mut list, &temp),
+            Installed::New => deregister(&mut list, &temp),
         }
     }
     drop(list);
@@ -791,17 +806,15 @@ fn install(item: &Pending, list: &mut Vec<Temporary>) -> Result<Installed> {
     if rename::exchange(temp, final_path).map_err(failed)? {
         return Ok(Installed::Swapped);
     }
-    if !is_dir {
-        fs::rename(temp, final_path).map_err(failed)?;
-        return Ok(Installed::Replaced);
-    }
+    // No exchange on this file system: the old output is moved aside (registered, so an
+    // interruption removes nothing that is not ours) and can be put back if a later step fails.
     let base = final_path.file_name().unwrap_or_default().as_bytes();
     let aside = parent_dir(final_path).join(temp::name(base, std::process::id(), 100));
     fs::rename(final_path, &aside).map_err(failed)?;
     list.push(Temporary {
         path: aside.clone(),
         output: final_path.to_path_buf(),
-        is_dir: true,
+        is_dir,
     });
     if let Err(e) = fs::rename(temp, final_path) {
         let _ = fs::rename(&aside, final_path);
@@ -838,7 +851,6 @@ fn undo(item: &Pending, how: &Installed, list: &mut Vec<Temporary>) {
     let _ = match how {
         Installed::New => fs::rename(final_path, temp),
         Installed::Swapped => rename::exchange(temp, final_path).map(|_| ()),
-        Installed::Replaced => Ok(()),
         Installed::Aside(old) => {
             let back = fs::rename(final_path, temp).and_then(|()| fs::rename(old, final_path));
             deregister(list, old);

@@ -20,6 +20,13 @@ use crate::error::EXIT_INTERRUPTED;
 const GRACE: Duration = Duration::from_millis(500);
 
 static INTERRUPTED: AtomicBool = AtomicBool::new(false);
+/// Set once every output of the run is in place.
+static COMMITTED: AtomicBool = AtomicBool::new(false);
+
+/// Record that the outputs are in place: an interruption after this says so.
+pub(crate) fn mark_committed() {
+    COMMITTED.store(true, Ordering::SeqCst);
+}
 static INSTALLED: OnceLock<()> = OnceLock::new();
 static TEMPORARIES: Mutex<Vec<Temporary>> = Mutex::new(Vec::new());
 
@@ -115,12 +122,22 @@ fn end_interrupted() -> ! {
 }
 
 fn exit_locked(_held: MutexGuard<'static, Vec<Temporary>>, output: Option<&Path>) -> ! {
-    let message = match output {
-        Some(p) => format!(
+    let committed = COMMITTED.load(Ordering::SeqCst);
+    let message = match (output, committed) {
+        (Some(p), true) => format!(
+            "posgrid: {}: interrupted after the output was put in place; it is complete",
+            p.display()
+        ),
+        (None, true) => {
+            "posgrid: interrupted after the output was put in place; it is complete".into()
+        }
+        (Some(p), false) => format!(
             "posgrid: {}: interrupted; the output was not written and nothing was left behind",
             p.display()
         ),
-        None => "posgrid: interrupted; nothing was written and nothing was left behind".into(),
+        (None, false) => {
+            "posgrid: interrupted; nothing was written and nothing was left behind".into()
+        }
     };
     // A closed terminal (SIGHUP) makes this write fail; the exit status still tells.
     let _ = writeln!(std::io::stderr(), "{message}");

@@ -68,22 +68,34 @@ fn gone(pid: u32) -> bool {
 
 /// Remove temporaries for `output` (beside it) whose owner process no longer exists.
 /// Best effort: what cannot be removed stays for the next run.
-pub(crate) fn remove_stale(output: &Path) {
+pub(crate) fn remove_stale(output: &Path, output_is_dir: bool) {
     let Some(output_name) = output.file_name() else {
         return;
     };
     let Ok(entries) = fs::read_dir(super::parent_dir(output)) else {
         return;
     };
+    let own = std::process::id();
     for entry in entries.flatten() {
         let owner = owner(entry.file_name().as_bytes(), output_name.as_bytes());
-        if !owner.is_some_and(|pid| pid != std::process::id() && gone(pid)) {
+        let path = entry.path();
+        // A name with this process's id that this process did not make was left by an earlier
+        // process that had the same id (a container's first process always has).
+        let stale = owner.is_some_and(|pid| {
+            if pid == own {
+                !super::signals::temporaries().iter().any(|t| t.path == path)
+            } else {
+                gone(pid)
+            }
+        });
+        if !stale {
             continue;
         }
-        let path = entry.path();
-        // file_type does not follow links: a link is removed, never what it points to.
+        // file_type does not follow links: a link is removed, never what it points to. A
+        // directory is only ever a set's temporary: never removed beside a file output.
         let _ = match entry.file_type() {
-            Ok(t) if t.is_dir() => fs::remove_dir_all(&path),
+            Ok(t) if t.is_dir() && output_is_dir => fs::remove_dir_all(&path),
+            Ok(t) if t.is_dir() => Ok(()),
             _ => fs::remove_file(&path),
         };
     }
@@ -116,5 +128,23 @@ mod tests {
         ] {
             assert_eq!(owner(bad.as_bytes(), b"out.safetensors"), None, "{bad}");
         }
+    }
+
+    #[test]
+    fn leftovers_of_an_earlier_process_with_our_id_are_stale_but_directories_stay_beside_files() {
+        // In a container every run may get the same process id: a temporary with our id that
+        // this process did not make was left by an earlier run.
+        let dir = tempfile::tempdir().unwrap();
+        let out = dir.path().join("out.safetensors");
+        let own = std::process::id();
+        let left = dir.path().join(name(b"out.safetensors", own, 7));
+        fs::write(&left, b"partial").unwrap();
+        // A directory named like a file output's temporary is not ours to delete.
+        let odd = dir.path().join(name(b"out.safetensors", own, 8));
+        fs::create_dir(&odd).unwrap();
+        fs::write(odd.join("user-file"), b"keep").unwrap();
+        remove_stale(&out, false);
+        assert!(!left.exists());
+        assert!(odd.join("user-file").exists());
     }
 }
