@@ -566,7 +566,7 @@ pub fn recognise_previous_set(output: &Path, input_dir: &Path) -> Result<()> {
         Some(l) => l,
         None => {
             return refuse(format!(
-                "its index \"{index}\" is not a readable shard index"
+                "its index \"{index}\" is not a shard index that posgrid wrote (it has no \"posgrid\" record in its metadata)"
             ))
         }
     };
@@ -596,6 +596,10 @@ fn index_shards(path: &Path) -> Option<Vec<String>> {
     let mut text = Vec::new();
     file.take(INDEX_LIMIT).read_to_end(&mut text).ok()?;
     let index: serde_json::Value = serde_json::from_slice(&text).ok()?;
+    // posgrid records its provenance in the index of every set it writes.
+    index
+        .get("metadata")?
+        .get(crate::checkpoint::safetensors::PROVENANCE_KEY)?;
     let map = index.get("weight_map")?.as_object()?;
     map.values()
         .map(|v| v.as_str().map(str::to_string))

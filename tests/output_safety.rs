@@ -350,6 +350,17 @@ fn force_replaces_only_a_directory_that_is_an_earlier_output_set() {
     let o = resize(&set, &empty_of_index, &["--force"]);
     assert_eq!(o.status.code(), Some(5), "{}", stderr(&o));
     assert!(empty_of_index.join("config.json").exists());
+    // A set that posgrid did not write (another model downloaded there): refused.
+    let downloaded = dir.path().join("downloaded");
+    fs::create_dir(&downloaded).unwrap();
+    for entry in fs::read_dir(&set).unwrap() {
+        let entry = entry.unwrap();
+        fs::copy(entry.path(), downloaded.join(entry.file_name())).unwrap();
+    }
+    let o = resize(&set, &downloaded, &["--force"]);
+    assert_eq!(o.status.code(), Some(5), "{}", stderr(&o));
+    assert!(stderr(&o).contains("posgrid"), "{}", stderr(&o));
+    assert!(downloaded.join("model.safetensors.index.json").exists());
     // A link at OUTDIR is not followed into a directory it names.
     let link = dir.path().join("link");
     symlink(&home, &link).unwrap();

@@ -332,6 +332,11 @@ impl SetWriter {
             .or_insert_with(|| Value::Object(Default::default()));
         if let Value::Object(m) = metadata {
             m.insert("total_size".into(), Value::from(total_size));
+            // Provenance, and the mark by which --force later recognises a set posgrid wrote.
+            m.insert(
+                super::safetensors::PROVENANCE_KEY.into(),
+                Value::String(out.provenance.to_string()),
+            );
         }
         let index_text = serde_json::to_string_pretty(&index).expect("JSON serialises") + "\n";
         Ok(SetPlan {
