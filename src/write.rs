@@ -70,6 +70,12 @@ fn kind_name(m: &Metadata) -> &'static str {
 /// `force`, or that is anything but a regular file or a symbolic link; check that its
 /// directory exists.
 pub fn check_destination(input: &Path, output: &Path, force: bool) -> Result<()> {
+    if output.as_os_str().as_bytes().ends_with(b"/") {
+        return Err(Error::write(
+            output,
+            "ends with a slash, so it names a directory; give a file path for the output",
+        ));
+    }
     check_parent(output)?;
     if same_file(input, output) {
         return Err(Error::write(

@@ -606,3 +606,14 @@ fn a_closed_stdout_loses_the_printout_not_the_outcome() {
         assert!(out.exists());
     }
 }
+
+#[test]
+fn a_file_output_named_like_a_directory_is_refused_before_any_work() {
+    let dir = tempfile::tempdir().unwrap();
+    let input = small_vit(dir.path(), "in.safetensors");
+    let out = format!("{}/newdir/", dir.path().display());
+    let o = posgrid(&["resize", s(&input), "-o", &out, "--grid", "10"]);
+    assert_eq!(code(&o), 5, "{}", stderr(&o));
+    assert!(stderr(&o).contains("ends with a slash"), "{}", stderr(&o));
+    assert_eq!(entries(dir.path()), ["in.safetensors".to_string()]);
+}
