@@ -513,3 +513,45 @@ fn ambiguous_names_and_lying_archives_are_refused() {
         assert!(!err.contains("npz"), "{file}: {err}");
     }
 }
+
+#[test]
+fn tensors_on_untyped_storages_are_read_and_kept() {
+    // uint16 and float8 tensors, which the framework saves on untyped storages with their
+    // element type named in the call (fixtures/torch/make_edge_cases.py). Values: 7 as uint16;
+    // 0.5, -2 and 448 in float8 e4m3 are 0x30, 0xC0 and 0x7E (the OCP 8-bit floating point
+    // specification: bias 7, 448 its largest normal value).
+    let source = Source::open(edge("untyped.pth")).unwrap();
+    let mask = source.find("mask").unwrap();
+    assert_eq!(mask.dtype.to_string(), "U16");
+    assert_eq!(source.bytes(mask).unwrap(), [7, 0, 7, 0, 7, 0, 7, 0]);
+    let scales = source.find("scales").unwrap();
+    assert_eq!(scales.dtype.to_string(), "F8_E4M3");
+    assert_eq!(source.bytes(scales).unwrap(), [0x30, 0xC0, 0x7E]);
+    // Written back beside a resized table, and converted: the same bytes.
+    let dir = tempfile::tempdir().unwrap();
+    for out in ["u.pth", "u.safetensors"] {
+        let out = dir.path().join(out);
+        let o = posgrid(&[
+            "resize",
+            s(&edge("untyped.pth")),
+            "-o",
+            s(&out),
+            "--grid",
+            "6",
+            "--slots",
+            "1",
+        ]);
+        assert_eq!(
+            o.status.code(),
+            Some(0),
+            "{}",
+            String::from_utf8_lossy(&o.stderr)
+        );
+        let after = Source::open(&out).unwrap();
+        for name in ["mask", "scales"] {
+            let (a, b) = (source.find(name).unwrap(), after.find(name).unwrap());
+            assert_eq!(a.dtype, b.dtype);
+            assert_eq!(source.bytes(a).unwrap(), after.bytes(b).unwrap(), "{name}");
+        }
+    }
+}

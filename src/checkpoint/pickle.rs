@@ -175,6 +175,9 @@ pub enum Node {
         stride: Vec<u64>,
         requires_grad: bool,
         hooks: NodeId,
+        /// The element type global (`torch.uint16`, ...) of `_rebuild_tensor_v3`, which newer
+        /// framework versions use for tensors on untyped storages; `None` for v2.
+        dtype: Option<NodeId>,
         /// Further arguments (metadata), kept.
         extra: Vec<NodeId>,
     },
@@ -1084,6 +1087,7 @@ impl<'a> Parser<'a> {
                 (
                     "torch._utils",
                     function @ ("_rebuild_tensor_v2"
+                    | "_rebuild_tensor_v3"
                     | "_rebuild_parameter"
                     | "_rebuild_parameter_with_state"),
                 ) => {
@@ -1120,8 +1124,8 @@ impl<'a> Parser<'a> {
         function: &'static str,
         args: &[NodeId],
     ) -> std::result::Result<Node, String> {
-        if function == "_rebuild_tensor_v2" {
-            return self.rebuild_tensor(args);
+        if function == "_rebuild_tensor_v2" || function == "_rebuild_tensor_v3" {
+            return self.rebuild_tensor(args, function == "_rebuild_tensor_v3");
         }
         let wanted = if function == "_rebuild_parameter" {
             3
@@ -1145,10 +1149,22 @@ impl<'a> Parser<'a> {
         })
     }
 
-    fn rebuild_tensor(&self, args: &[NodeId]) -> std::result::Result<Node, String> {
-        if args.len() < 6 {
-            return Err(format!("takes at least 6 arguments, got {}", args.len()));
+    fn rebuild_tensor(&self, args: &[NodeId], v3: bool) -> std::result::Result<Node, String> {
+        let fixed = if v3 { 7 } else { 6 };
+        if args.len() < fixed {
+            return Err(format!(
+                "takes at least {fixed} arguments, got {}",
+                args.len()
+            ));
         }
+        let dtype = if v3 {
+            match &self.nodes[args[6]] {
+                Node::Global { module, .. } if module == "torch" => Some(args[6]),
+                other => return Err(format!("dtype is {}, not a torch dtype", kind(other))),
+            }
+        } else {
+            None
+        };
         if !matches!(self.nodes[args[0]], Node::Storage { .. }) {
             return Err(format!(
                 "storage is {}, not a persistent storage",
@@ -1172,7 +1188,8 @@ impl<'a> Parser<'a> {
             stride,
             requires_grad: self.bool_arg(args[4], "requires_grad")?,
             hooks: args[5],
-            extra: args[6..].to_vec(),
+            dtype,
+            extra: args[fixed..].to_vec(),
         })
     }
 
@@ -1245,6 +1262,7 @@ impl<'a> Parser<'a> {
 fn static_name(function: &str) -> &'static str {
     match function {
         "_rebuild_tensor_v2" => "_rebuild_tensor_v2",
+        "_rebuild_tensor_v3" => "_rebuild_tensor_v3",
         "_rebuild_parameter" => "_rebuild_parameter",
         _ => "_rebuild_parameter_with_state",
     }
@@ -1447,11 +1465,13 @@ impl Pickle {
             Node::Tensor {
                 storage,
                 hooks,
+                dtype,
                 extra,
                 ..
             } => {
                 out.push(*storage);
                 out.push(*hooks);
+                out.extend(*dtype);
                 out.extend_from_slice(extra);
             }
             Node::Parameter {
@@ -2093,12 +2113,18 @@ impl<'a> Writer<'a> {
             stride,
             requires_grad,
             hooks,
+            dtype,
             extra,
         } = &self.p.nodes[id]
         else {
             return;
         };
-        self.emit_own_global("torch._utils", "_rebuild_tensor_v2");
+        let function = if dtype.is_some() {
+            "_rebuild_tensor_v3"
+        } else {
+            "_rebuild_tensor_v2"
+        };
+        self.emit_own_global("torch._utils", function);
         self.out.push(b'(');
         let mut tasks = vec![
             Task::Save(*storage),
@@ -2108,6 +2134,7 @@ impl<'a> Writer<'a> {
             Task::Bool(*requires_grad),
             Task::Save(*hooks),
         ];
+        tasks.extend(dtype.iter().map(|&d| Task::Save(d)));
         tasks.extend(extra.iter().map(|&e| Task::Save(e)));
         tasks.extend([Task::Op(b't'), Task::Op(b'R'), Task::FinishCall(id)]);
         self.schedule(tasks);
@@ -2269,7 +2296,14 @@ impl<'a> Writer<'a> {
     fn emit_persistent_id(&mut self, class: &str, key: &str, location: &str, numel: u64) {
         self.out.push(b'(');
         self.emit_str("storage");
-        self.emit_own_global("torch", class);
+        // The framework names its untyped storage class by its home module, which its safe
+        // loader allows (the same class reached as torch.UntypedStorage it does not).
+        let module = if class == "UntypedStorage" {
+            "torch.storage"
+        } else {
+            "torch"
+        };
+        self.emit_own_global(module, class);
         self.emit_str(key);
         self.emit_str(location);
         self.emit_count(numel);

@@ -56,6 +56,29 @@ pub fn dtype_of_storage(class: &str) -> Option<Dtype> {
     })
 }
 
+/// The element type a `torch.<name>` dtype global names (the framework's dtype names).
+pub fn dtype_of_name(name: &str) -> Option<Dtype> {
+    Some(match name {
+        "float32" | "float" => Dtype::F32,
+        "float16" | "half" => Dtype::F16,
+        "bfloat16" => Dtype::BF16,
+        "float64" | "double" => Dtype::F64,
+        "int64" | "long" => Dtype::I64,
+        "int32" | "int" => Dtype::I32,
+        "int16" | "short" => Dtype::I16,
+        "int8" => Dtype::I8,
+        "uint8" => Dtype::U8,
+        "bool" => Dtype::BOOL,
+        "uint16" => Dtype::U16,
+        "uint32" => Dtype::U32,
+        "uint64" => Dtype::U64,
+        "float8_e4m3fn" => Dtype::F8_E4M3,
+        "float8_e5m2" => Dtype::F8_E5M2,
+        "complex64" | "cfloat" => Dtype::C64,
+        _ => return None,
+    })
+}
+
 /// The storage class of an element type.
 pub fn storage_of_dtype(dtype: Dtype) -> Option<&'static str> {
     [
@@ -191,7 +214,9 @@ fn framework_global(module: &str, name: &str) -> bool {
             | ("torch._utils", "_rebuild_tensor_v2")
             | ("torch._utils", "_rebuild_parameter")
             | ("torch._utils", "_rebuild_parameter_with_state")
-    ) || (module == "torch" && dtype_of_storage(name).is_some())
+            | ("torch._utils", "_rebuild_tensor_v3")
+            | ("torch", "UntypedStorage")
+    ) || (module == "torch" && (dtype_of_storage(name).is_some() || dtype_of_name(name).is_some()))
 }
 
 /// Refuse a pickle that names a dangerous object anywhere in its tree (posgrid never runs it;
@@ -342,21 +367,25 @@ impl TorchFile {
     }
 
     /// The element type and record of a storage node, checked; or why it is refused.
-    fn storage_record(&self, storage: NodeId) -> std::result::Result<(Dtype, usize), String> {
+    /// The element type (none for an untyped storage, whose tensors name theirs) and record
+    /// of a storage node, checked; or why it is refused. An untyped storage counts bytes.
+    fn storage_record(
+        &self,
+        storage: NodeId,
+    ) -> std::result::Result<(Option<Dtype>, usize), String> {
         let Node::Storage {
             class, key, numel, ..
         } = &self.pickle.nodes[storage]
         else {
             return Err("its storage is not a storage record".into());
         };
-        let dtype = dtype_of_storage(class).ok_or_else(|| match class.as_str() {
-            "UntypedStorage" => {
-                "an untyped storage (newer framework versions save uint16, uint32, \
-                uint64 and float8 tensors so), which posgrid does not read yet"
-                    .to_string()
-            }
-            _ => format!("storage type {class} is not one posgrid reads"),
-        })?;
+        let dtype = match class.as_str() {
+            "UntypedStorage" => None,
+            _ => Some(
+                dtype_of_storage(class)
+                    .ok_or_else(|| format!("storage type {class} is not one posgrid reads"))?,
+            ),
+        };
         if key.is_empty() || key.contains('/') || key.contains('\\') || key == ".." {
             return Err(format!("storage key {key:?} is not a plain record name"));
         }
@@ -370,10 +399,10 @@ impl TorchFile {
                 "storage record data/{key} is compressed; the framework stores storages as they are"
             ));
         }
-        let elem = (dtype.bitsize() / 8).max(1) as u64;
+        let elem = dtype.map_or(1, |d| (d.bitsize() / 8).max(1) as u64);
         if numel.checked_mul(elem) != Some(r.size) {
             return Err(format!(
-                "storage record data/{key} holds {} bytes, not the {numel} elements of {dtype} its reference says",
+                "storage record data/{key} holds {} bytes, not the {numel} elements its reference says",
                 r.size
             ));
         }
@@ -388,16 +417,42 @@ impl TorchFile {
             offset,
             size,
             stride,
+            dtype: tensor_dtype,
             ..
         } = &self.pickle.nodes[tensor]
         else {
             return Err(bad("a parameter that does not wrap a tensor".into()));
         };
-        let (dtype, record) = self.storage_record(*storage).map_err(bad)?;
+        let (typed, record) = self.storage_record(*storage).map_err(bad)?;
         let Node::Storage { numel, .. } = &self.pickle.nodes[*storage] else {
             unreachable!("checked by storage_record")
         };
+        // A v3 tensor names its element type; a typed storage gives it otherwise.
+        let named = match tensor_dtype {
+            Some(g) => match &self.pickle.nodes[*g] {
+                Node::Global { name, .. } => Some(dtype_of_name(name).ok_or_else(|| {
+                    bad(format!(
+                        "element type torch.{name} is not one posgrid reads"
+                    ))
+                })?),
+                _ => None,
+            },
+            None => None,
+        };
+        let dtype = named
+            .or(typed)
+            .ok_or_else(|| bad("an untyped storage without an element type".into()))?;
         let elem = (dtype.bitsize() / 8).max(1);
+        // An untyped storage counts bytes: its elements are those bytes in the tensor's type.
+        let numel = &match typed {
+            Some(_) => *numel,
+            None if numel % elem as u64 == 0 => numel / elem as u64,
+            None => {
+                return Err(bad(format!(
+                    "its untyped storage of {numel} bytes is not a whole number of {dtype} elements"
+                )))
+            }
+        };
         let r = &self.archive.records[record];
         let outside = || {
             bad(format!("its view (offset {offset}, shape {size:?}, strides {stride:?}) does not lie inside its storage of {numel} elements"))

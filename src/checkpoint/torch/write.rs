@@ -65,6 +65,13 @@ impl Writer for TorchWriter {
     }
 
     fn check(&self, out: &Output) -> Result<()> {
+        // A tree written back keeps every storage as it is; only a fresh dict needs a typed
+        // storage class per tensor.
+        if let Some(src) = out.source.as_any().downcast_ref::<TorchFile>() {
+            if same_tensors(src, out) {
+                return Ok(());
+            }
+        }
         match out
             .entries
             .iter()
@@ -171,7 +178,8 @@ fn patched<'a>(src: &'a TorchFile, out: &'a Output<'a>) -> Result<Vec<RecordOut<
         let Some(bytes) = entry.new else { continue };
         let (_, tensor) = src.nodes_of(&entry.name).expect("checked by same_tensors");
         let key = fresh_key(&mut taken);
-        retarget(&mut tree, tensor, &key, &entry.shape);
+        let elem = (entry.dtype().bitsize() / 8).max(1) as u64;
+        retarget(&mut tree, tensor, &key, &entry.shape, elem);
         new_storages.push((key, bytes));
     }
     let used = storage_keys(&tree);
@@ -217,7 +225,8 @@ fn patched<'a>(src: &'a TorchFile, out: &'a Output<'a>) -> Result<Vec<RecordOut<
 }
 
 /// Point a tensor node at a new storage `key` holding `shape` in C order.
-fn retarget(tree: &mut Pickle, tensor: NodeId, key: &str, shape: &[usize]) {
+/// An untyped storage counts bytes (`elem` per element), a typed one elements.
+fn retarget(tree: &mut Pickle, tensor: NodeId, key: &str, shape: &[usize], elem: u64) {
     let Node::Tensor { storage, .. } = &tree.nodes[tensor] else {
         unreachable!("entries name tensor nodes")
     };
@@ -227,11 +236,17 @@ fn retarget(tree: &mut Pickle, tensor: NodeId, key: &str, shape: &[usize]) {
         } => (class.clone(), location.clone()),
         _ => unreachable!("checked when the file was opened"),
     };
+    let count = shape.iter().product::<usize>() as u64;
+    let numel = if class == "UntypedStorage" {
+        count * elem
+    } else {
+        count
+    };
     tree.nodes.push(Node::Storage {
         class,
         key: key.to_string(),
         location,
-        numel: shape.iter().product::<usize>() as u64,
+        numel,
     });
     let new_storage = tree.nodes.len() - 1;
     if let Node::Tensor {
@@ -312,6 +327,7 @@ fn fresh<'a>(out: &'a Output<'a>) -> Result<Vec<RecordOut<'a>>> {
                 stride: c_strides(&entry.shape),
                 requires_grad: false,
                 hooks,
+                dtype: None,
                 extra: Vec::new(),
             },
         );
