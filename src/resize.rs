@@ -175,33 +175,8 @@ pub fn run(job: &ResizeJob) -> Result<ResizeReport> {
         report_table.fidelity = fidelity;
         report.warnings.extend(notes);
     }
-    let output = Output {
-        source: source.reader(),
-        entries: source
-            .entries()
-            .iter()
-            .filter_map(|t| {
-                Some(OutEntry {
-                    name: selection::out_name(&t.name, &selection)?,
-                    shape: plan.new_shape(&t.name).unwrap_or(&t.shape).clone(),
-                    origin: t,
-                    new: new_data.get(&t.name).map(Vec::as_slice),
-                })
-            })
-            .collect(),
-        provenance: provenance(&plan),
-    };
-    refuse_repeated_names(&source, &output)?;
-    let written: HashSet<&str> = output
-        .entries
-        .iter()
-        .map(|e| e.origin.name.as_str())
-        .collect();
-    report.dropped = dropped(&source, &output, &written);
-    report.copied.retain(|n| written.contains(n.as_str()));
-    if source.format() == Format::PyTorch {
-        report.warnings.extend(stale_moments(&output, &plan));
-    }
+    let output = output_of(&source, &plan, &selection, &new_data);
+    account_for(&mut report, &source, &output, &plan)?;
     writer.check(&output)?;
     let preview = writer.preview(&output)?;
     report.output_size = preview.size;
@@ -214,7 +189,68 @@ pub fn run(job: &ResizeJob) -> Result<ResizeReport> {
         return Ok(report);
     }
     let figure = draw_map(job, &grids, &mut report.warnings)?;
-    let like = mode_source(job, &source);
+    write_and_commit(job, &source, writer.as_ref(), &output, figure, &mut report)?;
+    Ok(report)
+}
+
+/// The output entries: every tensor the selection keeps, under its output name, with its new
+/// shape and bytes where it changed.
+fn output_of<'a>(
+    source: &'a Source,
+    plan: &Plan,
+    selection: &selection::Selection,
+    new_data: &'a HashMap<String, Vec<u8>>,
+) -> Output<'a> {
+    Output {
+        source: source.reader(),
+        entries: source
+            .entries()
+            .iter()
+            .filter_map(|t| {
+                Some(OutEntry {
+                    name: selection::out_name(&t.name, selection)?,
+                    shape: plan.new_shape(&t.name).unwrap_or(&t.shape).clone(),
+                    origin: t,
+                    new: new_data.get(&t.name).map(Vec::as_slice),
+                })
+            })
+            .collect(),
+        provenance: provenance(plan),
+    }
+}
+
+/// Check the output's names and record in the report what it copies, what it leaves out and
+/// what no longer fits.
+fn account_for(
+    report: &mut ResizeReport,
+    source: &Source,
+    output: &Output,
+    plan: &Plan,
+) -> Result<()> {
+    refuse_repeated_names(source, output)?;
+    let written: HashSet<&str> = output
+        .entries
+        .iter()
+        .map(|e| e.origin.name.as_str())
+        .collect();
+    report.dropped = dropped(source, output, &written);
+    report.copied.retain(|n| written.contains(n.as_str()));
+    if source.format() == Format::PyTorch {
+        report.warnings.extend(stale_moments(output, plan));
+    }
+    Ok(())
+}
+
+/// Write the output beside OUT and put it in place together with the figure, if any.
+fn write_and_commit(
+    job: &ResizeJob,
+    source: &Source,
+    writer: &dyn writer::Writer,
+    output: &Output,
+    figure: Option<Vec<u8>>,
+    report: &mut ResizeReport,
+) -> Result<()> {
+    let like = mode_source(job, source);
     let dest = Destination {
         path: &job.output,
         sync: job.sync,
@@ -222,11 +258,11 @@ pub fn run(job: &ResizeJob) -> Result<ResizeReport> {
         like,
     };
     // The ZIP writer reports no progress; a bar is drawn for the others.
-    let mut progress = match format {
+    let mut progress = match writer.format() {
         Format::Npz => Box::new(Silent),
-        _ => progress_for(job, preview.size),
+        _ => progress_for(job, report.output_size),
     };
-    let written = writer.write(&output, &dest, progress.as_mut())?;
+    let written = writer.write(output, &dest, progress.as_mut())?;
     report.output_size = written.size;
     report.bytes_written = written.size;
     report.warnings.extend(written.warnings);
@@ -240,7 +276,7 @@ pub fn run(job: &ResizeJob) -> Result<ResizeReport> {
     if figure.is_some() {
         report.map = job.map.clone();
     }
-    Ok(report)
+    Ok(())
 }
 
 /// What the memory guard leaves for the maps and the fidelity score of a table once its

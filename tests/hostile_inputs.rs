@@ -67,6 +67,21 @@ fn run_within(args: &[&std::ffi::OsStr], limit: Duration) -> Run {
     }
 }
 
+/// `resize INPUT -o OUT --grid 6`, measured, within two minutes.
+fn resize_to_grid_6(input: &Path, out: &Path) -> Run {
+    run_within(
+        &[
+            "resize".as_ref(),
+            input.as_os_str(),
+            "-o".as_ref(),
+            out.as_os_str(),
+            "--grid".as_ref(),
+            "6".as_ref(),
+        ],
+        Duration::from_secs(120),
+    )
+}
+
 fn run(args: &[&dyn AsRef<std::ffi::OsStr>]) -> Run {
     let args: Vec<&std::ffi::OsStr> = args.iter().map(|a| a.as_ref()).collect();
     run_within(&args, Duration::from_secs(20))
@@ -428,17 +443,7 @@ fn converting_an_inflating_archive_streams_through_a_fixed_buffer() {
         "a small archive"
     );
     let out = dir.path().join("out.safetensors");
-    let r = run_within(
-        &[
-            "resize".as_ref(),
-            input.as_os_str(),
-            "-o".as_ref(),
-            out.as_os_str(),
-            "--grid".as_ref(),
-            "6".as_ref(),
-        ],
-        Duration::from_secs(120),
-    );
+    let r = resize_to_grid_6(&input, &out);
     assert_eq!(r.code, 0, "{}", r.stderr);
     assert!(std::fs::metadata(&out).unwrap().len() > big as u64);
     assert!(
@@ -494,17 +499,7 @@ fn converting_a_large_tensor_to_npz_streams_through_a_fixed_buffer() {
         .unwrap();
     file.set_len(file.metadata().unwrap().len() + big).unwrap();
     let out = dir.path().join("out.npz");
-    let r = run_within(
-        &[
-            "resize".as_ref(),
-            input.as_os_str(),
-            "-o".as_ref(),
-            out.as_os_str(),
-            "--grid".as_ref(),
-            "6".as_ref(),
-        ],
-        Duration::from_secs(120),
-    );
+    let r = resize_to_grid_6(&input, &out);
     assert_eq!(r.code, 0, "{}", r.stderr);
     assert!(std::fs::metadata(&out).unwrap().len() > big);
     assert!(

@@ -163,10 +163,15 @@ fn hostile_files_are_refused_and_nothing_runs() {
 
 /// Resize `file` to a 6x6 grid into `out`, returning the JSON report.
 fn resize(file: &str, out: &Path, extra: &[&str]) -> Value {
-    let input = fixture(file);
+    resize_path(&fixture(file), out, extra)
+}
+
+/// Resize `input` to a 6x6 grid (one class slot) into `out`; the JSON report of a run that
+/// must succeed.
+fn resize_path(input: &Path, out: &Path, extra: &[&str]) -> Value {
     let mut args = vec![
         "resize",
-        s(&input),
+        s(input),
         "-o",
         s(out),
         "--grid",
@@ -180,7 +185,8 @@ fn resize(file: &str, out: &Path, extra: &[&str]) -> Value {
     assert_eq!(
         o.status.code(),
         Some(0),
-        "{file}: {}",
+        "{}: {}",
+        input.display(),
         String::from_utf8_lossy(&o.stderr)
     );
     serde_json::from_slice(&o.stdout).unwrap()
@@ -372,22 +378,7 @@ fn storages_outside_named_tensors_are_kept_when_written_back() {
     let dir = tempfile::tempdir().unwrap();
     for file in ["bare_storage.pth", "param_state_tensor.pth"] {
         let out = dir.path().join(file);
-        let o = posgrid(&[
-            "resize",
-            s(&edge(file)),
-            "-o",
-            s(&out),
-            "--grid",
-            "6",
-            "--slots",
-            "1",
-        ]);
-        assert_eq!(
-            o.status.code(),
-            Some(0),
-            "{file}: {}",
-            String::from_utf8_lossy(&o.stderr)
-        );
+        resize_path(&edge(file), &out, &[]);
         let before = zip::ZipArchive::new(std::fs::File::open(edge(file)).unwrap()).unwrap();
         let after = zip::ZipArchive::new(std::fs::File::open(&out).unwrap()).unwrap();
         let storages = |z: &zip::ZipArchive<std::fs::File>| {
@@ -405,22 +396,7 @@ fn empty_and_expanded_tensors_are_read_or_refused_without_a_crash() {
     let dir = tempfile::tempdir().unwrap();
     // Empty and 0-dim tensors, as the framework writes them: converted like any other.
     let out = dir.path().join("z.safetensors");
-    let o = posgrid(&[
-        "resize",
-        s(&edge("zero_dims.pth")),
-        "-o",
-        s(&out),
-        "--grid",
-        "6",
-        "--slots",
-        "1",
-    ]);
-    assert_eq!(
-        o.status.code(),
-        Some(0),
-        "{}",
-        String::from_utf8_lossy(&o.stderr)
-    );
+    resize_path(&edge("zero_dims.pth"), &out, &[]);
     let flat = Source::open(&out).unwrap();
     assert_eq!(flat.find("empty_t").unwrap().shape, vec![0, 5]);
     assert_eq!(flat.find("scalar").unwrap().shape, Vec::<usize>::new());
@@ -455,22 +431,7 @@ fn dangerous_objects_are_refused_wherever_they_sit() {
 fn flat_outputs_take_keys_as_they_are_and_never_repeat_a_name() {
     let dir = tempfile::tempdir().unwrap();
     let out = dir.path().join("k.safetensors");
-    let o = posgrid(&[
-        "resize",
-        s(&edge("key_escapes.pth")),
-        "-o",
-        s(&out),
-        "--grid",
-        "6",
-        "--slots",
-        "1",
-    ]);
-    assert_eq!(
-        o.status.code(),
-        Some(0),
-        "{}",
-        String::from_utf8_lossy(&o.stderr)
-    );
+    resize_path(&edge("key_escapes.pth"), &out, &[]);
     let flat = Source::open(&out).unwrap();
     assert!(flat.find("a/b").is_some() && flat.find("100%").is_some());
     // module.head.bias and head.bias both become head.bias: refused, naming both.
@@ -531,22 +492,7 @@ fn tensors_on_untyped_storages_are_read_and_kept() {
     let dir = tempfile::tempdir().unwrap();
     for out in ["u.pth", "u.safetensors"] {
         let out = dir.path().join(out);
-        let o = posgrid(&[
-            "resize",
-            s(&edge("untyped.pth")),
-            "-o",
-            s(&out),
-            "--grid",
-            "6",
-            "--slots",
-            "1",
-        ]);
-        assert_eq!(
-            o.status.code(),
-            Some(0),
-            "{}",
-            String::from_utf8_lossy(&o.stderr)
-        );
+        resize_path(&edge("untyped.pth"), &out, &[]);
         let after = Source::open(&out).unwrap();
         for name in ["mask", "scales"] {
             let (a, b) = (source.find(name).unwrap(), after.find(name).unwrap());

@@ -179,17 +179,9 @@ impl Checkpoint {
 
     /// Pass one tensor's bytes to `sink` a chunk at a time.
     pub fn stream_bytes(&self, tensor: &TensorEntry, sink: Sink<'_>) -> Result<()> {
-        let mut buf = vec![0u8; chunk_len(tensor.byte_len())];
-        let mut at = tensor.begin;
-        while at < tensor.end {
-            let n = chunk_len(tensor.end - at);
-            self.file
-                .read_exact_at(&mut buf[..n], at)
-                .map_err(|e| Error::read(&self.path, e))?;
-            sink(&buf[..n])?;
-            at += n as u64;
-        }
-        Ok(())
+        Reader::span(self, tensor)
+            .expect("a safetensors tensor is one span")
+            .stream(sink)
     }
 }
 
@@ -219,9 +211,7 @@ pub(crate) fn whole_tensor_buffer(path: &Path, tensor: &TensorEntry) -> Result<V
         )
     };
     let len = usize::try_from(tensor.byte_len()).map_err(|_| too_large())?;
-    let mut buf = Vec::new();
-    buf.try_reserve_exact(len).map_err(|_| too_large())?;
-    Ok(buf)
+    crate::values::try_with_capacity(len).map_err(|_| too_large())
 }
 
 /// What a file that is not a regular file is, in words.
@@ -378,6 +368,23 @@ pub struct Span<'a> {
     pub len: u64,
 }
 
+impl Span<'_> {
+    /// The run's bytes passed to `sink` in fixed-size chunks, read with positioned reads.
+    pub fn stream(&self, sink: Sink<'_>) -> Result<()> {
+        let mut buf = vec![0u8; chunk_len(self.len)];
+        let (mut at, end) = (self.offset, self.offset + self.len);
+        while at < end {
+            let n = chunk_len(end - at);
+            self.file
+                .read_exact_at(&mut buf[..n], at)
+                .map_err(|e| Error::read(self.path, e))?;
+            sink(&buf[..n])?;
+            at += n as u64;
+        }
+        Ok(())
+    }
+}
+
 /// An opened, validated container: what every reader offers the job and the writers. It lists
 /// its entries ([`TensorSource::entries`]), reads or streams one, and says where an entry's
 /// bytes lie when they are stored as they are ([`Reader::span`]).
@@ -449,9 +456,10 @@ impl Source {
                 .is_some_and(|e| e.eq_ignore_ascii_case("npz"));
             // A PyTorch name with a damaged ZIP inside is reported as a PyTorch file.
             let named_torch = Format::from_extension(path) == Some(Format::PyTorch);
-            if is_zip(&file) && (named_torch || torch::is_torch_zip(&file)) {
+            let zip = is_zip(&file);
+            if zip && (named_torch || torch::is_torch_zip(&file)) {
                 Box::new(torch::TorchFile::open(path)?)
-            } else if is_zip(&file) {
+            } else if zip {
                 Box::new(npz::Npz::open(path)?)
             } else if torch::is_legacy(&file) {
                 return Err(torch::legacy_error(path));

@@ -215,8 +215,7 @@ pub fn read_whole(path: &Path, file: &File, r: &Record, limit: u64) -> Result<Ve
             ),
         ));
     }
-    let mut buf = Vec::new();
-    buf.try_reserve_exact(r.size as usize)
+    let mut buf = crate::values::try_with_capacity(r.size as usize)
         .map_err(|_| Error::refused(path, format!("record {} does not fit in memory", r.name)))?;
     if r.stored {
         buf.resize(r.size as usize, 0);

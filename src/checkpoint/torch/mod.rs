@@ -536,25 +536,22 @@ impl TorchFile {
     /// A contiguous view's bytes, in chunks; the CRC-32 is checked when it covers its record.
     fn stream_contiguous(&self, t: &TensorEntry, v: &View, sink: Sink<'_>) -> Result<()> {
         let mut crc = crc32fast::Hasher::new();
-        let mut buf = vec![0u8; super::chunk_len(t.byte_len())];
-        let (mut at, mut left) = (t.begin, t.byte_len());
-        while left > 0 {
-            let n = super::chunk_len(left);
-            self.file
-                .read_exact_at(&mut buf[..n], at)
-                .map_err(|e| Error::read(&self.path, e))?;
-            crc.update(&buf[..n]);
-            sink(&buf[..n])?;
-            at += n as u64;
-            left -= n as u64;
-        }
+        let span = Span {
+            file: &self.file,
+            path: &self.path,
+            offset: t.begin,
+            len: t.byte_len(),
+        };
+        span.stream(&mut |chunk| {
+            crc.update(chunk);
+            sink(chunk)
+        })?;
         if v.whole_record {
             archive::check_crc(&self.path, &self.archive.records[v.record], crc.finalize())?;
         }
         Ok(())
     }
 
-    /// A strided view gathered into C order.
     /// A strided view gathered into C order, a block at a time: the leading dimensions are
     /// walked one index at a time until what is left spans at most [`GATHER_WINDOW`] bytes of
     /// storage; each such block is read at once and its elements picked out, and the result is

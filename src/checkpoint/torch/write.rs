@@ -502,19 +502,11 @@ fn record_crc(r: &RecordOut) -> Result<u32> {
 }
 
 fn span_crc(span: &Span) -> Result<u32> {
-    use std::os::unix::fs::FileExt;
     let mut crc = crc32fast::Hasher::new();
-    let mut buf = vec![0u8; crate::checkpoint::chunk_len(span.len)];
-    let (mut at, mut left) = (span.offset, span.len);
-    while left > 0 {
-        let n = crate::checkpoint::chunk_len(left);
-        span.file
-            .read_exact_at(&mut buf[..n], at)
-            .map_err(|e| Error::read(span.path, e))?;
-        crc.update(&buf[..n]);
-        at += n as u64;
-        left -= n as u64;
-    }
+    span.stream(&mut |chunk| {
+        crc.update(chunk);
+        Ok(())
+    })?;
     Ok(crc.finalize())
 }
 
