@@ -18,17 +18,17 @@ fn main() {
         })
         .collect();
     let up = resample(&rows, (h, w), d, (96, 96), &Options::default()).unwrap();
-    let table = |grid: [usize; 2]| posgrid::discover::Table {
+    let table = |grid: [usize; 2]| posgrid::kinds::Table {
         name: "pos_embed".into(),
         dtype: safetensors::Dtype::F32,
         shape: vec![1, grid[0] * grid[1], d],
-        layout: posgrid::discover::Layout::BatchRows,
+        layout: posgrid::kinds::Layout::BatchRows,
         slots: 0,
         grid,
         dim: d,
         patch: None,
         patch_source: None,
-        kind: posgrid::discover::Kind::Learned,
+        kind: posgrid::kinds::Kind::Learned,
         sincos_first_axis: None,
         companions: vec![],
         copy_of: None,

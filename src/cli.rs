@@ -8,9 +8,9 @@ use clap::{Args, Parser, Subcommand};
 
 use crate::checkpoint::Format;
 use crate::checkpoint::{Source, TensorSource};
-use crate::discover::{self, Channels, Hints};
 use crate::error::{Error, Result, EXIT_NO_TABLE, EXIT_OK};
 use crate::figure;
+use crate::kinds::{self, Channels, Hints};
 use crate::plan::{Request, Target};
 use crate::report::{self, ScanReport};
 use crate::resample::{Antialias, Coords, Edges, Kernel, Options, DEFAULT_CUBIC_A};
@@ -350,7 +350,7 @@ fn ckpt_path(ckpt: &Source) -> PathBuf {
 fn scan(args: ScanArgs) -> Result<i32> {
     let ckpt = Source::open(&args.checkpoint)?;
     check_named_tensors(&ckpt, &args.discovery.tensors)?;
-    let mut found = discover::discover(&ckpt, &args.discovery.hints())?;
+    let mut found = kinds::discover(&ckpt, &args.discovery.hints())?;
     found.warnings.extend(ckpt.notes());
     let report = ScanReport::new(&args.checkpoint, &ckpt, found);
     if args.json {

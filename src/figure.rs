@@ -6,8 +6,8 @@ use std::path::{Path, PathBuf};
 use serde::Serialize;
 
 use crate::checkpoint::{Source, TensorSource};
-use crate::discover::{self, Hints, Table};
 use crate::error::{Error, Result};
+use crate::kinds::{self, Hints, Table};
 use crate::render::{self, Figure, Panel};
 use crate::similarity::{self, Budget, Fidelity, Grid, MapSet, MapsError, Profile};
 use crate::values;
@@ -47,7 +47,7 @@ pub fn load_table(
     name: Option<&str>,
     memory_limit: u64,
 ) -> Result<GridRows<'static>> {
-    let found = discover::discover(ckpt, hints)?;
+    let found = kinds::discover(ckpt, hints)?;
     let table = match name.or(hints.tensors.first().map(String::as_str)) {
         Some(n) => found.table(n).cloned().ok_or_else(|| {
             Error::table(
@@ -77,7 +77,7 @@ pub fn load_table(
     };
     let entry = ckpt.find(&table.name).expect("discovered tables exist");
     // The bytes and their f32 decoding (two decodings for a channels-first transpose).
-    let copies = if table.layout == discover::Layout::GridChannelsFirst {
+    let copies = if table.layout == kinds::Layout::GridChannelsFirst {
         2
     } else {
         1

@@ -1,7 +1,7 @@
 //! posgrid: find the position tables of vision-transformer checkpoints and resample them to a
 //! new patch grid, offline and exactly, writing a patched checkpoint safely.
 //!
-//! Data flows one way: [`checkpoint`] (read and validate) → [`discover`] (find tables) →
+//! Data flows one way: [`checkpoint`] (read and validate) → [`kinds`] (find every grid-dependent tensor, one module per kind) →
 //! [`plan`] (what changes) → [`resample`] (the maths) → [`write`] (stream and rename), with
 //! [`resize`] running the whole job and [`report`] rendering results for people and scripts.
 //!
@@ -22,9 +22,9 @@
 
 pub mod checkpoint;
 pub mod cli;
-pub mod discover;
 pub mod error;
 pub mod figure;
+pub mod kinds;
 pub mod plan;
 pub mod render;
 pub mod report;

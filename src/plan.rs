@@ -1,13 +1,11 @@
-//! Planning: from the discovered tables and the user's request to the exact list of changes —
-//! which tables go to which grid with which options, which companions are rewritten — checked
-//! before any table data is computed or any byte is written.
-
-use serde::Serialize;
+//! Planning: from what discovery found and the user's request to the exact list of changes —
+//! each kind plans its own tensors and the companions that follow them — checked before any
+//! value is computed or any byte is written.
 
 use crate::checkpoint::TensorSource;
-use crate::discover::{Discovery, Layout, Table};
 use crate::error::{Error, Result};
-use crate::resample::{self, Options};
+use crate::kinds::{absolute, Change, Discovery, Table};
+use crate::resample::Options;
 
 /// The grid to resample to.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
@@ -36,73 +34,46 @@ pub struct Request {
     pub rebuild_sincos: bool,
 }
 
-/// One table to resample.
-#[derive(Debug, Clone, Serialize)]
-pub struct TableChange {
-    #[serde(flatten)]
-    pub table: Table,
-    pub from: [usize; 2],
-    pub to: [usize; 2],
-    /// The new shape, in the table's own layout.
-    pub new_shape: Vec<usize>,
-    pub options: Options,
-    /// Whether antialiasing is applied on at least one axis.
-    pub antialias_applied: bool,
-    /// A sine-cosine table built anew on the target grid (not resampled).
-    pub rebuild: bool,
-    /// Bytes the resize of this table needs (what the memory guard checked).
-    #[serde(skip)]
-    pub needed_bytes: u64,
-}
-
-/// One position-id buffer to rewrite as 0..N'-1.
-#[derive(Debug, Clone, Serialize)]
-pub struct CompanionChange {
-    pub name: String,
-    pub new_shape: Vec<usize>,
-    pub rows: usize,
-}
-
 /// Everything that will change; the rest of the checkpoint is copied as it is.
-#[derive(Debug, Clone, Serialize)]
+#[derive(Debug)]
 pub struct Plan {
-    pub tables: Vec<TableChange>,
-    pub companions: Vec<CompanionChange>,
-    /// Tables already at their target grid, left unchanged.
+    pub changes: Vec<Box<dyn Change>>,
+    /// Tensors already at their target, left unchanged.
     pub already_at_target: Vec<String>,
 }
 
 impl Plan {
     /// True when nothing needs to change.
     pub fn is_noop(&self) -> bool {
-        self.tables.is_empty()
+        self.changes.is_empty()
     }
 
-    /// The new shape of a changed tensor.
-    pub fn new_shape(&self, name: &str) -> Option<&Vec<usize>> {
-        self.tables
+    /// The new shape of a rewritten tensor.
+    pub fn new_shape(&self, name: &str) -> Option<&[usize]> {
+        self.changes
             .iter()
-            .find(|t| t.table.name == name)
-            .map(|t| &t.new_shape)
-            .or_else(|| {
-                self.companions
-                    .iter()
-                    .find(|c| c.name == name)
-                    .map(|c| &c.new_shape)
-            })
+            .flat_map(|c| c.rewrites())
+            .find(|(n, _)| *n == name)
+            .map(|(_, shape)| shape)
     }
 
-    /// Keep only the changes (and tables at target) whose tensors `keep` accepts.
+    /// Keep only the changes (and tensors at target) whose main tensors `keep` accepts.
     pub fn retain(&mut self, keep: impl Fn(&str) -> bool) {
-        self.tables.retain(|t| keep(&t.table.name));
-        self.companions.retain(|c| keep(&c.name));
+        self.changes.retain(|c| keep(c.name()));
         self.already_at_target.retain(|n| keep(n));
     }
 
-    /// Whether the tensor with this name is changed by the plan.
+    /// Whether the tensor with this name is rewritten by the plan.
     pub fn changes(&self, name: &str) -> bool {
-        self.tables.iter().any(|t| t.table.name == name)
-            || self.companions.iter().any(|c| c.name == name)
+        self.new_shape(name).is_some()
+    }
+
+    /// The companion buffers rewritten with the main tensors.
+    pub fn companions(&self) -> Vec<String> {
+        self.changes
+            .iter()
+            .flat_map(|c| c.rewrites().into_iter().skip(1).map(|(n, _)| n.to_string()))
+            .collect()
     }
 }
 
@@ -132,99 +103,15 @@ pub fn build(ckpt: &dyn TensorSource, found: &Discovery, request: &Request) -> R
             .map(|name| select(ckpt, found, name))
             .collect::<Result<_>>()?
     };
-
     let mut plan = Plan {
-        tables: Vec::new(),
-        companions: Vec::new(),
+        changes: Vec::new(),
         already_at_target: Vec::new(),
     };
     for table in selected {
-        let to = target_grid(path, table, request.target)?;
-        let from = table.grid;
-        if from == to {
-            plan.already_at_target.push(table.name.clone());
-            continue;
+        match absolute::plan(ckpt, table, request)? {
+            Some(change) => plan.changes.push(Box::new(change)),
+            None => plan.already_at_target.push(table.name.clone()),
         }
-        resample::validate((from[0], from[1]), (to[0], to[1]), &request.options)
-            .map_err(|e| Error::Usage(format!("{}: {e}", table.name)))?;
-        let rows = table.slots + to[0] * to[1];
-        let new_shape = match table.layout {
-            Layout::BatchRows => vec![1, rows, table.dim],
-            Layout::Rows => vec![rows, table.dim],
-            Layout::Grid => vec![1, to[0], to[1], table.dim],
-            Layout::GridChannelsFirst => vec![1, table.dim, to[0], to[1]],
-        };
-        let elem = table.dtype.bitsize() as u64 / 8;
-        // Output bytes plus the f32/f64 working copies of source, intermediate and output.
-        let work = if table.dtype == crate::checkpoint::Dtype::F64 {
-            8
-        } else {
-            4
-        };
-        let cells = (rows as u64).saturating_mul(table.dim as u64);
-        let source_cells = (table.slots + from[0] * from[1]) as u64 * table.dim as u64;
-        // A channels-first table is transposed to rows and back: one more copy of each.
-        let copies = if table.layout == Layout::GridChannelsFirst {
-            1
-        } else {
-            0
-        };
-        let needed = cells
-            .saturating_mul(elem + (3 + copies) * work)
-            .saturating_add(source_cells.saturating_mul(elem + (1 + copies) * work));
-        if needed > request.memory_limit {
-            return Err(Error::refused(
-                path,
-                format!(
-                    "resizing \"{}\" to {}x{} needs about {} MiB, over the {} MiB guard; raise it with --memory-limit",
-                    table.name,
-                    to[0],
-                    to[1],
-                    needed >> 20,
-                    request.memory_limit >> 20
-                ),
-            ));
-        }
-        let rebuild = request.rebuild_sincos && table.kind == crate::discover::Kind::Sincos;
-        let antialias_applied = !rebuild
-            && request.options.kernel != resample::Kernel::Nearest
-            && request.options.kernel != resample::Kernel::Area
-            && (request.options.antialias_applies(from[0], to[0])
-                || request.options.antialias_applies(from[1], to[1]));
-        for companion in &table.companions {
-            let entry = ckpt
-                .find(companion)
-                .expect("discovery names existing tensors");
-            let new_shape = if entry.shape.len() == 2 {
-                vec![1, rows]
-            } else {
-                vec![rows]
-            };
-            if !crate::values::range_fits(entry.dtype, rows) {
-                return Err(Error::refused(
-                    path,
-                    format!(
-                        "position ids \"{companion}\" ({}) cannot hold {rows} positions",
-                        entry.dtype
-                    ),
-                ));
-            }
-            plan.companions.push(CompanionChange {
-                name: companion.clone(),
-                new_shape,
-                rows,
-            });
-        }
-        plan.tables.push(TableChange {
-            table: table.clone(),
-            from,
-            to,
-            new_shape,
-            options: request.options,
-            antialias_applied,
-            rebuild,
-            needed_bytes: needed,
-        });
     }
     Ok(plan)
 }
@@ -271,28 +158,4 @@ fn select<'a>(ckpt: &dyn TensorSource, found: &'a Discovery, name: &str) -> Resu
         path,
         format!("no tensor named \"{name}\" in the file"),
     ))
-}
-
-fn target_grid(path: &std::path::Path, table: &Table, target: Target) -> Result<[usize; 2]> {
-    match target {
-        Target::Grid(h, w) => Ok([h, w]),
-        Target::Image(h, w) => {
-            let p = table.patch.ok_or_else(|| {
-                Error::table(
-                    path,
-                    format!(
-                        "\"{}\": the patch size is unknown (no patch-projection kernel found); pass --patch P or give --grid",
-                        table.name
-                    ),
-                )
-            })?;
-            if h % p != 0 || w % p != 0 {
-                return Err(Error::Usage(format!(
-                    "image {h}x{w} is not a whole number of {p}-pixel patches (\"{}\"); choose a multiple of {p}",
-                    table.name
-                )));
-            }
-            Ok([h / p, w / p])
-        }
-    }
 }

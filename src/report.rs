@@ -9,8 +9,8 @@ use crate::visible::push_line;
 use serde::Serialize;
 
 use crate::checkpoint::{Source, TensorSource};
-use crate::discover::{Discovery, Kind};
 use crate::figure::MapReport;
+use crate::kinds::{ChangeReport, Discovery, Kind};
 use crate::resize::ResizeReport;
 
 /// The result of `scan`.
@@ -120,6 +120,35 @@ pub fn scan_text(r: &ScanReport) -> String {
     s
 }
 
+/// `14x14`, `8x14x14`, `27`.
+fn sides(v: &[usize]) -> String {
+    v.iter()
+        .map(|n| n.to_string())
+        .collect::<Vec<_>>()
+        .join("x")
+}
+
+/// How a change was made, in words.
+fn method_text(t: &ChangeReport) -> String {
+    if t.method == "rebuilt" {
+        return match t.kind {
+            Kind::Sincos => "sine-cosine table built anew".into(),
+            _ => "built anew by its construction".into(),
+        };
+    }
+    let mut options = match (t.kernel, t.coords, t.edges) {
+        (Some(k), Some(c), Some(e)) => format!("{k}, {c}, {e}"),
+        _ => t.method.to_string(),
+    };
+    if let Some(a) = t.cubic_a {
+        let _ = write!(options, ", a = {a}");
+    }
+    if t.antialias {
+        options.push_str(", antialiased");
+    }
+    options
+}
+
 /// The readable summary of a resize.
 pub fn resize_text(r: &ResizeReport) -> String {
     let mut s = String::new();
@@ -135,27 +164,15 @@ pub fn resize_text(r: &ResizeReport) -> String {
         return s;
     }
     for t in &r.tables {
-        let mut options = format!("{}, {}, {}", t.kernel, t.coords, t.edges);
-        if t.method == "rebuilt" {
-            options = "sine-cosine table built anew".to_string();
-        }
-        if let Some(a) = t.cubic_a {
-            let _ = write!(options, ", a = {a}");
-        }
-        if t.antialias {
-            options.push_str(", antialiased");
-        }
         push_line(
             &mut s,
             format!(
-                "{}: {}x{} -> {}x{} ({} kept; {}; {} {:?} -> {:?})",
+                "{}: {} -> {} ({} kept; {}; {} {:?} -> {:?})",
                 t.name,
-                t.from[0],
-                t.from[1],
-                t.to[0],
-                t.to[1],
+                sides(&t.from),
+                sides(&t.to),
                 plural(t.slots, "slot", "slots"),
-                options,
+                method_text(t),
                 t.dtype,
                 t.shape,
                 t.new_shape

@@ -9,15 +9,14 @@ use serde::Serialize;
 use crate::checkpoint::sharded::ShardedSet;
 use crate::checkpoint::torch::TorchFile;
 use crate::checkpoint::writer::{self, Destination, OutEntry, Output};
-use crate::checkpoint::{Dtype, Format, Source, TensorEntry, TensorSource};
-use crate::discover::{self, Hints};
+use crate::checkpoint::{Format, Source, TensorSource};
 use crate::error::{Error, Result};
 use crate::figure::{self, GridRows};
-use crate::plan::{self, Plan, Request, TableChange};
-use crate::resample;
+use crate::kinds::{self, Hints};
+use crate::kinds::{Change, ChangeReport, Images};
+use crate::plan::{self, Plan, Request};
 use crate::selection::{self, SelectionRequest};
 use crate::similarity::{self, Grid};
-use crate::values;
 use crate::write::{self, AtomicFile, Bar, OutputRules, Pending, Progress, Silent};
 
 /// The metadata key posgrid adds, holding its provenance as a JSON string.
@@ -48,29 +47,6 @@ pub struct ResizeJob {
     pub selection: SelectionRequest,
 }
 
-/// One resized table in the report.
-#[derive(Debug, Clone, Serialize)]
-pub struct TableReport {
-    pub name: String,
-    pub dtype: String,
-    pub slots: usize,
-    pub from: [usize; 2],
-    pub to: [usize; 2],
-    pub shape: Vec<usize>,
-    pub new_shape: Vec<usize>,
-    pub kind: discover::Kind,
-    pub kernel: resample::Kernel,
-    pub coords: resample::Coords,
-    pub edges: resample::Edges,
-    pub antialias: bool,
-    pub cubic_a: Option<f64>,
-    /// `resampled`, or `rebuilt` for a sine-cosine table built anew on the target grid.
-    pub method: &'static str,
-    pub companions: Vec<String>,
-    /// Similarity-map fidelity of the resized table (1 is perfect).
-    pub fidelity: Option<f64>,
-}
-
 /// What `resize` did (or, in a dry run, would do).
 #[derive(Debug, Clone, Serialize)]
 pub struct ResizeReport {
@@ -79,7 +55,7 @@ pub struct ResizeReport {
     pub dry_run: bool,
     /// True when every selected table was already at its target and nothing was written.
     pub nothing_to_do: bool,
-    pub tables: Vec<TableReport>,
+    pub tables: Vec<ChangeReport>,
     pub already_at_target: Vec<String>,
     pub companions: Vec<String>,
     pub copied: Vec<String>,
@@ -98,36 +74,10 @@ pub struct ResizeReport {
     pub warnings: Vec<String>,
 }
 
-fn table_report(change: &TableChange) -> TableReport {
-    let o = &change.options;
-    TableReport {
-        name: change.table.name.clone(),
-        dtype: change.table.dtype.to_string(),
-        slots: change.table.slots,
-        from: change.from,
-        to: change.to,
-        shape: change.table.shape.clone(),
-        new_shape: change.new_shape.clone(),
-        kind: change.table.kind,
-        kernel: o.kernel,
-        coords: o.coords,
-        edges: o.edges,
-        antialias: change.antialias_applied,
-        cubic_a: (o.kernel == resample::Kernel::Bicubic && !change.rebuild).then_some(o.cubic_a),
-        method: if change.rebuild {
-            "rebuilt"
-        } else {
-            "resampled"
-        },
-        companions: change.table.companions.clone(),
-        fidelity: None,
-    }
-}
-
 /// Run a resize job.
 pub fn run(job: &ResizeJob) -> Result<ResizeReport> {
     let source = Source::open(&job.input)?;
-    let mut found = discover::discover(&source, &job.hints)?;
+    let mut found = kinds::discover(&source, &job.hints)?;
     found.warnings.extend(source.notes());
     let format = job
         .format
@@ -143,9 +93,9 @@ pub fn run(job: &ResizeJob) -> Result<ResizeReport> {
         output: job.output.clone(),
         dry_run: job.dry_run,
         nothing_to_do: plan.is_noop(),
-        tables: plan.tables.iter().map(table_report).collect(),
+        tables: plan.changes.iter().map(|c| c.report()).collect(),
         already_at_target: plan.already_at_target.clone(),
-        companions: plan.companions.iter().map(|c| c.name.clone()).collect(),
+        companions: plan.companions(),
         copied: source
             .entries()
             .iter()
@@ -166,14 +116,16 @@ pub fn run(job: &ResizeJob) -> Result<ResizeReport> {
     let writer = writer::for_format(format);
     check_outputs(&source, job, format)?;
 
-    let Computed {
+    let Outcome {
         bytes: new_data,
-        grids,
+        images,
     } = compute(&source, &plan, job.request.allow_nonfinite)?;
-    for (report_table, (change, before, after)) in report.tables.iter_mut().zip(&grids) {
-        let (fidelity, notes) = table_fidelity(change, before, after, job);
-        report_table.fidelity = fidelity;
-        report.warnings.extend(notes);
+    for (report_table, (change, images)) in report.tables.iter_mut().zip(&images) {
+        if let Some(images) = images {
+            let (fidelity, notes) = fidelity_of(*change, images, job);
+            report_table.fidelity = fidelity;
+            report.warnings.extend(notes);
+        }
     }
     let output = output_of(&source, &plan, &selection, &new_data);
     account_for(&mut report, &source, &output, &plan)?;
@@ -188,7 +140,7 @@ pub fn run(job: &ResizeJob) -> Result<ResizeReport> {
     if job.dry_run {
         return Ok(report);
     }
-    let figure = draw_map(job, &grids, &mut report.warnings)?;
+    let figure = draw_map(job, &images, &mut report.warnings)?;
     write_and_commit(job, &source, writer.as_ref(), &output, figure, &mut report)?;
     Ok(report)
 }
@@ -209,7 +161,7 @@ fn output_of<'a>(
             .filter_map(|t| {
                 Some(OutEntry {
                     name: selection::out_name(&t.name, selection)?,
-                    shape: plan.new_shape(&t.name).unwrap_or(&t.shape).clone(),
+                    shape: plan.new_shape(&t.name).unwrap_or(&t.shape).to_vec(),
                     origin: t,
                     new: new_data.get(&t.name).map(Vec::as_slice),
                 })
@@ -281,28 +233,31 @@ fn write_and_commit(
 
 /// What the memory guard leaves for the maps and the fidelity score of a table once its
 /// resize is paid for.
-fn fidelity_budget(change: &TableChange, job: &ResizeJob) -> similarity::Budget {
-    similarity::Budget::memory(job.request.memory_limit.saturating_sub(change.needed_bytes))
+fn fidelity_budget(change: &dyn Change, job: &ResizeJob) -> similarity::Budget {
+    similarity::Budget::memory(
+        job.request
+            .memory_limit
+            .saturating_sub(change.needed_bytes()),
+    )
 }
 
-/// The fidelity score of one resized table (`None` when undefined or over the guard) and
-/// the warnings that explain it.
-fn table_fidelity(
-    change: &TableChange,
-    before: &[f32],
-    after: &[f32],
+/// The fidelity score of one change (`None` when undefined or over the guard) and the
+/// warnings that explain it.
+fn fidelity_of(
+    change: &dyn Change,
+    images: &Images,
     job: &ResizeJob,
 ) -> (Option<f64>, Vec<String>) {
     let grid = |rows, [h, w]: [usize; 2]| Grid {
         rows,
         h,
         w,
-        d: change.table.dim,
+        d: images.width,
     };
-    let name = &change.table.name;
+    let name = change.name();
     match similarity::score(
-        grid(before, change.from),
-        grid(after, change.to),
+        grid(&images.before, images.from),
+        grid(&images.after, images.to),
         job.refs,
         fidelity_budget(change, job),
     ) {
@@ -365,11 +320,11 @@ fn refuse_repeated_names(source: &Source, output: &Output) -> Result<()> {
 /// Tensors written unchanged that have the shape of a table before its resize: in a training
 /// checkpoint, optimizer moments of the old table, which no longer fit the resized model.
 fn stale_moments(output: &Output, plan: &Plan) -> Vec<String> {
-    let old_shapes: Vec<&Vec<usize>> = plan.tables.iter().map(|c| &c.table.shape).collect();
+    let old_shapes: Vec<&[usize]> = plan.changes.iter().map(|c| c.shape()).collect();
     let stale: Vec<&str> = output
         .entries
         .iter()
-        .filter(|e| e.new.is_none() && old_shapes.contains(&&e.origin.shape))
+        .filter(|e| e.new.is_none() && old_shapes.contains(&e.origin.shape.as_slice()))
         .filter(|e| !plan.already_at_target.contains(&e.origin.name))
         .map(|e| e.origin.name.as_str())
         .collect();
@@ -432,19 +387,26 @@ fn mode_source<'a>(job: &'a ResizeJob, source: &'a Source) -> &'a Path {
 /// memory before anything is written, so the figure and OUT can be committed together.
 fn draw_map(
     job: &ResizeJob,
-    grids: &[(&TableChange, Vec<f32>, Vec<f32>)],
+    images: &[(&dyn Change, Option<Images>)],
     warnings: &mut Vec<String>,
 ) -> Result<Option<Vec<u8>>> {
-    let (Some(_), Some((change, before, after))) = (&job.map, grids.first()) else {
+    let Some(_) = &job.map else {
+        return Ok(None);
+    };
+    // The first absolute table that was resampled.
+    let Some((change, table, images)) = images.iter().find_map(|(c, i)| {
+        let table = c.absolute()?;
+        Some((*c, table, i.as_ref()?))
+    }) else {
         return Ok(None);
     };
     let rows = GridRows::borrowed;
-    let mut after_table = change.table.clone();
-    after_table.grid = change.to;
+    let mut after_table = table.table.clone();
+    after_table.grid = table.to;
     let drawn = figure::figure(
         &job.input,
-        &rows(&change.table, before),
-        Some(&rows(&after_table, after)),
+        &rows(&table.table, &images.before),
+        Some(&rows(&after_table, &images.after)),
         job.refs,
         fidelity_budget(change, job),
     )?;
@@ -478,193 +440,38 @@ fn progress_for(job: &ResizeJob, total: u64) -> Box<dyn Progress> {
     }
 }
 
-/// The new bytes of every changed tensor, by name, and each table's grid rows before and
-/// after (f32, without class slots) for the similarity measures.
-struct Computed<'a> {
+/// The new bytes of every rewritten tensor, by name, and each change's images before and
+/// after for the similarity measures.
+struct Outcome<'a> {
     bytes: HashMap<String, Vec<u8>>,
-    grids: Vec<(&'a TableChange, Vec<f32>, Vec<f32>)>,
+    images: Vec<(&'a dyn Change, Option<Images>)>,
 }
 
 fn compute<'a>(
     ckpt: &dyn TensorSource,
     plan: &'a Plan,
     allow_nonfinite: bool,
-) -> Result<Computed<'a>> {
-    let mut out = Computed {
+) -> Result<Outcome<'a>> {
+    let mut out = Outcome {
         bytes: HashMap::new(),
-        grids: Vec::new(),
+        images: Vec::new(),
     };
-    for change in &plan.tables {
-        let entry = ckpt.find(&change.table.name).expect("planned tables exist");
-        let raw = ckpt.bytes(entry)?;
-        let (bytes, before, after) =
-            resized_table(ckpt.source_path(), entry, &raw, change, allow_nonfinite)?;
-        out.bytes.insert(entry.name.clone(), bytes);
-        out.grids.push((change, before, after));
-    }
-    for c in &plan.companions {
-        let entry = ckpt.find(&c.name).expect("planned companions exist");
-        let bytes = values::encode_range(entry.dtype, c.rows)
-            .map_err(|e| values::value_error(ckpt.source_path(), &c.name, e))?;
-        out.bytes.insert(c.name.clone(), bytes);
+    for change in &plan.changes {
+        let computed = change.compute(ckpt, allow_nonfinite)?;
+        out.bytes.extend(computed.bytes);
+        out.images.push((change.as_ref(), computed.images));
     }
     Ok(out)
-}
-
-/// Class slots copied byte for byte, grid rows resampled in f32 (f64 for F64 tables) and
-/// rounded to the table's dtype, nearest even. Also returns the grid rows before and after.
-/// Non-finite values are refused in the input (class rows included) and in the output, where
-/// a kernel with negative lobes can overshoot past the dtype's largest value.
-fn resized_table(
-    path: &Path,
-    entry: &TensorEntry,
-    raw: &[u8],
-    change: &TableChange,
-    allow_nonfinite: bool,
-) -> Result<(Vec<u8>, Vec<f32>, Vec<f32>)> {
-    let t = &change.table;
-    let elem = entry.dtype.bitsize() / 8;
-    let slot_bytes = t.slots * t.dim * elem;
-    let (slots, grid) = raw.split_at(slot_bytes);
-    if !allow_nonfinite {
-        refuse_nonfinite_input(path, t, entry.dtype, slots, grid)?;
-    }
-    let out_len = slot_bytes + change.to[0] * change.to[1] * t.dim * elem;
-    let oom = |e| values::out_of_memory(path, &format!("resizing \"{}\"", t.name), e);
-    let mut bytes = values::try_with_capacity(out_len).map_err(oom)?;
-    bytes.extend_from_slice(slots);
-    let value_error = |e| values::value_error(path, &format!("resizing \"{}\"", t.name), e);
-    // Computed in row order [H·W, D]; stored in the table's own layout.
-    let (before, after) = if entry.dtype == Dtype::F64 {
-        let v = values::decode_f64(entry.dtype, grid).map_err(value_error)?;
-        let v = t.to_row_order(v).map_err(oom)?;
-        let r = new_grid(&v, change).map_err(|e| resample_error(path, t, e))?;
-        let stored = t.from_row_order(&r).map_err(oom)?;
-        values::encode_f64_into(entry.dtype, &stored, &mut bytes).map_err(value_error)?;
-        let narrow = |x: &[f64]| values::try_collect(x.len(), x.iter().map(|v| *v as f32));
-        (narrow(&v).map_err(oom)?, narrow(&r).map_err(oom)?)
-    } else {
-        let v = values::decode_f32(entry.dtype, grid).map_err(value_error)?;
-        let v = t.to_row_order(v).map_err(oom)?;
-        let r = new_grid(&v, change).map_err(|e| resample_error(path, t, e))?;
-        let stored = t.from_row_order(&r).map_err(oom)?;
-        values::encode_f32_into(entry.dtype, &stored, &mut bytes).map_err(value_error)?;
-        drop(stored);
-        (v, r)
-    };
-    if !allow_nonfinite {
-        refuse_nonfinite_output(path, change, entry.dtype, &bytes[slot_bytes..])?;
-    }
-    Ok((bytes, before, after))
-}
-
-/// The new grid rows: resampled, or for `--rebuild-sincos` built anew.
-fn new_grid<T: resample::Sample>(
-    v: &[T],
-    change: &TableChange,
-) -> std::result::Result<Vec<T>, resample::ResampleError> {
-    let (from, to) = (
-        (change.from[0], change.from[1]),
-        (change.to[0], change.to[1]),
-    );
-    let t = &change.table;
-    match (change.rebuild, t.sincos_first_axis) {
-        (true, Some(first)) => Ok(crate::sincos::build(to.0, to.1, t.dim, first)
-            .expect("a recognised sine-cosine table has a width divisible by 4")
-            .into_iter()
-            .map(T::from_f64)
-            .collect()),
-        _ => resample::resample(v, from, t.dim, to, &change.options),
-    }
-}
-
-fn resample_error(path: &Path, t: &discover::Table, e: resample::ResampleError) -> Error {
-    match e {
-        resample::ResampleError::OutOfMemory { bytes } => values::out_of_memory(
-            path,
-            &format!("resizing \"{}\"", t.name),
-            values::OutOfMemory { bytes },
-        ),
-        other => Error::Usage(format!("{}: {other}", t.name)),
-    }
-}
-
-fn refuse_nonfinite_input(
-    path: &Path,
-    t: &discover::Table,
-    dtype: Dtype,
-    slots: &[u8],
-    grid: &[u8],
-) -> Result<()> {
-    let (in_slots, in_grid) = (
-        values::count_nonfinite(dtype, slots),
-        values::count_nonfinite(dtype, grid),
-    );
-    if in_slots + in_grid == 0 {
-        return Ok(());
-    }
-    let place = match (in_slots, in_grid) {
-        (0, _) => "in its grid rows".to_string(),
-        (_, 0) => "in its class rows".to_string(),
-        (s, g) => format!("{s} in its class rows, {g} in its grid rows"),
-    };
-    Err(Error::refused(
-        path,
-        format!(
-            "table \"{}\" holds {} NaN or infinite value(s) ({place}); pass --allow-nonfinite to resize it anyway",
-            t.name,
-            in_slots + in_grid
-        ),
-    ))
-}
-
-fn refuse_nonfinite_output(
-    path: &Path,
-    change: &TableChange,
-    dtype: Dtype,
-    grid: &[u8],
-) -> Result<()> {
-    let bad = values::count_nonfinite(dtype, grid);
-    if bad == 0 {
-        return Ok(());
-    }
-    Err(Error::refused(
-        path,
-        format!(
-            "resizing table \"{}\" to {}x{} with the {} kernel gives {bad} infinite or NaN value(s) in {dtype} \
-(the kernel overshoots values near the largest {dtype} can hold); use a kernel that cannot overshoot \
-(--kernel bilinear, area or nearest), or pass --allow-nonfinite to write them anyway",
-            change.table.name, change.to[0], change.to[1], change.options.kernel
-        ),
-    ))
 }
 
 /// Provenance: the version and, per table, the grids, slots and options. A writer whose
 /// container holds metadata adds a record already in its source under `previous`.
 pub(crate) fn provenance(plan: &Plan) -> serde_json::Value {
-    let tables: Vec<serde_json::Value> = plan
-        .tables
-        .iter()
-        .map(|c| {
-            serde_json::json!({
-                "name": c.table.name,
-                "method": if c.rebuild { "rebuilt" } else { "resampled" },
-                "from": c.from,
-                "to": c.to,
-                "slots": c.table.slots,
-                "kernel": c.options.kernel,
-                "coords": c.options.coords,
-                "edges": c.options.edges,
-                "antialias": c.options.antialias,
-                "antialias_applied": c.antialias_applied,
-                "cubic_a": c.options.cubic_a,
-            })
-        })
-        .collect();
+    let tables: Vec<serde_json::Value> = plan.changes.iter().map(|c| c.provenance()).collect();
     serde_json::json!({
         "tool": "posgrid",
         "version": env!("CARGO_PKG_VERSION"),
         "tables": tables,
-        "companions": plan.companions.iter().map(|c| &c.name).collect::<Vec<_>>(),
+        "companions": plan.companions(),
     })
 }

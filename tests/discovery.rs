@@ -5,10 +5,10 @@ mod common;
 
 use common::*;
 use posgrid::checkpoint::Checkpoint;
-use posgrid::discover::{discover, Hints, Kind, Layout};
+use posgrid::kinds::{discover, Hints, Kind, Layout};
 use safetensors::Dtype;
 
-fn scan(path: &std::path::Path, hints: &Hints) -> posgrid::discover::Discovery {
+fn scan(path: &std::path::Path, hints: &Hints) -> posgrid::kinds::Discovery {
     discover(&Checkpoint::open(path).unwrap(), hints).unwrap()
 }
 
@@ -577,14 +577,9 @@ fn a_four_dimensional_table_that_reads_two_ways_is_ambiguous_until_told() {
     assert_eq!(found.ambiguous.len(), 1);
     assert!(found.ambiguous[0].resolve_with.contains("--channels"));
     for (channels, layout, grid, dim) in [
+        (posgrid::kinds::Channels::Last, Layout::Grid, [10, 12], 11),
         (
-            posgrid::discover::Channels::Last,
-            Layout::Grid,
-            [10, 12],
-            11,
-        ),
-        (
-            posgrid::discover::Channels::First,
+            posgrid::kinds::Channels::First,
             Layout::GridChannelsFirst,
             [12, 11],
             10,

@@ -8,7 +8,7 @@ use std::process::Command;
 
 use common::*;
 use posgrid::checkpoint::InMemory;
-use posgrid::discover::{discover, Hints};
+use posgrid::kinds::{discover, Hints};
 use proptest::prelude::*;
 use safetensors::Dtype;
 

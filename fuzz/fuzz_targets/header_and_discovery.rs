@@ -4,7 +4,7 @@
 
 use libfuzzer_sys::fuzz_target;
 use posgrid::checkpoint::InMemory;
-use posgrid::discover::{discover, Hints};
+use posgrid::kinds::{discover, Hints};
 
 fuzz_target!(|data: &[u8]| {
     if let Ok(source) = InMemory::parse(data) {

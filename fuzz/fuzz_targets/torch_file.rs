@@ -7,7 +7,7 @@
 mod whole_file;
 
 use libfuzzer_sys::fuzz_target;
-use posgrid::discover::{self, Hints};
+use posgrid::kinds::{self, Hints};
 
 fuzz_target!(|data: &[u8]| {
     if let Some(source) = whole_file::open_and_read(data, "pth") {

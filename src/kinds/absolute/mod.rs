@@ -1,57 +1,26 @@
-//! Discovery: from a checkpoint's tensor list (and the values of a few candidates) to the
-//! position tables that sit on a 2-D patch grid, with their class slots, grid, patch size,
-//! kind and companion tensors. Nothing here writes; ambiguity is reported, never guessed away.
+//! Absolute position tables (kinds `learned` and `sincos`): one row per patch of the grid after
+//! leading class slots, as `[1, N, D]`, `[N, D]`, `[1, H, W, D]` or `[1, D, H, W]`. Recognised by
+//! name and row arithmetic (the values settle a sine-cosine table); resampled on the grid with
+//! the engine (or a sine-cosine table built anew); integer position-id buffers follow them.
+
+mod change;
 
 use serde::Serialize;
 
+use super::names::{common_prefix_len, integer_sqrt, normalized, parent, without_first_component};
+use super::{
+    serialize_dtype, value_tolerance, Ambiguous, Channels, Discovery, Hints, Kind, Skipped,
+    MAX_VALUE_READ,
+};
 use crate::checkpoint::{Dtype, TensorEntry, TensorSource};
 use crate::error::Result;
 use crate::sincos::{self, FirstAxis};
 use crate::values::{self, OutOfMemory};
 
-/// Candidate tables larger than this are not read for the sine-cosine check (bounded memory).
-pub const MAX_VALUE_READ: u64 = 256 << 20;
+pub use change::{plan, IdsChange, TableChange};
 
 /// The most leading class-like slots a table may have.
 pub const MAX_SLOTS: usize = 8;
-
-/// What the user told discovery; each `None` means "infer it".
-#[derive(Debug, Clone, Default)]
-pub struct Hints {
-    /// The source grid (rows, columns), for tables whose grid cannot be inferred.
-    pub source_grid: Option<(usize, usize)>,
-    /// The number of leading class slots.
-    pub slots: Option<usize>,
-    /// The patch size in pixels.
-    pub patch: Option<usize>,
-    /// Consider these tensors position tables whatever their names.
-    pub tensors: Vec<String>,
-    /// Where the channels of a 4-D `[1, ., ., .]` table sit.
-    pub channels: Option<Channels>,
-}
-
-/// Where the channel (embedding) dimension of a 4-D table sits.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
-#[serde(rename_all = "lowercase")]
-pub enum Channels {
-    /// `[1, D, H, W]`
-    First,
-    /// `[1, H, W, D]`
-    Last,
-}
-
-impl std::str::FromStr for Channels {
-    type Err = String;
-    fn from_str(s: &str) -> std::result::Result<Self, String> {
-        match s {
-            "first" => Ok(Channels::First),
-            "last" => Ok(Channels::Last),
-            _ => Err(format!(
-                "unknown value \"{s}\"; expected first ([1, D, H, W]) or last ([1, H, W, D])"
-            )),
-        }
-    }
-}
 
 /// How the table's rows are laid out in the tensor.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
@@ -65,14 +34,6 @@ pub enum Layout {
     Grid,
     /// `[1, D, H, W]`: channels first (no class slots)
     GridChannelsFirst,
-}
-
-/// Whether the table was learned or follows the fixed sine-cosine construction.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
-#[serde(rename_all = "lowercase")]
-pub enum Kind {
-    Learned,
-    Sincos,
 }
 
 /// A position table on a 2-D patch grid.
@@ -130,52 +91,6 @@ impl Table {
     }
 }
 
-/// A tensor that looked like a position table by name but was not taken, with the reason.
-#[derive(Debug, Clone, Serialize)]
-pub struct Skipped {
-    pub name: String,
-    pub reason: String,
-}
-
-/// A table whose class slots or grid have more than one explanation.
-#[derive(Debug, Clone, Serialize)]
-pub struct Ambiguous {
-    pub name: String,
-    pub rows: usize,
-    /// Each explanation as (slots, [rows, columns]).
-    pub candidates: Vec<(usize, [usize; 2])>,
-    /// What to pass to settle it.
-    pub resolve_with: String,
-}
-
-/// Everything discovery found.
-#[derive(Debug, Clone, Serialize, Default)]
-pub struct Discovery {
-    pub tables: Vec<Table>,
-    pub ambiguous: Vec<Ambiguous>,
-    pub skipped: Vec<Skipped>,
-    pub warnings: Vec<String>,
-}
-
-impl Discovery {
-    /// The table with this name.
-    pub fn table(&self, name: &str) -> Option<&Table> {
-        self.tables.iter().find(|t| t.name == name)
-    }
-}
-
-fn serialize_dtype<S: serde::Serializer>(d: &Dtype, s: S) -> std::result::Result<S::Ok, S::Error> {
-    s.collect_str(d)
-}
-
-/// Lower-case letters and digits only, so `pos_embed`, `posEmbed` and `pos-embed` compare equal.
-fn normalized(name: &str) -> String {
-    name.chars()
-        .filter(|c| c.is_ascii_alphanumeric())
-        .map(|c| c.to_ascii_lowercase())
-        .collect()
-}
-
 /// Names of position tables in released checkpoints (common practice): `pos_embed`,
 /// `position_embedding(s)`, `positional_embedding`, `posembed_input`, `pos_embedding`.
 fn is_position_name(name: &str) -> bool {
@@ -190,47 +105,10 @@ fn is_position_id_name(name: &str) -> bool {
     n.contains("positionids") || n.contains("posids") || n.contains("positionid")
 }
 
-/// The module path a tensor sits in: everything before its last `.` or `/`.
-fn parent(name: &str) -> &str {
-    name.rfind(['.', '/']).map_or("", |i| &name[..i])
-}
-
-/// Name with its first path component removed (`model_ema.pos_embed` → `pos_embed`).
-fn without_first_component(name: &str) -> &str {
-    name.find(['.', '/']).map_or(name, |i| &name[i + 1..])
-}
-
-fn common_prefix_len(a: &str, b: &str) -> usize {
-    a.bytes().zip(b.bytes()).take_while(|(x, y)| x == y).count()
-}
-
-fn integer_sqrt(n: usize) -> Option<usize> {
-    let r = (n as f64).sqrt().round() as usize;
-    (r * r == n).then_some(r)
-}
-
-/// Tolerance for recognising the sine-cosine construction: 1e-4, plus the rounding step of
-/// the storage dtype near 1.0 (half an ulp of F16/BF16).
-fn sincos_tolerance(dtype: Dtype) -> f64 {
-    1e-4 + match dtype {
-        Dtype::F16 => 2f64.powi(-11),
-        Dtype::BF16 => 2f64.powi(-8),
-        _ => 0.0,
-    }
-}
-
-/// Find every position table in `source`.
-pub fn discover(source: &dyn TensorSource, hints: &Hints) -> Result<Discovery> {
+/// Find every absolute position table in `source`, with its patch size, companions and copies.
+pub(super) fn find(source: &dyn TensorSource, hints: &Hints, found: &mut Discovery) -> Result<()> {
     let entries = source.entries();
-    let mut found = Discovery::default();
     let kernel_widths: Vec<usize> = patch_kernels(entries).iter().map(|k| k.1).collect();
-    for name in &hints.tensors {
-        if !entries.iter().any(|t| &t.name == name) {
-            found.warnings.push(format!(
-                "--tensor {name}: no tensor of that name in the file"
-            ));
-        }
-    }
     for entry in entries {
         let forced = hints.tensors.iter().any(|n| n == &entry.name);
         if !forced && !is_position_name(&entry.name) {
@@ -251,24 +129,10 @@ pub fn discover(source: &dyn TensorSource, hints: &Hints) -> Result<Discovery> {
             Verdict::Ignore => {}
         }
     }
-    infer_patches(entries, &mut found, hints);
-    find_companions(source, &mut found)?;
+    infer_patches(entries, found, hints);
+    find_companions(source, found)?;
     mark_copies(&mut found.tables);
-    for a in &found.ambiguous {
-        let options: Vec<String> = a
-            .candidates
-            .iter()
-            .map(|(s, [h, w])| format!("{s} slot(s) + {h}x{w}"))
-            .collect();
-        found.warnings.push(format!(
-            "{}: {} rows fit {}; pass {} to choose",
-            a.name,
-            a.rows,
-            options.join(" or "),
-            a.resolve_with
-        ));
-    }
-    Ok(found)
+    Ok(())
 }
 
 enum Verdict {
@@ -406,7 +270,7 @@ fn examine(
         values::transpose(&v, dim, rows)
             .map_err(|e| values::out_of_memory(source.source_path(), &entry.name, e))
     };
-    let tol = sincos_tolerance(entry.dtype);
+    let tol = value_tolerance(entry.dtype);
     let mut loaded: Option<Vec<f64>> = None;
     let sincos_fit = |v: &[f64], s: usize, (h, w): (usize, usize)| -> Option<FirstAxis> {
         sincos::matches(v.get(s * dim..)?, h, w, dim, tol)
