@@ -26,6 +26,7 @@ pub mod discover;
 pub mod error;
 pub mod figure;
 pub mod plan;
+pub mod rebuild;
 pub mod render;
 pub mod report;
 pub mod resample;
