@@ -26,6 +26,7 @@ pub mod error;
 pub mod figure;
 pub mod kinds;
 pub mod plan;
+pub mod rebuild;
 pub mod render;
 pub mod report;
 pub mod resample;

@@ -1,6 +1,7 @@
 //! The resampling engine: a table `[H, W, D]` (channels last, D contiguous) to `[H', W', D]`,
 //! by two separable passes over per-axis weight tables. No file knowledge lives here.
 
+pub mod geometric;
 pub mod kernels;
 pub mod options;
 pub mod weights;
