@@ -1,15 +1,22 @@
-//! The resampling engine: a table `[H, W, D]` (channels last, D contiguous) to `[H', W', D]`,
-//! by two separable passes over per-axis weight tables. No file knowledge lives here.
+//! The resampling engine: a grid of 1, 2 or 3 axes whose cells hold D contiguous values
+//! (`[N, D]`, `[H, W, D]`, `[T, H, W, D]`, row-major) to a new grid of the same rank, by one
+//! separable pass per axis whose size changes, over per-axis weight tables. No file knowledge
+//! lives here.
 
 pub mod geometric;
 pub mod kernels;
 pub mod options;
+mod passes;
 pub mod weights;
 
-use rayon::prelude::*;
+use std::borrow::Cow;
 
 pub use options::{Antialias, Coords, Edges, Kernel, Options, DEFAULT_CUBIC_A};
-pub use weights::{axis_weights, AxisWeights};
+use passes::{pass_along_axis, AxisLayout};
+pub use weights::{axis_weights, try_axis_weights, AxisWeights};
+
+/// The most grid axes the engine resamples: time, height, width.
+pub const MAX_AXES: usize = 3;
 
 /// An element type the engine computes in.
 pub trait Sample:
@@ -47,6 +54,31 @@ pub enum ResampleError {
     AreaNeedsHalfPixel,
     #[error("cubic parameter a must be finite")]
     BadCubicA,
+    #[error("a grid has 1 to 3 axes (got {0})")]
+    UnsupportedRank(usize),
+    #[error("the source grid has {from} axes but the target grid has {to}")]
+    RankMismatch { from: usize, to: usize },
+    #[error("grid sizes must be at least 1 on every axis (got {} to {})", shape_text(.from), shape_text(.to))]
+    EmptyAxis { from: Vec<usize>, to: Vec<usize> },
+    #[error("table holds {found} values but a {} grid of width {d} needs {expected}", shape_text(.grid))]
+    GridLengthMismatch {
+        found: usize,
+        expected: usize,
+        grid: Vec<usize>,
+        d: usize,
+    },
+    #[error("resampling a {} grid of width {d} to {} needs more values than memory can address", shape_text(.from), shape_text(.to))]
+    SizeOverflow {
+        from: Vec<usize>,
+        to: Vec<usize>,
+        d: usize,
+    },
+    #[error("weights made for {found} samples cannot resample axis {axis} of {expected} samples")]
+    WeightsMismatch {
+        axis: usize,
+        expected: usize,
+        found: usize,
+    },
     /// A working buffer could not be allocated.
     #[error("cannot allocate {} MiB for the resampled values", bytes.div_ceil(1 << 20))]
     OutOfMemory { bytes: usize },
@@ -58,7 +90,13 @@ impl From<crate::values::OutOfMemory> for ResampleError {
     }
 }
 
-/// Check options and sizes without doing any work.
+/// Grid sizes as they are written on the command line: `8x14x14`.
+fn shape_text(sizes: &[usize]) -> String {
+    let parts: Vec<String> = sizes.iter().map(usize::to_string).collect();
+    parts.join("x")
+}
+
+/// Check options and sizes of a 2-D request without doing any work.
 pub fn validate(
     src: (usize, usize),
     dst: (usize, usize),
@@ -67,6 +105,10 @@ pub fn validate(
     if src.0 == 0 || src.1 == 0 || dst.0 == 0 || dst.1 == 0 {
         return Err(ResampleError::EmptyGrid(src.0, src.1, dst.0, dst.1));
     }
+    validate_options(opts)
+}
+
+fn validate_options(opts: &Options) -> Result<(), ResampleError> {
     if opts.kernel == Kernel::Area && opts.coords != Coords::HalfPixel {
         return Err(ResampleError::AreaNeedsHalfPixel);
     }
@@ -74,6 +116,72 @@ pub fn validate(
         return Err(ResampleError::BadCubicA);
     }
     Ok(())
+}
+
+/// Check a request on a grid of 1 to 3 axes whose cells hold `d` values without doing any
+/// work: ranks, sizes, options, and that every buffer's length can be counted.
+pub fn validate_grid(
+    from: &[usize],
+    to: &[usize],
+    d: usize,
+    opts: &Options,
+) -> Result<(), ResampleError> {
+    if from.len() != to.len() {
+        return Err(ResampleError::RankMismatch {
+            from: from.len(),
+            to: to.len(),
+        });
+    }
+    if from.is_empty() || from.len() > MAX_AXES {
+        return Err(ResampleError::UnsupportedRank(from.len()));
+    }
+    if from.iter().chain(to).any(|&n| n == 0) {
+        return Err(ResampleError::EmptyAxis {
+            from: from.to_vec(),
+            to: to.to_vec(),
+        });
+    }
+    validate_options(opts)?;
+    // Every buffer of every pass is at most the larger size of each axis, multiplied out.
+    let largest = from
+        .iter()
+        .zip(to)
+        .try_fold(1usize, |n, (&a, &b)| n.checked_mul(a.max(b)))
+        .and_then(|cells| cells.checked_mul(d.max(1)));
+    match largest {
+        Some(_) => Ok(()),
+        None => Err(ResampleError::SizeOverflow {
+            from: from.to_vec(),
+            to: to.to_vec(),
+            d,
+        }),
+    }
+}
+
+/// Resample `src`, a row-major grid of sizes `from` (1 to 3 axes, the last fastest) whose
+/// cells hold `d` contiguous values, to sizes `to`. Each axis uses the same options; an axis
+/// whose size is unchanged is not touched (its values are copied exactly).
+pub fn resample_grid<T: Sample>(
+    src: &[T],
+    from: &[usize],
+    d: usize,
+    to: &[usize],
+    opts: &Options,
+) -> Result<Vec<T>, ResampleError> {
+    validate_grid(from, to, d, opts)?;
+    // Cannot overflow: validate_grid bounded the product.
+    let expected = from.iter().product::<usize>() * d;
+    if src.len() != expected {
+        return Err(ResampleError::GridLengthMismatch {
+            found: src.len(),
+            expected,
+            grid: from.to_vec(),
+            d,
+        });
+    }
+    separable(src, from, d, to, |axis| {
+        Ok(Cow::Owned(try_axis_weights(from[axis], to[axis], opts)?))
+    })
 }
 
 /// Resample `src`, a row-major `[h, w, d]` grid, to `[oh, ow, d]`.
@@ -85,21 +193,22 @@ pub fn resample<T: Sample>(
     opts: &Options,
 ) -> Result<Vec<T>, ResampleError> {
     validate((h, w), (oh, ow), opts)?;
-    if src.len() != h * w * d {
-        return Err(ResampleError::LengthMismatch {
-            found: src.len(),
-            expected: h * w * d,
+    check_length(src.len(), (h, w), d)?;
+    resample_grid(src, &[h, w], d, &[oh, ow], opts)
+}
+
+/// The 2-D length check, with its 2-D error (an uncountable size is left to the grid check).
+fn check_length(found: usize, (h, w): (usize, usize), d: usize) -> Result<(), ResampleError> {
+    match h.checked_mul(w).and_then(|n| n.checked_mul(d)) {
+        Some(expected) if expected != found => Err(ResampleError::LengthMismatch {
+            found,
+            expected,
             h,
             w,
             d,
-        });
+        }),
+        _ => Ok(()),
     }
-    if (h, w) == (oh, ow) || d == 0 {
-        return copied(src);
-    }
-    let across = axis_weights(w, ow, opts);
-    let down = axis_weights(h, oh, opts);
-    apply(src, (h, w), d, &down, &across)
 }
 
 fn copied<T: Sample>(src: &[T]) -> Result<Vec<T>, ResampleError> {
@@ -123,8 +232,8 @@ pub fn resample_array<T: Sample>(
     Ok(ndarray::Array3::from_shape_vec((oh, ow, d), out).expect("resample returns oh*ow*d values"))
 }
 
-/// Apply precomputed weight tables: first along rows (W → W'), then down columns (H → H').
-/// Buffers are allocated fallibly: their size comes from the input.
+/// Apply precomputed weight tables to a row-major `[h, w, d]` grid: first along rows
+/// (W → W'), then down columns (H → H'); an axis whose size is unchanged is skipped.
 pub fn apply<T: Sample>(
     src: &[T],
     (h, w): (usize, usize),
@@ -132,71 +241,47 @@ pub fn apply<T: Sample>(
     down: &AxisWeights,
     across: &AxisWeights,
 ) -> Result<Vec<T>, ResampleError> {
-    let ow = across.output;
-    let oh = down.output;
-    let horizontal = if w == ow {
-        None
-    } else {
-        let wx: Vec<T> = across.weight.iter().map(|&v| T::from_f64(v)).collect();
-        let mut tmp =
-            crate::values::try_filled(h.saturating_mul(ow).saturating_mul(d), T::default())?;
-        tmp.par_chunks_mut(ow * d)
-            .zip(src.par_chunks(w * d))
-            .for_each(|(out_row, in_row)| {
-                for (o, cell) in out_row.chunks_exact_mut(d).enumerate() {
-                    let taps = o * across.taps..(o + 1) * across.taps;
-                    let idx = &across.index[taps.clone()];
-                    let wts = &wx[taps];
-                    combine(
-                        cell,
-                        idx.iter()
-                            .zip(wts)
-                            .map(|(&i, &wt)| (&in_row[i * d..(i + 1) * d], wt)),
-                    );
-                }
+    for (axis, size, weights) in [(0, h, down), (1, w, across)] {
+        if weights.input != size {
+            return Err(ResampleError::WeightsMismatch {
+                axis,
+                expected: size,
+                found: weights.input,
             });
-        Some(tmp)
-    };
-    let rows = horizontal.as_deref().unwrap_or(src);
-    if h == oh {
-        return match horizontal {
-            Some(v) => Ok(v),
-            None => copied(src),
-        };
+        }
     }
-    let wy: Vec<T> = down.weight.iter().map(|&v| T::from_f64(v)).collect();
-    let row_len = ow * d;
-    let mut out = crate::values::try_filled(oh.saturating_mul(row_len), T::default())?;
-    out.par_chunks_mut(row_len)
-        .enumerate()
-        .for_each(|(o, out_row)| {
-            let taps = o * down.taps..(o + 1) * down.taps;
-            let idx = &down.index[taps.clone()];
-            let wts = &wy[taps];
-            // Each vertical tap scales a whole source row: one long contiguous loop per tap.
-            combine(
-                out_row,
-                idx.iter()
-                    .zip(wts)
-                    .map(|(&i, &wt)| (&rows[i * row_len..(i + 1) * row_len], wt)),
-            );
-        });
-    Ok(out)
+    let to = [down.output, across.output];
+    validate_grid(&[h, w], &to, d, &Options::default())?;
+    check_length(src.len(), (h, w), d)?;
+    separable(src, &[h, w], d, &to, |axis| {
+        Ok(Cow::Borrowed(if axis == 0 { down } else { across }))
+    })
 }
 
-/// `dst = Σ weight · source` over the taps, element-wise; the loops vectorise over D.
-#[inline]
-fn combine<'a, T: Sample>(dst: &mut [T], mut taps: impl Iterator<Item = (&'a [T], T)>) {
-    let Some((first, w0)) = taps.next() else {
-        dst.fill(T::default());
-        return;
-    };
-    for (o, &s) in dst.iter_mut().zip(first) {
-        *o = w0 * s;
-    }
-    for (source, wt) in taps {
-        for (o, &s) in dst.iter_mut().zip(source) {
-            *o = *o + wt * s;
+/// One pass per axis whose size changes, innermost axis first (for `[H, W, D]`: along rows,
+/// then down columns); `weights_of(axis)` gives that axis's table. Buffers are allocated
+/// fallibly: their size comes from the input. The caller has validated the sizes.
+fn separable<'w, T: Sample>(
+    src: &[T],
+    from: &[usize],
+    d: usize,
+    to: &[usize],
+    mut weights_of: impl FnMut(usize) -> Result<Cow<'w, AxisWeights>, ResampleError>,
+) -> Result<Vec<T>, ResampleError> {
+    let mut shape = from.to_vec();
+    let mut current: Option<Vec<T>> = None;
+    for axis in (0..from.len()).rev() {
+        if shape[axis] == to[axis] || d == 0 {
+            continue;
         }
+        let weights = weights_of(axis)?;
+        let input = current.as_deref().unwrap_or(src);
+        let next = pass_along_axis(input, AxisLayout::of(&shape, axis, d), &weights)?;
+        shape[axis] = to[axis];
+        current = Some(next);
+    }
+    match current {
+        Some(v) => Ok(v),
+        None => copied(src),
     }
 }

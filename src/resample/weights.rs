@@ -3,6 +3,7 @@
 
 use super::kernels;
 use super::options::{Coords, Edges, Kernel, Options};
+use crate::values::{self, OutOfMemory};
 
 /// The taps of one axis: `taps` (index, weight) pairs per output coordinate, padded with zero
 /// weights so every output has the same count.
@@ -48,61 +49,99 @@ pub fn source_coordinate(o: usize, input: usize, output: usize, coords: Coords) 
 }
 
 /// Build the weight table of one axis going from `input` to `output` samples.
-/// `input` and `output` must be at least 1 (the caller checks).
+/// `input` and `output` must be at least 1 (the caller checks). Aborts like any infallible
+/// allocation if memory runs out; the engine uses [`try_axis_weights`].
 pub fn axis_weights(input: usize, output: usize, opts: &Options) -> AxisWeights {
-    let mut rows: Vec<Vec<(usize, f64)>> = (0..output)
-        .map(|o| match opts.kernel {
-            Kernel::Nearest => nearest_taps(o, input, output, opts.coords),
-            Kernel::Area => area_taps(o, input, output),
-            _ => kernel_taps(o, input, output, opts),
-        })
-        .collect();
-    let taps = rows.iter().map(Vec::len).max().unwrap_or(1).max(1);
-    let mut index = Vec::with_capacity(output * taps);
-    let mut weight = Vec::with_capacity(output * taps);
-    for row in &mut rows {
-        let pad_index = row.last().map_or(0, |t| t.0);
-        row.resize(taps, (pad_index, 0.0));
-        for &(i, w) in row.iter() {
+    try_axis_weights(input, output, opts).unwrap_or_else(|e| {
+        let layout = std::alloc::Layout::array::<u8>(e.bytes)
+            .unwrap_or_else(|_| std::alloc::Layout::new::<u8>());
+        std::alloc::handle_alloc_error(layout)
+    })
+}
+
+/// [`axis_weights`], with every buffer (their sizes follow the request) allocated fallibly.
+pub fn try_axis_weights(
+    input: usize,
+    output: usize,
+    opts: &Options,
+) -> Result<AxisWeights, OutOfMemory> {
+    // All rows back to back, then padded to the longest one.
+    let mut flat: Vec<(usize, f64)> = Vec::new();
+    let mut ends = values::try_with_capacity(output)?;
+    for o in 0..output {
+        let row = match opts.kernel {
+            Kernel::Nearest => vec![nearest_tap(o, input, output, opts.coords)],
+            Kernel::Area => area_taps(o, input, output)?,
+            _ => kernel_taps(o, input, output, opts)?,
+        };
+        reserve(&mut flat, row.len())?;
+        flat.extend_from_slice(&row);
+        ends.push(flat.len());
+    }
+    let starts = std::iter::once(0).chain(ends.iter().copied());
+    let rows = || starts.clone().zip(ends.iter().copied());
+    let taps = rows().map(|(a, b)| b - a).max().unwrap_or(1).max(1);
+    let mut index = values::try_with_capacity(output.saturating_mul(taps))?;
+    let mut weight = values::try_with_capacity(output.saturating_mul(taps))?;
+    for (a, b) in rows() {
+        let row = &flat[a..b];
+        let padding = (row.last().map_or(0, |t| t.0), 0.0);
+        for &(i, w) in row
+            .iter()
+            .chain(std::iter::repeat_n(&padding, taps - row.len()))
+        {
             index.push(i);
             weight.push(w);
         }
     }
-    AxisWeights {
+    Ok(AxisWeights {
         input,
         output,
         taps,
         index,
         weight,
-    }
+    })
+}
+
+/// Grow `v` by `extra` elements' room, or say how much was asked.
+fn reserve<T>(v: &mut Vec<T>, extra: usize) -> Result<(), OutOfMemory> {
+    v.try_reserve(extra).map_err(|_| OutOfMemory {
+        bytes: extra.saturating_mul(std::mem::size_of::<T>()),
+    })
 }
 
 /// ONNX `round_prefer_floor`: the nearest sample, a tie going to the lower one.
-fn nearest_taps(o: usize, input: usize, output: usize, coords: Coords) -> Vec<(usize, f64)> {
+fn nearest_tap(o: usize, input: usize, output: usize, coords: Coords) -> (usize, f64) {
     let x = source_coordinate(o, input, output, coords);
     let i = (x - 0.5).ceil().clamp(0.0, (input - 1) as f64) as usize;
-    vec![(i, 1.0)]
+    (i, 1.0)
 }
 
 /// The fraction of output cell `o`'s footprint `[o·in/out, (o+1)·in/out)` each source cell
 /// covers.
-fn area_taps(o: usize, input: usize, output: usize) -> Vec<(usize, f64)> {
+fn area_taps(o: usize, input: usize, output: usize) -> Result<Vec<(usize, f64)>, OutOfMemory> {
     let step = input as f64 / output as f64;
     let lo = o as f64 * step;
     let hi = (o as f64 + 1.0) * step;
     let first = lo.floor() as usize;
     let last = ((hi.ceil() as usize).max(first + 1)).min(input);
-    (first..last)
-        .filter_map(|j| {
+    values::try_collect(
+        last.saturating_sub(first),
+        (first..last).filter_map(|j| {
             let overlap = hi.min(j as f64 + 1.0) - lo.max(j as f64);
             (overlap > 0.0).then_some((j, overlap / step))
-        })
-        .collect()
+        }),
+    )
 }
 
 /// Linear, cubic and Lanczos taps: every integer j strictly within the (stretched) support of
 /// the source coordinate, weighted by the kernel at (j - x) / stretch.
-fn kernel_taps(o: usize, input: usize, output: usize, opts: &Options) -> Vec<(usize, f64)> {
+fn kernel_taps(
+    o: usize,
+    input: usize,
+    output: usize,
+    opts: &Options,
+) -> Result<Vec<(usize, f64)>, OutOfMemory> {
     let (support, kernel): (f64, Box<dyn Fn(f64) -> f64>) = match opts.kernel {
         Kernel::Bilinear => (1.0, Box::new(kernels::triangle)),
         Kernel::Bicubic => {
@@ -122,9 +161,12 @@ fn kernel_taps(o: usize, input: usize, output: usize, opts: &Options) -> Vec<(us
     let reach = support * stretch;
     let lo = (x - reach).floor() as i64 + 1;
     let hi = (x + reach).ceil() as i64 - 1;
-    let mut taps: Vec<(i64, f64)> = (lo..=hi)
-        .map(|j| (j, kernel((j as f64 - x) / stretch)))
-        .collect();
+    // A strongly shrinking antialiased axis has as many taps as source samples.
+    let count = usize::try_from(hi - lo + 1).unwrap_or(0);
+    let mut taps: Vec<(i64, f64)> = values::try_collect(
+        count,
+        (lo..=hi).map(|j| (j, kernel((j as f64 - x) / stretch))),
+    )?;
     // Stretched kernels (and Lanczos, whose lobes do not sum to 1) are normalised over all
     // their taps, as the ONNX antialiased coefficients are.
     if antialias || opts.kernel == Kernel::Lanczos3 {
@@ -137,26 +179,31 @@ fn kernel_taps(o: usize, input: usize, output: usize, opts: &Options) -> Vec<(us
     let inside = |j: i64| (0..=last).contains(&j);
     let renormalised = match opts.edges {
         Edges::Renormalize => {
-            let kept: Vec<(usize, f64)> = taps
-                .iter()
-                .filter(|t| inside(t.0))
-                .map(|&(j, w)| (j as usize, w))
-                .collect();
+            let mut kept: Vec<(usize, f64)> = values::try_collect(
+                taps.len(),
+                taps.iter()
+                    .filter(|t| inside(t.0))
+                    .map(|&(j, w)| (j as usize, w)),
+            )?;
             let sum: f64 = kept.iter().map(|t| t.1).sum();
-            (sum != 0.0).then(|| kept.into_iter().map(|(j, w)| (j, w / sum)).collect())
+            (sum != 0.0).then(|| {
+                kept.iter_mut().for_each(|t| t.1 /= sum);
+                kept
+            })
         }
         Edges::Clamp => None,
     };
-    renormalised.unwrap_or_else(|| {
-        // Clamp: an out-of-range tap reads the border sample; merge taps on the same sample.
-        let mut merged: Vec<(usize, f64)> = Vec::with_capacity(taps.len());
-        for (j, w) in taps {
-            let j = j.clamp(0, last) as usize;
-            match merged.last_mut() {
-                Some(m) if m.0 == j => m.1 += w,
-                _ => merged.push((j, w)),
-            }
+    if let Some(kept) = renormalised {
+        return Ok(kept);
+    }
+    // Clamp: an out-of-range tap reads the border sample; merge taps on the same sample.
+    let mut merged: Vec<(usize, f64)> = values::try_with_capacity(taps.len())?;
+    for (j, w) in taps {
+        let j = j.clamp(0, last) as usize;
+        match merged.last_mut() {
+            Some(m) if m.0 == j => m.1 += w,
+            _ => merged.push((j, w)),
         }
-        merged
-    })
+    }
+    Ok(merged)
 }
