@@ -30,6 +30,7 @@ fn main() {
         patch_source: None,
         kind: posgrid::kinds::Kind::Learned,
         sincos_first_axis: None,
+        frames: None,
         companions: vec![],
         copy_of: None,
         notes: vec![],

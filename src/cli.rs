@@ -11,7 +11,7 @@ use crate::checkpoint::{Source, TensorSource};
 use crate::error::{Error, Result, EXIT_NO_TABLE, EXIT_OK};
 use crate::figure;
 use crate::kinds::{self, Channels, Hints};
-use crate::plan::{Request, Target};
+use crate::plan::{Relative, Request, Target};
 use crate::report::{self, ScanReport};
 use crate::resample::{Antialias, Coords, Edges, Kernel, Options, DEFAULT_CUBIC_A};
 use crate::resize::{self, ResizeJob};
@@ -88,9 +88,10 @@ pub struct MapArgs {
 /// How discovery reads the file; the same flags for every command.
 #[derive(Debug, Args, Clone)]
 pub struct DiscoveryArgs {
-    /// The source grid as HxW (or N for NxN), when the row count alone does not tell it.
-    #[arg(long, value_name = "HxW", value_parser = parse_grid)]
-    pub source_grid: Option<(usize, usize)>,
+    /// The source grid as HxW (or N for NxN; TxHxW for a video grid of T frames), when the
+    /// row count alone does not tell it.
+    #[arg(long, value_name = "HxW", value_parser = parse_grid_frames)]
+    pub source_grid: Option<GridArg>,
     /// The number of leading class slots (class token, distillation token, ...).
     #[arg(long, value_name = "N")]
     pub slots: Option<usize>,
@@ -108,7 +109,8 @@ pub struct DiscoveryArgs {
 impl DiscoveryArgs {
     fn hints(&self) -> Hints {
         Hints {
-            source_grid: self.source_grid,
+            source_grid: self.source_grid.map(|g| (g.h, g.w)),
+            source_frames: self.source_grid.and_then(|g| g.frames),
             slots: self.slots,
             patch: self.patch.map(|p| p as usize),
             tensors: self.tensors.clone(),
@@ -138,12 +140,15 @@ pub struct ResizeArgs {
     /// Where to write the patched checkpoint (a directory for a sharded set).
     #[arg(short, long, value_name = "OUT")]
     pub output: PathBuf,
-    /// Target patch grid: HxW, or N for NxN.
-    #[arg(long, value_name = "HxW", value_parser = parse_grid)]
-    pub grid: Option<(usize, usize)>,
+    /// Target patch grid: HxW, or N for NxN; TxHxW for a video grid of T frames.
+    #[arg(long, value_name = "HxW", value_parser = parse_grid_frames)]
+    pub grid: Option<GridArg>,
     /// Target input image size in pixels: HxW, or N for NxN. The grid is image / patch size.
     #[arg(long, value_name = "HxW", value_parser = parse_grid)]
     pub image: Option<(usize, usize)>,
+    /// Target frames T of a video grid (with --image; --grid takes TxHxW).
+    #[arg(long, value_name = "T", value_parser = clap::value_parser!(u32).range(1..))]
+    pub frames: Option<u32>,
     #[command(flatten)]
     pub discovery: DiscoveryArgs,
     /// Interpolation kernel.
@@ -190,6 +195,30 @@ so the output is whole or absent; but after a power loss a recent output may be 
 can be regenerated."
     )]
     pub no_sync: bool,
+    /// New attention window of window-relative and per-axis tables: HxW, or N for NxN.
+    #[arg(
+        long,
+        value_name = "HxW",
+        value_parser = parse_grid,
+        long_help = "The new attention window of window-relative bias tables without class rows and of \
+per-axis tables of windowed blocks: HxW, or N for NxN. Their index buffers and shifted-window masks are \
+rebuilt with them. Tables that span the whole patch grid (BEiT-style tables with class rows, per-axis tables \
+of global blocks) follow --grid/--image instead. Default: windows unchanged."
+    )]
+    pub window: Option<(usize, usize)>,
+    /// How window-relative tables are resampled: kernel or geometric.
+    #[arg(
+        long,
+        value_name = "METHOD",
+        default_value = "kernel",
+        value_parser = parse_text::<Relative>,
+        long_help = "How window-relative bias tables are resampled: kernel uses the engine with --kernel, \
+--coords, --edges, --antialias and --cubic-a on the [2Wh-1, 2Ww-1] grid of offsets, like any other grid; \
+geometric spaces the source offsets by a geometric progression whose ratio, found by bisection, puts the far \
+edge on the new half-width, and interpolates with a bicubic spline through the data points (not-a-knot ends), \
+as BEiT-style fine-tuning code does. Class rows are kept as they are either way."
+    )]
+    pub relative: Relative,
     /// Build fixed sine-cosine tables anew on the target grid instead of resampling them.
     #[arg(
         long,
@@ -261,6 +290,30 @@ pub fn parse_grid(s: &str) -> std::result::Result<(usize, usize), String> {
         Some((h, w)) => Ok((side(h)?, side(w)?)),
         None => side(s).map(|n| (n, n)),
     }
+}
+
+/// A grid of one or two sides, with the frames of a video grid in front.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct GridArg {
+    pub frames: Option<usize>,
+    pub h: usize,
+    pub w: usize,
+}
+
+/// `HxW`, `N` (square) or `TxHxW` (a video grid of T frames), each side at least 1.
+pub fn parse_grid_frames(s: &str) -> std::result::Result<GridArg, String> {
+    let parts: Vec<&str> = s.split(['x', 'X', '×']).collect();
+    if parts.len() == 3 {
+        let (t, _) = parse_grid(parts[0])?;
+        let (h, w) = parse_grid(&format!("{}x{}", parts[1], parts[2]))
+            .map_err(|_| format!("\"{s}\" is not TxHxW (for example 8x14x14)"))?;
+        return Ok(GridArg {
+            frames: Some(t),
+            h,
+            w,
+        });
+    }
+    parse_grid(s).map(|(h, w)| GridArg { frames: None, h, w })
 }
 
 /// A byte count with an optional K, M, G or T suffix (powers of 1024; `B`, `iB` accepted).
@@ -371,13 +424,21 @@ fn resize_cmd(args: ResizeArgs) -> Result<i32> {
         return Err(Error::Usage("--cubic-a must be a finite number".into()));
     }
     let target = match (args.grid, args.image) {
-        (Some((h, w)), None) => Target::Grid(h, w),
+        (Some(g), None) => Target::Grid(g.h, g.w),
         (None, Some((h, w))) => Target::Image(h, w),
         _ => {
             return Err(Error::Usage(
                 "give exactly one of --grid and --image".into(),
             ))
         }
+    };
+    let frames = match (args.grid.and_then(|g| g.frames), args.frames) {
+        (Some(a), Some(b)) if a as u64 != u64::from(b) => {
+            return Err(Error::Usage(format!(
+                "--grid gives {a} frames and --frames {b}; give the frames once"
+            )))
+        }
+        (a, b) => a.or(b.map(|f| f as usize)),
     };
     let job = ResizeJob {
         input: args.checkpoint.clone(),
@@ -396,6 +457,9 @@ fn resize_cmd(args: ResizeArgs) -> Result<i32> {
             allow_nonfinite: args.allow_nonfinite,
             memory_limit: args.memory_limit,
             rebuild_sincos: args.rebuild_sincos,
+            window: args.window,
+            frames,
+            relative: args.relative,
         },
         dry_run: args.dry_run,
         force: args.force,

@@ -32,6 +32,38 @@ pub struct Request {
     pub memory_limit: u64,
     /// Build fixed sine-cosine tables anew on the target grid instead of resampling them.
     pub rebuild_sincos: bool,
+    /// The new attention window `(Wh, Ww)` of window-relative and per-axis tables that do not
+    /// span the whole grid (`None`: unchanged).
+    pub window: Option<(usize, usize)>,
+    /// The new number of frames (tubelets along time) of a video grid (`None`: unchanged).
+    pub frames: Option<usize>,
+    /// How window-relative tables are resampled.
+    pub relative: Relative,
+}
+
+/// How window-relative tables are resampled.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default, serde::Serialize)]
+#[serde(rename_all = "lowercase")]
+pub enum Relative {
+    /// With the engine and the kernel options, like every other grid.
+    #[default]
+    Kernel,
+    /// Offsets spaced by a geometric progression, interpolated by a cubic spline (the
+    /// fine-tuning method of BEiT-style models).
+    Geometric,
+}
+
+impl std::str::FromStr for Relative {
+    type Err = String;
+    fn from_str(s: &str) -> std::result::Result<Self, String> {
+        match s {
+            "kernel" => Ok(Relative::Kernel),
+            "geometric" => Ok(Relative::Geometric),
+            _ => Err(format!(
+                "unknown value \"{s}\"; expected kernel or geometric"
+            )),
+        }
+    }
 }
 
 /// Everything that will change; the rest of the checkpoint is copied as it is.
@@ -63,6 +95,11 @@ impl Plan {
         self.already_at_target.retain(|n| keep(n));
     }
 
+    /// Tensors the output leaves out.
+    pub fn drops(&self) -> Vec<&str> {
+        self.changes.iter().flat_map(|c| c.drops()).collect()
+    }
+
     /// Whether the tensor with this name is rewritten by the plan.
     pub fn changes(&self, name: &str) -> bool {
         self.new_shape(name).is_some()
@@ -82,6 +119,9 @@ impl Plan {
 /// guard (refused, before anything is allocated).
 pub fn build(ckpt: &dyn TensorSource, found: &Discovery, request: &Request) -> Result<Plan> {
     let path = ckpt.source_path();
+    let named =
+        |name: &str| request.tensors.is_empty() || request.tensors.iter().any(|n| n == name);
+    let encodings: Vec<_> = found.encodings.iter().filter(|e| named(e.name())).collect();
     let selected: Vec<&Table> = if request.tensors.is_empty() {
         if let Some(a) = found.ambiguous.first() {
             return Err(Error::table(
@@ -92,7 +132,7 @@ pub fn build(ckpt: &dyn TensorSource, found: &Discovery, request: &Request) -> R
                 ),
             ));
         }
-        if found.tables.is_empty() {
+        if found.tables.is_empty() && encodings.is_empty() {
             return Err(Error::table(path, no_table_message(found)));
         }
         found.tables.iter().collect()
@@ -100,6 +140,7 @@ pub fn build(ckpt: &dyn TensorSource, found: &Discovery, request: &Request) -> R
         request
             .tensors
             .iter()
+            .filter(|name| !found.encodings.iter().any(|e| e.name() == name.as_str()))
             .map(|name| select(ckpt, found, name))
             .collect::<Result<_>>()?
     };
@@ -111,6 +152,12 @@ pub fn build(ckpt: &dyn TensorSource, found: &Discovery, request: &Request) -> R
         match absolute::plan(ckpt, table, request)? {
             Some(change) => plan.changes.push(Box::new(change)),
             None => plan.already_at_target.push(table.name.clone()),
+        }
+    }
+    for encoding in encodings {
+        match encoding.plan(ckpt, request)? {
+            Some(change) => plan.changes.push(change),
+            None => plan.already_at_target.push(encoding.name().to_string()),
         }
     }
     Ok(plan)

@@ -10,7 +10,7 @@ use serde::Serialize;
 
 use crate::checkpoint::{Source, TensorSource};
 use crate::figure::MapReport;
-use crate::kinds::{ChangeReport, Discovery, Kind};
+use crate::kinds::{axial, window, ChangeReport, Discovery, Encoding, Kind};
 use crate::resize::ResizeReport;
 
 /// The result of `scan`.
@@ -57,7 +57,11 @@ pub fn scan_text(r: &ScanReport) -> String {
             r.format,
             plural(r.tensor_count, "tensor", "tensors"),
             r.file_size as f64 / (1 << 20) as f64,
-            plural(d.tables.len(), "position table", "position tables"),
+            plural(
+                d.tables.len() + d.encodings.len(),
+                "grid-dependent table",
+                "grid-dependent tables"
+            ),
         ),
     );
     for t in &d.tables {
@@ -65,6 +69,7 @@ pub fn scan_text(r: &ScanReport) -> String {
             (Kind::Sincos, Some(a)) => format!("sincos ({a:?} axis first)").to_lowercase(),
             (Kind::Sincos, None) => "sincos".into(),
             (Kind::Learned, _) => "learned".into(),
+            (other, _) => format!("{other:?}").to_lowercase(),
         };
         push_line(&mut s, format!("  {}", t.name));
         push_line(
@@ -111,6 +116,12 @@ pub fn scan_text(r: &ScanReport) -> String {
             push_line(&mut s, format!("      note: {n}"));
         }
     }
+    for e in &d.encodings {
+        push_line(&mut s, format!("  {}", e.name()));
+        for line in encoding_lines(e) {
+            push_line(&mut s, format!("      {line}"));
+        }
+    }
     for skipped in &d.skipped {
         push_line(
             &mut s,
@@ -147,6 +158,81 @@ fn method_text(t: &ChangeReport) -> String {
         options.push_str(", antialiased");
     }
     options
+}
+
+/// What `scan` says about a grid-dependent tensor other than an absolute table: its kind, what
+/// it spans, and what a resize does to it.
+fn encoding_lines(e: &Encoding) -> Vec<String> {
+    match e {
+        Encoding::Window(t) => {
+            let mut lines = vec![format!(
+                "{} {:?}  window_relative: window {}x{}, {}{}",
+                t.dtype,
+                t.shape,
+                t.window[0],
+                t.window[1],
+                plural(t.heads, "head", "heads"),
+                if t.class_rows { ", 3 class rows" } else { "" }
+            )];
+            lines.push(match t.follows {
+                window::Follows::Grid => {
+                    "spans the patch grid: follows --grid/--image; offsets resampled, class rows kept".into()
+                }
+                window::Follows::Window => {
+                    "follows --window; offsets resampled".into()
+                }
+            });
+            if let Some(ix) = &t.index {
+                lines.push(format!("index buffer rebuilt: {ix}"));
+            }
+            for m in &t.masks {
+                lines.push(format!(
+                    "mask rebuilt for the stage's new map: {} ({}x{} map, shift {}x{})",
+                    m.name, m.map[0], m.map[1], m.shift[0], m.shift[1]
+                ));
+            }
+            lines.extend(t.notes.iter().map(|n| format!("note: {n}")));
+            lines
+        }
+        Encoding::Axial(t) => vec![
+            format!(
+                "{} {:?}  axial_relative: {} axis, span {}",
+                t.dtype,
+                t.shape,
+                format!("{:?}", t.axis).to_lowercase(),
+                t.span
+            ),
+            match t.follows {
+                axial::Span::Grid => {
+                    "global block: follows --grid/--image; 1-D linear, half-pixel".into()
+                }
+                axial::Span::Window => {
+                    "windowed block: follows --window; 1-D linear, half-pixel".into()
+                }
+            },
+        ],
+        Encoding::Rotary(b) => vec![
+            format!(
+                "{} {:?}  rotary: {}x{} grid, theta {}, pre-training side {}, {} channels per axis",
+                b.dtype, b.shape, b.grid[0], b.grid[1], b.theta, b.pretrain_side, b.axis_dim
+            ),
+            format!(
+                "rebuilt by the construction for the new grid{}",
+                if b.companions.is_empty() {
+                    String::new()
+                } else {
+                    format!(", with {}", b.companions.join(", "))
+                }
+            ),
+        ],
+        Encoding::Temporal(t) => vec![
+            format!(
+                "{} {:?}  temporal: {} frames, dim {}",
+                t.dtype, t.shape, t.frames, t.dim
+            ),
+            "follows --frames (or the T of --grid TxHxW); resampled in 1-D".into(),
+        ],
+    }
 }
 
 /// The readable summary of a resize.

@@ -153,11 +153,13 @@ fn output_of<'a>(
     selection: &selection::Selection,
     new_data: &'a HashMap<String, Vec<u8>>,
 ) -> Output<'a> {
+    let drops = plan.drops();
     Output {
         source: source.reader(),
         entries: source
             .entries()
             .iter()
+            .filter(|t| !drops.contains(&t.name.as_str()))
             .filter_map(|t| {
                 Some(OutEntry {
                     name: selection::out_name(&t.name, selection)?,

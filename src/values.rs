@@ -232,9 +232,31 @@ pub fn encode_range(dtype: Dtype, n: usize) -> Result<Vec<u8>, ValueError> {
     if !range_fits(dtype, n) {
         return Err(ValueError::OutOfRange);
     }
+    encode_counts(dtype, n, 0..n as u64)
+}
+
+/// Encode non-negative integers (indices) as little-endian integers of `dtype`.
+pub fn encode_indices(dtype: Dtype, values: &[i64]) -> Result<Vec<u8>, ValueError> {
+    let max = values.iter().copied().max().unwrap_or(0);
+    if values.iter().any(|v| *v < 0) {
+        return Err(ValueError::OutOfRange);
+    }
+    let fits = usize::try_from(max).is_ok_and(|m| range_fits(dtype, m.saturating_add(1)));
+    if !fits {
+        return Err(ValueError::OutOfRange);
+    }
+    encode_counts(dtype, values.len(), values.iter().map(|v| *v as u64))
+}
+
+/// `n` values, each already checked to fit `dtype`, as little-endian integers.
+fn encode_counts(
+    dtype: Dtype,
+    n: usize,
+    values: impl Iterator<Item = u64>,
+) -> Result<Vec<u8>, ValueError> {
     let width = dtype.bitsize() / 8;
-    let mut out = try_with_capacity(n * width)?;
-    for i in 0..n as u64 {
+    let mut out = try_with_capacity(n.saturating_mul(width))?;
+    for i in values {
         out.extend_from_slice(&i.to_le_bytes()[..width]);
     }
     Ok(out)

@@ -5,7 +5,11 @@
 //! Nothing here writes; ambiguity is reported, never guessed away.
 
 pub mod absolute;
+pub mod axial;
 pub mod names;
+pub mod rotary;
+pub mod temporal;
+pub mod window;
 
 pub use absolute::TableChange;
 
@@ -24,6 +28,8 @@ pub const MAX_VALUE_READ: u64 = 256 << 20;
 pub struct Hints {
     /// The source grid (rows, columns), for tables whose grid cannot be inferred.
     pub source_grid: Option<(usize, usize)>,
+    /// The source frames T of a video grid (`--source-grid TxHxW`).
+    pub source_frames: Option<usize>,
     /// The number of leading class slots.
     pub slots: Option<usize>,
     /// The patch size in pixels.
@@ -65,6 +71,89 @@ pub enum Kind {
     Learned,
     /// An absolute position table that follows the fixed 2-D sine-cosine construction.
     Sincos,
+    /// A window-relative bias table `[(2Wh−1)(2Ww−1) (+3), heads]`.
+    WindowRelative,
+    /// A per-axis relative table `[2S−1, c]` (`…rel_pos_h`, `…rel_pos_w`).
+    AxialRelative,
+    /// Fixed 2-D rotary frequency buffers `[G², 2d]` (`…freqs_cos`, `…freqs_sin`).
+    Rotary,
+    /// A temporal table of a video model `[1, T, D]`.
+    Temporal,
+}
+
+/// A grid-dependent tensor of a kind other than an absolute table.
+#[derive(Debug, Clone, Serialize)]
+#[serde(untagged)]
+pub enum Encoding {
+    Window(window::WindowTable),
+    Axial(axial::AxialTable),
+    Rotary(rotary::RotaryBuffers),
+    Temporal(temporal::TemporalTable),
+}
+
+impl Encoding {
+    pub fn name(&self) -> &str {
+        match self {
+            Encoding::Window(t) => &t.name,
+            Encoding::Axial(t) => &t.name,
+            Encoding::Rotary(b) => &b.name,
+            Encoding::Temporal(t) => &t.name,
+        }
+    }
+
+    pub fn kind(&self) -> Kind {
+        match self {
+            Encoding::Window(t) => t.kind,
+            Encoding::Axial(t) => t.kind,
+            Encoding::Rotary(b) => b.kind,
+            Encoding::Temporal(t) => t.kind,
+        }
+    }
+
+    /// Plan its change: `None` when it is already at its target.
+    pub fn plan(
+        &self,
+        ckpt: &dyn TensorSource,
+        request: &crate::plan::Request,
+    ) -> Result<Option<Box<dyn Change>>> {
+        Ok(match self {
+            Encoding::Window(t) => window::plan(ckpt, t, request)?.map(|c| Box::new(c) as _),
+            Encoding::Axial(t) => axial::plan(ckpt, t, request)?.map(|c| Box::new(c) as _),
+            Encoding::Rotary(b) => rotary::plan(ckpt, b, request)?.map(|c| Box::new(c) as _),
+            Encoding::Temporal(t) => temporal::plan(ckpt, t, request)?.map(|c| Box::new(c) as _),
+        })
+    }
+}
+
+/// Scripts read one list, `tables`, holding every grid-dependent tensor with its `kind`.
+impl Serialize for Discovery {
+    fn serialize<S: serde::Serializer>(&self, s: S) -> std::result::Result<S::Ok, S::Error> {
+        #[derive(Serialize)]
+        #[serde(untagged)]
+        enum Entry<'a> {
+            Absolute(&'a Table),
+            Other(&'a Encoding),
+        }
+        #[derive(Serialize)]
+        struct View<'a> {
+            tables: Vec<Entry<'a>>,
+            ambiguous: &'a [Ambiguous],
+            skipped: &'a [Skipped],
+            warnings: &'a [String],
+        }
+        View {
+            tables: self
+                .tables
+                .iter()
+                .map(Entry::Absolute)
+                .chain(self.encodings.iter().map(Entry::Other))
+                .collect(),
+            ambiguous: &self.ambiguous,
+            skipped: &self.skipped,
+            warnings: &self.warnings,
+        }
+        .serialize(s)
+    }
 }
 
 /// A tensor that looked like a position table by name but was not taken, with the reason.
@@ -80,16 +169,18 @@ pub struct Ambiguous {
     pub name: String,
     pub rows: usize,
     /// Each explanation as (slots, [rows, columns]).
-    pub candidates: Vec<(usize, [usize; 2])>,
+    pub candidates: Vec<(usize, Vec<usize>)>,
     /// What to pass to settle it.
     pub resolve_with: String,
 }
 
 /// Everything discovery found.
-#[derive(Debug, Clone, Serialize, Default)]
+#[derive(Debug, Clone, Default)]
 pub struct Discovery {
     /// Absolute position tables.
     pub tables: Vec<Table>,
+    /// Every other grid-dependent tensor, by kind.
+    pub encodings: Vec<Encoding>,
     pub ambiguous: Vec<Ambiguous>,
     pub skipped: Vec<Skipped>,
     pub warnings: Vec<String>,
@@ -130,11 +221,18 @@ pub fn discover(source: &dyn TensorSource, hints: &Hints) -> Result<Discovery> {
         }
     }
     absolute::find(source, hints, &mut found)?;
+    window::find(source, hints, &mut found)?;
+    axial::find(source, hints, &mut found)?;
+    rotary::find(source, hints, &mut found)?;
+    temporal::find(source, &mut found)?;
     for a in &found.ambiguous {
         let options: Vec<String> = a
             .candidates
             .iter()
-            .map(|(s, [h, w])| format!("{s} slot(s) + {h}x{w}"))
+            .map(|(s, g)| {
+                let sides: Vec<String> = g.iter().map(|n| n.to_string()).collect();
+                format!("{s} slot(s) + {}", sides.join("x"))
+            })
             .collect();
         found.warnings.push(format!(
             "{}: {} rows fit {}; pass {} to choose",
@@ -208,8 +306,63 @@ pub trait Change: std::fmt::Debug + Send + Sync {
     fn provenance(&self) -> serde_json::Value;
     /// Bytes the change needs (what the memory guard checked).
     fn needed_bytes(&self) -> u64;
+    /// Tensors the output leaves out (a mask its block no longer has).
+    fn drops(&self) -> Vec<&str> {
+        Vec::new()
+    }
     /// The absolute table, for the similarity-map figure.
     fn absolute(&self) -> Option<&absolute::TableChange> {
         None
     }
+}
+
+/// Refuse a tensor holding NaN or infinity (`after`: where the values come from, for the
+/// message), unless the user allowed them.
+pub(crate) fn refuse_nonfinite(
+    path: &std::path::Path,
+    name: &str,
+    dtype: Dtype,
+    bytes: &[u8],
+    after: &str,
+) -> Result<()> {
+    let bad = crate::values::count_nonfinite(dtype, bytes);
+    if bad == 0 {
+        return Ok(());
+    }
+    Err(crate::error::Error::refused(
+        path,
+        format!("\"{name}\" holds {bad} NaN or infinite value(s){after}; pass --allow-nonfinite to resize it anyway"),
+    ))
+}
+
+/// A `[rows, c]` tensor (or `[1, rows, c]`) stretched along its rows to `to` rows with
+/// `options`, in f32 (f64 for F64): its new bytes, and the rows before and after as f32.
+pub(crate) fn stretch_rows(
+    path: &std::path::Path,
+    entry: &crate::checkpoint::TensorEntry,
+    raw: &[u8],
+    to: usize,
+    options: &crate::resample::Options,
+) -> Result<(Vec<u8>, Vec<f32>, Vec<f32>)> {
+    use crate::values;
+    let what = format!("resizing \"{}\"", entry.name);
+    let value_error = |e| values::value_error(path, &what, e);
+    let usage =
+        |e: crate::resample::ResampleError| crate::error::Error::Usage(format!("{what}: {e}"));
+    let c = *entry.shape.last().unwrap_or(&1);
+    let from = entry.shape.iter().product::<usize>() / c.max(1);
+    // One axis: a `[rows, 1]` grid of `c` channels.
+    let resample = |v| crate::resample::resample(v, (from, 1), c, (to, 1), options);
+    Ok(if entry.dtype == Dtype::F64 {
+        let v = values::decode_f64(entry.dtype, raw).map_err(value_error)?;
+        let r = crate::resample::resample(&v, (from, 1), c, (to, 1), options).map_err(usage)?;
+        let bytes = values::encode_f64(entry.dtype, &r).map_err(value_error)?;
+        let narrow = |x: &[f64]| x.iter().map(|v| *v as f32).collect::<Vec<f32>>();
+        (bytes, narrow(&v), narrow(&r))
+    } else {
+        let v = values::decode_f32(entry.dtype, raw).map_err(value_error)?;
+        let r = resample(&v).map_err(usage)?;
+        let bytes = values::encode_f32(entry.dtype, &r).map_err(value_error)?;
+        (bytes, v, r)
+    })
 }

@@ -21,6 +21,9 @@ pub struct TableChange {
     pub table: Table,
     pub from: [usize; 2],
     pub to: [usize; 2],
+    /// For a video table: its frames before and after.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub frames: Option<(usize, usize)>,
     /// The new shape, in the table's own layout.
     pub new_shape: Vec<usize>,
     pub options: Options,
@@ -53,19 +56,27 @@ pub fn plan(
     let path = ckpt.source_path();
     let to = target_grid(path, table, request.target)?;
     let from = table.grid;
-    if from == to {
+    let frames = table.frames.map(|t| (t, request.frames.unwrap_or(t)));
+    if from == to && frames.is_none_or(|(t, t2)| t == t2) {
         return Ok(None);
     }
     resample::validate((from[0], from[1]), (to[0], to[1]), &request.options)
         .map_err(|e| Error::Usage(format!("{}: {e}", table.name)))?;
-    let rows = table.slots + to[0] * to[1];
+    let (t_from, t_to) = frames.unwrap_or((1, 1));
+    if t_to == 0 {
+        return Err(Error::Usage(format!(
+            "{}: frames must be at least 1",
+            table.name
+        )));
+    }
+    let rows = table.slots + t_to * to[0] * to[1];
     let new_shape = match table.layout {
         Layout::BatchRows => vec![1, rows, table.dim],
         Layout::Rows => vec![rows, table.dim],
         Layout::Grid => vec![1, to[0], to[1], table.dim],
         Layout::GridChannelsFirst => vec![1, table.dim, to[0], to[1]],
     };
-    let needed = needed_bytes(table, from, to);
+    let needed = needed_bytes(table, [t_from * from[0], from[1]], [t_to * to[0], to[1]]);
     if needed > request.memory_limit {
         return Err(Error::refused(
             path,
@@ -84,7 +95,9 @@ pub fn plan(
     let antialias_applied = !rebuild
         && o.kernel != resample::Kernel::Nearest
         && o.kernel != resample::Kernel::Area
-        && (o.antialias_applies(from[0], to[0]) || o.antialias_applies(from[1], to[1]));
+        && (o.antialias_applies(from[0], to[0])
+            || o.antialias_applies(from[1], to[1])
+            || o.antialias_applies(t_from, t_to));
     let ids = table
         .companions
         .iter()
@@ -94,6 +107,7 @@ pub fn plan(
         table: table.clone(),
         from,
         to,
+        frames,
         new_shape,
         options: request.options,
         antialias_applied,
@@ -190,7 +204,8 @@ impl Change for TableChange {
             resized_table(ckpt.source_path(), entry, &raw, self, allow_nonfinite)?;
         let mut out = Computed {
             bytes: vec![(entry.name.clone(), bytes)],
-            images: Some(Images {
+            // A video grid has no 2-D similarity maps.
+            images: self.frames.is_none().then_some(Images {
                 before,
                 after,
                 from: self.from,
@@ -214,8 +229,8 @@ impl Change for TableChange {
             kind: self.table.kind,
             dtype: self.table.dtype.to_string(),
             slots: self.table.slots,
-            from: self.from.to_vec(),
-            to: self.to.to_vec(),
+            from: self.sides().0,
+            to: self.sides().1,
             shape: self.table.shape.clone(),
             new_shape: self.new_shape.clone(),
             kernel: Some(o.kernel),
@@ -235,8 +250,8 @@ impl Change for TableChange {
             "name": self.table.name,
             "kind": self.table.kind,
             "method": self.method(),
-            "from": self.from,
-            "to": self.to,
+            "from": self.sides().0,
+            "to": self.sides().1,
             "slots": self.table.slots,
             "kernel": o.kernel,
             "coords": o.coords,
@@ -258,6 +273,17 @@ impl Change for TableChange {
 }
 
 impl TableChange {
+    /// The grid's sides before and after: `[T, H, W]` for a video table, `[H, W]` otherwise.
+    fn sides(&self) -> (Vec<usize>, Vec<usize>) {
+        match self.frames {
+            Some((t, t2)) => (
+                vec![t, self.from[0], self.from[1]],
+                vec![t2, self.to[0], self.to[1]],
+            ),
+            None => (self.from.to_vec(), self.to.to_vec()),
+        }
+    }
+
     fn method(&self) -> &'static str {
         if self.rebuild {
             "rebuilt"
@@ -285,7 +311,8 @@ fn resized_table(
     if !allow_nonfinite {
         refuse_nonfinite_input(path, t, entry.dtype, slots, grid)?;
     }
-    let out_len = slot_bytes + change.to[0] * change.to[1] * t.dim * elem;
+    let frames = change.frames.map_or(1, |f| f.1);
+    let out_len = slot_bytes + frames * change.to[0] * change.to[1] * t.dim * elem;
     let oom = |e| values::out_of_memory(path, &format!("resizing \"{}\"", t.name), e);
     let mut bytes = values::try_with_capacity(out_len).map_err(oom)?;
     bytes.extend_from_slice(slots);
@@ -324,6 +351,15 @@ fn new_grid<T: resample::Sample>(
         (change.to[0], change.to[1]),
     );
     let t = &change.table;
+    if let Some((t_from, t_to)) = change.frames {
+        return resample::resample_grid(
+            v,
+            &[t_from, from.0, from.1],
+            t.dim,
+            &[t_to, to.0, to.1],
+            &change.options,
+        );
+    }
     match (change.rebuild, t.sincos_first_axis) {
         (true, Some(first)) => Ok(crate::sincos::build(to.0, to.1, t.dim, first)
             .expect("a recognised sine-cosine table has a width divisible by 4")

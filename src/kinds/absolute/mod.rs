@@ -57,6 +57,9 @@ pub struct Table {
     pub kind: Kind,
     /// For `sincos`: which axis the first half of the channels encodes.
     pub sincos_first_axis: Option<FirstAxis>,
+    /// For a video table: the frames T of its `T × H × W` grid (rows are frame-major).
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub frames: Option<usize>,
     /// Integer position-id buffers that must change with the table.
     pub companions: Vec<String>,
     /// Another table this one duplicates under a different prefix (EMA or averaged copies).
@@ -92,12 +95,14 @@ impl Table {
 }
 
 /// Names of position tables in released checkpoints (common practice): `pos_embed`,
-/// `position_embedding(s)`, `positional_embedding`, `posembed_input`, `pos_embedding`.
+/// `position_embedding(s)`, `positional_embedding`, `posembed_input`, `pos_embedding`; a
+/// video model's temporal table is a kind of its own.
 fn is_position_name(name: &str) -> bool {
     let n = normalized(name);
     ["posemb", "positionemb", "positionalemb"]
         .iter()
         .any(|k| n.contains(k))
+        && !super::temporal::is_temporal_name(name)
 }
 
 fn is_position_id_name(name: &str) -> bool {
@@ -109,12 +114,17 @@ fn is_position_id_name(name: &str) -> bool {
 pub(super) fn find(source: &dyn TensorSource, hints: &Hints, found: &mut Discovery) -> Result<()> {
     let entries = source.entries();
     let kernel_widths: Vec<usize> = patch_kernels(entries).iter().map(|k| k.1).collect();
+    let tubelet_widths: Vec<usize> = tubelet_kernels(entries).iter().map(|k| k.dim).collect();
     for entry in entries {
         let forced = hints.tensors.iter().any(|n| n == &entry.name);
         if !forced && !is_position_name(&entry.name) {
             continue;
         }
-        match examine(source, entry, hints, forced, &kernel_widths)? {
+        let kernels = Kernels {
+            flat: &kernel_widths,
+            tubelet: &tubelet_widths,
+        };
+        match examine(source, entry, hints, forced, kernels)? {
             Verdict::Table(t, warning) => {
                 found.warnings.extend(warning);
                 found.tables.push(*t)
@@ -135,6 +145,13 @@ pub(super) fn find(source: &dyn TensorSource, hints: &Hints, found: &mut Discove
     Ok(())
 }
 
+/// The embedding widths of the model's patch-projection kernels: 2-D ones and video ones.
+#[derive(Clone, Copy)]
+struct Kernels<'a> {
+    flat: &'a [usize],
+    tubelet: &'a [usize],
+}
+
 enum Verdict {
     /// A table, and a warning when its reading rests on a default.
     Table(Box<Table>, Option<String>),
@@ -148,8 +165,9 @@ fn examine(
     entry: &TensorEntry,
     hints: &Hints,
     forced: bool,
-    kernel_widths: &[usize],
+    kernels: Kernels,
 ) -> Result<Verdict> {
+    let (kernel_widths, tubelet_widths) = (kernels.flat, kernels.tubelet);
     let mut notes = Vec::new();
     let mut warning = None;
     let four_d = match entry.shape.as_slice() {
@@ -180,7 +198,7 @@ fn examine(
             return Ok(Verdict::Ambiguous(Ambiguous {
                 name: entry.name.clone(),
                 rows: a * b * c,
-                candidates: vec![(0, [*a, *b]), (0, [*b, *c])],
+                candidates: vec![(0, vec![*a, *b]), (0, vec![*b, *c])],
                 resolve_with:
                     "--channels last (for [1, H, W, D]) or --channels first (for [1, D, H, W])"
                         .into(),
@@ -214,6 +232,7 @@ fn examine(
         return Ok(Verdict::Skip("the table is empty".into()));
     }
 
+    let mut frames = None;
     let candidates: Vec<(usize, (usize, usize))> = if let Some(g) = grid_from_shape {
         if let Some(s) = hints.slots.filter(|&s| s != 0) {
             notes.push(format!(
@@ -221,6 +240,32 @@ fn examine(
             ));
         }
         vec![(0, g)]
+    } else if let (Some((h, w)), Some(t)) = (hints.source_grid, hints.source_frames) {
+        match rows.checked_sub(t * h * w) {
+            Some(s) if s <= MAX_SLOTS && hints.slots.is_none_or(|hs| hs == s) => {
+                frames = Some(t);
+                vec![(s, (h, w))]
+            }
+            _ => {
+                return Ok(Verdict::Skip(format!(
+                    "{rows} rows do not fit --source-grid {t}x{h}x{w}"
+                )))
+            }
+        }
+    } else if tubelet_widths.contains(&dim) && hints.source_grid.is_none() {
+        // A video model: rows are T·H·W after the slots, and the row count alone cannot
+        // tell T from H·W.
+        let fits = video_explanations(rows, hints.slots);
+        return Ok(match fits[..] {
+            [(s, t, k)] => Verdict::Skip(format!("{rows} rows of a video model fit only {s} slot(s) + {t}x{k}x{k}; pass --source-grid {t}x{k}x{k} to take it")),
+            [] => Verdict::Skip(format!("{rows} rows of a video model (a 5-D patch kernel beside it) fit no T x H x H grid; pass --source-grid TxHxW")),
+            _ => Verdict::Ambiguous(Ambiguous {
+                name: entry.name.clone(),
+                rows,
+                candidates: fits.iter().map(|&(s, t, k)| (s, vec![t, k, k])).collect(),
+                resolve_with: "--source-grid TxHxW".into(),
+            }),
+        });
     } else if let Some((h, w)) = hints.source_grid {
         match rows.checked_sub(h * w) {
             Some(s) if s <= MAX_SLOTS && hints.slots.is_none_or(|hs| hs == s) => vec![(s, (h, w))],
@@ -331,7 +376,10 @@ fn examine(
                 return Ok(Verdict::Ambiguous(Ambiguous {
                     name: entry.name.clone(),
                     rows,
-                    candidates: candidates.iter().map(|&(s, (h, w))| (s, [h, w])).collect(),
+                    candidates: candidates
+                        .iter()
+                        .map(|&(s, (h, w))| (s, vec![h, w]))
+                        .collect(),
                     resolve_with: "--slots N or --source-grid HxW".into(),
                 }));
             }
@@ -370,6 +418,7 @@ fn examine(
             patch_source: None,
             kind,
             sincos_first_axis: first_axis,
+            frames,
             companions: Vec::new(),
             copy_of: None,
             notes,
@@ -444,6 +493,26 @@ fn channel_order(a: usize, b: usize, c: usize, hints: &Hints, kernel_widths: &[u
     }
 }
 
+/// The `T × K × K` video grids (T ≥ 2, K ≥ 2, at most 0 or 1 slot unless `--slots` says)
+/// that explain `rows`, as (slots, T, K).
+fn video_explanations(rows: usize, slots: Option<usize>) -> Vec<(usize, usize, usize)> {
+    let counts = slots.map_or(0..=1, |s| s..=s);
+    let mut out = Vec::new();
+    for s in counts {
+        let Some(n) = rows.checked_sub(s) else {
+            continue;
+        };
+        for t in 2..=64.min(n) {
+            if n % t == 0 {
+                if let Some(k) = integer_sqrt(n / t).filter(|&k| k >= 2) {
+                    out.push((s, t, k));
+                }
+            }
+        }
+    }
+    out
+}
+
 /// Square grids (side ≥ 2) that explain `rows` with 0..=MAX_SLOTS leading slots.
 fn square_explanations(rows: usize) -> Vec<(usize, (usize, usize))> {
     (0..=MAX_SLOTS.min(rows))
@@ -494,15 +563,71 @@ fn patch_kernels(entries: &[TensorEntry]) -> Vec<(&TensorEntry, usize, usize)> {
 
 /// Patch size from the patch-projection kernel: `[D, C, p, p]` (channels-first) or
 /// `[p, p, C, D]` (channels-last), whose output width D matches the table's.
+/// How much a kernel's name says "patch projection" (common names in released checkpoints).
+fn name_score(name: &str) -> usize {
+    let n = normalized(name);
+    ["patchemb", "patchify", "conv1", "stem", "embedding", "proj"]
+        .iter()
+        .filter(|k| n.contains(*k))
+        .count()
+}
+
+/// The model's patch size and where it came from, for kinds without an embedding width to
+/// match a kernel by: `--patch`, else the best-named patch-projection kernel (2-D or the
+/// spatial sides of a 5-D tubelet kernel), when no equally named kernel disagrees.
+pub(crate) fn model_patch(entries: &[TensorEntry], hints: &Hints) -> Option<(usize, String)> {
+    if let Some(p) = hints.patch {
+        return Some((p, "--patch".into()));
+    }
+    let mut kernels: Vec<(&TensorEntry, usize)> = patch_kernels(entries)
+        .into_iter()
+        .map(|(e, _, p)| (e, p))
+        .chain(
+            tubelet_kernels(entries)
+                .into_iter()
+                .map(|k| (k.entry, k.patch)),
+        )
+        .collect();
+    kernels.sort_by_key(|(e, _)| std::cmp::Reverse(name_score(&e.name)));
+    let (best, p) = kernels.first()?;
+    let rival = kernels
+        .iter()
+        .any(|(e, q)| q != p && name_score(&e.name) == name_score(&best.name));
+    (!rival).then(|| (*p, best.name.clone()))
+}
+
+/// A 5-D video patch kernel `[D, C, t, p, p]`: its width and spatial patch size.
+pub(crate) struct Tubelet<'a> {
+    pub entry: &'a TensorEntry,
+    pub dim: usize,
+    pub patch: usize,
+}
+
+/// Video patch-projection kernels `[D, C, t, p, p]` (channels-first 3-D convolutions).
+pub(crate) fn tubelet_kernels(entries: &[TensorEntry]) -> Vec<Tubelet<'_>> {
+    entries
+        .iter()
+        .filter(|e| values::is_float(e.dtype) && !is_position_name(&e.name))
+        .filter_map(|e| match e.shape.as_slice() {
+            [d, c, t, p, q] if p == q && *c <= 64 && *t >= 1 => Some(Tubelet {
+                entry: e,
+                dim: *d,
+                patch: *p,
+            }),
+            _ => None,
+        })
+        .collect()
+}
+
 fn infer_patches(entries: &[TensorEntry], found: &mut Discovery, hints: &Hints) {
-    let kernels = patch_kernels(entries);
-    let name_score = |n: &str| {
-        let n = normalized(n);
-        ["patchemb", "patchify", "conv1", "stem", "embedding", "proj"]
-            .iter()
-            .filter(|k| n.contains(*k))
-            .count()
-    };
+    let kernels: Vec<(&TensorEntry, usize, usize)> = patch_kernels(entries)
+        .into_iter()
+        .chain(
+            tubelet_kernels(entries)
+                .into_iter()
+                .map(|k| (k.entry, k.dim, k.patch)),
+        )
+        .collect();
     for table in &mut found.tables {
         if let Some(p) = hints.patch {
             table.patch = Some(p);

@@ -1,0 +1,419 @@
+//! The change of a window-relative table: its new window, the offset grid resampled (class
+//! rows bit-exact), the index buffer rebuilt, the masks rebuilt for the new feature maps (or
+//! left out where the window now covers the map).
+
+use serde::Serialize;
+
+use super::{mask_layout, Follows, WindowTable};
+use crate::checkpoint::{Dtype, TensorSource};
+use crate::error::{Error, Result};
+use crate::kinds::{refuse_nonfinite, Change, ChangeReport, Computed, Images};
+use crate::plan::{Relative, Request, Target};
+use crate::rebuild::relative_index::{self, IndexLayout};
+use crate::rebuild::shift_mask::{self, MaskLayout};
+use crate::resample::{self, geometric, Options};
+use crate::values;
+
+/// The class-relation rows of a BEiT-style table.
+const CLASS_ROWS: usize = 3;
+
+/// One window-relative table to change.
+#[derive(Debug, Clone, Serialize)]
+pub struct WindowChange {
+    #[serde(flatten)]
+    pub table: WindowTable,
+    pub to: [usize; 2],
+    pub new_shape: Vec<usize>,
+    pub options: Options,
+    /// Resampled by the geometric-progression method instead of the kernel.
+    pub geometric: bool,
+    pub antialias_applied: bool,
+    /// The index buffer's new shape.
+    pub index_shape: Option<Vec<usize>>,
+    pub masks: Vec<MaskChange>,
+    #[serde(skip)]
+    pub needed_bytes: u64,
+}
+
+/// A mask rebuilt for its stage's new feature map, or left out (`layout` none) where the
+/// window covers the map and the block has no mask any more.
+#[derive(Debug, Clone, Serialize)]
+pub struct MaskChange {
+    pub name: String,
+    pub map: [usize; 2],
+    #[serde(skip)]
+    pub layout: Option<MaskLayout>,
+    pub new_shape: Option<Vec<usize>>,
+}
+
+/// Plan the change of `table`: `None` when its window, and every mask's map, stay as they are.
+pub fn plan(
+    ckpt: &dyn TensorSource,
+    table: &WindowTable,
+    request: &Request,
+) -> Result<Option<WindowChange>> {
+    let path = ckpt.source_path();
+    let to = target_window(path, table, request)?;
+    let masks = table
+        .masks
+        .iter()
+        .map(|m| mask_change(path, table, m, to, request))
+        .collect::<Result<Vec<_>>>()?;
+    let masks_change = masks
+        .iter()
+        .zip(&table.masks)
+        .any(|(c, m)| c.new_shape.as_ref() != Some(&m.shape));
+    if to == table.window && !masks_change {
+        return Ok(None);
+    }
+    let side = |w: [usize; 2]| [2 * w[0] - 1, 2 * w[1] - 1];
+    let (from_side, to_side) = (side(table.window), side(to));
+    let geometric = request.relative == Relative::Geometric && to != table.window;
+    if geometric && (from_side[0] != from_side[1] || to_side[0] != to_side[1]) {
+        return Err(Error::Usage(format!(
+            "{}: --relative geometric needs square windows ({}x{} -> {}x{})",
+            table.name, table.window[0], table.window[1], to[0], to[1]
+        )));
+    }
+    resample::validate(
+        (from_side[0], from_side[1]),
+        (to_side[0], to_side[1]),
+        &request.options,
+    )
+    .map_err(|e| Error::Usage(format!("{}: {e}", table.name)))?;
+    let class = if table.class_rows { CLASS_ROWS } else { 0 };
+    let rows = to_side[0] * to_side[1] + class;
+    let index_shape = table.index.as_ref().map(|_| {
+        let n = to[0] * to[1] + usize::from(table.class_rows);
+        vec![n, n]
+    });
+    let needed = needed_bytes(table, rows, &index_shape, &masks);
+    if needed > request.memory_limit {
+        return Err(Error::refused(
+            path,
+            format!(
+                "resizing \"{}\" to window {}x{} needs about {} MiB, over the {} MiB guard; raise it with --memory-limit",
+                table.name,
+                to[0],
+                to[1],
+                needed >> 20,
+                request.memory_limit >> 20
+            ),
+        ));
+    }
+    let o = &request.options;
+    let antialias_applied = !geometric
+        && o.kernel != resample::Kernel::Nearest
+        && o.kernel != resample::Kernel::Area
+        && (o.antialias_applies(from_side[0], to_side[0])
+            || o.antialias_applies(from_side[1], to_side[1]));
+    Ok(Some(WindowChange {
+        table: table.clone(),
+        to,
+        new_shape: vec![rows, table.heads],
+        options: request.options,
+        geometric,
+        antialias_applied,
+        index_shape,
+        masks,
+        needed_bytes: needed,
+    }))
+}
+
+/// The new window: the target grid for a table that spans it, `--window` for the others.
+fn target_window(path: &std::path::Path, t: &WindowTable, request: &Request) -> Result<[usize; 2]> {
+    match t.follows {
+        Follows::Window => Ok(request.window.map_or(t.window, |(h, w)| [h, w])),
+        Follows::Grid => target_grid(path, &t.name, t.patch, request.target),
+    }
+}
+
+/// The patch grid a request asks for, the patch size dividing an image size.
+fn target_grid(
+    path: &std::path::Path,
+    name: &str,
+    patch: Option<usize>,
+    target: Target,
+) -> Result<[usize; 2]> {
+    match target {
+        Target::Grid(h, w) => Ok([h, w]),
+        Target::Image(h, w) => {
+            let p = patch.ok_or_else(|| {
+                Error::table(
+                    path,
+                    format!("\"{name}\": the patch size is unknown (no patch-projection kernel found); pass --patch P or give --grid"),
+                )
+            })?;
+            if h % p != 0 || w % p != 0 {
+                return Err(Error::Usage(format!(
+                    "image {h}x{w} is not a whole number of {p}-pixel patches (\"{name}\"); choose a multiple of {p}"
+                )));
+            }
+            Ok([h / p, w / p])
+        }
+    }
+}
+
+/// A mask's stage map scales with the patch grid; its new window is the table's.
+fn mask_change(
+    path: &std::path::Path,
+    t: &WindowTable,
+    m: &super::Mask,
+    window: [usize; 2],
+    request: &Request,
+) -> Result<MaskChange> {
+    let grid = t.model_grid.unwrap_or(m.map);
+    let new_grid = target_grid(path, &m.name, t.patch, request.target)?;
+    let mut map = [0; 2];
+    for axis in 0..2 {
+        let (g, g2, side) = (grid[axis], new_grid[axis], m.map[axis]);
+        if g % side != 0 || (g2 * side) % g != 0 {
+            return Err(Error::table(
+                path,
+                format!(
+                    "\"{}\": the stage's feature map {}x{} does not scale from patch grid {}x{} to {}x{} by a whole factor; pass --source-grid HxW if the patch grid is not {}x{}",
+                    m.name, m.map[0], m.map[1], grid[0], grid[1], new_grid[0], new_grid[1], grid[0], grid[1]
+                ),
+            ));
+        }
+        map[axis] = g2 * side / g;
+    }
+    if map[0] % window[0] != 0 || map[1] % window[1] != 0 {
+        return Err(Error::Usage(format!(
+            "\"{}\": the new {}x{} feature map does not split into {}x{} windows; choose a window that divides it",
+            m.name, map[0], map[1], window[0], window[1]
+        )));
+    }
+    let layout = mask_layout(map, window);
+    let shifted = layout.effective_shift() != (0, 0);
+    Ok(MaskChange {
+        name: m.name.clone(),
+        map,
+        layout: shifted.then_some(layout),
+        new_shape: shifted.then(|| {
+            let cells = window[0] * window[1];
+            vec![(map[0] / window[0]) * (map[1] / window[1]), cells, cells]
+        }),
+    })
+}
+
+/// The table's working copies (f32/f64) and output, the index buffer and masks.
+fn needed_bytes(
+    t: &WindowTable,
+    rows: usize,
+    index_shape: &Option<Vec<usize>>,
+    masks: &[MaskChange],
+) -> u64 {
+    let elem = t.dtype.bitsize() as u64 / 8;
+    let cells = |shape: &[usize]| shape.iter().fold(1u64, |a, &n| a.saturating_mul(n as u64));
+    let table = (rows as u64 * t.heads as u64).saturating_mul(elem + 24);
+    let source = cells(&t.shape).saturating_mul(elem + 16);
+    let index = index_shape
+        .as_deref()
+        .map_or(0, |s| cells(s).saturating_mul(16));
+    let mask: u64 = masks
+        .iter()
+        .filter_map(|m| m.new_shape.as_deref())
+        .map(|s| cells(s).saturating_mul(8))
+        .sum();
+    table
+        .saturating_add(source)
+        .saturating_add(index)
+        .saturating_add(mask)
+}
+
+impl WindowChange {
+    fn sides(&self) -> ([usize; 2], [usize; 2]) {
+        let side = |w: [usize; 2]| [2 * w[0] - 1, 2 * w[1] - 1];
+        (side(self.table.window), side(self.to))
+    }
+
+    fn method(&self) -> &'static str {
+        if self.geometric {
+            "geometric"
+        } else {
+            "resampled"
+        }
+    }
+
+    /// The offset grid resampled, in f64 for F64 tables and for the geometric method.
+    fn new_offsets(&self, path: &std::path::Path, grid: &[u8]) -> Result<(Vec<u8>, Images)> {
+        let (from, to) = self.sides();
+        let heads = self.table.heads;
+        let dtype = self.table.dtype;
+        let what = format!("resizing \"{}\"", self.table.name);
+        let value_error = |e| values::value_error(path, &what, e);
+        let limit = crate::rebuild::HARD_ELEMENT_LIMIT;
+        let (before, after): (Vec<f64>, Vec<f64>) = {
+            let v = values::decode_f64(dtype, grid).map_err(value_error)?;
+            let r = if self.geometric {
+                geometric::resample(&v, from[0], heads, to[0], limit)
+                    .map_err(|e| Error::refused(path, format!("{what}: {e}")))?
+            } else if dtype == Dtype::F64 {
+                resample::resample(&v, (from[0], from[1]), heads, (to[0], to[1]), &self.options)
+                    .map_err(|e| Error::Usage(format!("{what}: {e}")))?
+            } else {
+                // f32 arithmetic, as for every other table of a narrower dtype.
+                let narrow: Vec<f32> = v.iter().map(|x| *x as f32).collect();
+                resample::resample(
+                    &narrow,
+                    (from[0], from[1]),
+                    heads,
+                    (to[0], to[1]),
+                    &self.options,
+                )
+                .map_err(|e| Error::Usage(format!("{what}: {e}")))?
+                .into_iter()
+                .map(f64::from)
+                .collect()
+            };
+            (v, r)
+        };
+        let mut bytes = Vec::new();
+        if dtype == Dtype::F64 {
+            values::encode_f64_into(dtype, &after, &mut bytes).map_err(value_error)?;
+        } else {
+            let narrow: Vec<f32> = after.iter().map(|x| *x as f32).collect();
+            values::encode_f32_into(dtype, &narrow, &mut bytes).map_err(value_error)?;
+        }
+        let images = Images {
+            before: before.iter().map(|x| *x as f32).collect(),
+            after: after.iter().map(|x| *x as f32).collect(),
+            from,
+            to,
+            width: heads,
+        };
+        Ok((bytes, images))
+    }
+}
+
+impl Change for WindowChange {
+    fn name(&self) -> &str {
+        &self.table.name
+    }
+
+    fn shape(&self) -> &[usize] {
+        &self.table.shape
+    }
+
+    fn rewrites(&self) -> Vec<(&str, &[usize])> {
+        let mut out = vec![(self.table.name.as_str(), self.new_shape.as_slice())];
+        if let (Some(name), Some(shape)) = (&self.table.index, &self.index_shape) {
+            out.push((name.as_str(), shape.as_slice()));
+        }
+        for m in &self.masks {
+            if let Some(shape) = &m.new_shape {
+                out.push((m.name.as_str(), shape.as_slice()));
+            }
+        }
+        out
+    }
+
+    fn drops(&self) -> Vec<&str> {
+        self.masks
+            .iter()
+            .filter(|m| m.layout.is_none())
+            .map(|m| m.name.as_str())
+            .collect()
+    }
+
+    fn compute(&self, ckpt: &dyn TensorSource, allow_nonfinite: bool) -> Result<Computed> {
+        let path = ckpt.source_path();
+        let entry = ckpt.find(&self.table.name).expect("planned tables exist");
+        let raw = ckpt.bytes(entry)?;
+        if !allow_nonfinite {
+            refuse_nonfinite(path, &self.table.name, entry.dtype, &raw, "")?;
+        }
+        let elem = entry.dtype.bitsize() / 8;
+        let (from, _) = self.sides();
+        let (grid, class) = raw.split_at(from[0] * from[1] * self.table.heads * elem);
+        let (mut bytes, images) = self.new_offsets(path, grid)?;
+        if !allow_nonfinite {
+            refuse_nonfinite(path, &self.table.name, entry.dtype, &bytes, " after resampling (the kernel overshoots; use --kernel bilinear or pass --allow-nonfinite)")?;
+        }
+        bytes.extend_from_slice(class);
+        let mut out = Computed {
+            bytes: vec![(entry.name.clone(), bytes)],
+            images: Some(images),
+        };
+        let limit = crate::rebuild::HARD_ELEMENT_LIMIT;
+        let rebuild_error = |name: &str, e: crate::rebuild::RebuildError| {
+            Error::refused(path, format!("rebuilding \"{name}\": {e}"))
+        };
+        if let Some(name) = &self.table.index {
+            let ix = ckpt.find(name).expect("discovered buffers exist");
+            let layout = IndexLayout {
+                window: (self.to[0], self.to[1]),
+                class_rows: self.table.class_rows,
+            };
+            let v = relative_index::build(layout, limit).map_err(|e| rebuild_error(name, e))?;
+            let bytes = values::encode_indices(ix.dtype, &v)
+                .map_err(|e| values::value_error(path, name, e))?;
+            out.bytes.push((name.clone(), bytes));
+        }
+        for m in &self.masks {
+            let Some(layout) = m.layout else { continue };
+            let entry = ckpt.find(&m.name).expect("discovered buffers exist");
+            let v = shift_mask::build(layout, limit)
+                .map_err(|e| rebuild_error(&m.name, e))?
+                .unwrap_or_default();
+            let bytes = values::encode_f32(entry.dtype, &v)
+                .map_err(|e| values::value_error(path, &m.name, e))?;
+            out.bytes.push((m.name.clone(), bytes));
+        }
+        Ok(out)
+    }
+
+    fn report(&self) -> ChangeReport {
+        let o = &self.options;
+        let engine = !self.geometric;
+        ChangeReport {
+            name: self.table.name.clone(),
+            kind: self.table.kind,
+            dtype: self.table.dtype.to_string(),
+            slots: if self.table.class_rows { CLASS_ROWS } else { 0 },
+            from: self.table.window.to_vec(),
+            to: self.to.to_vec(),
+            shape: self.table.shape.clone(),
+            new_shape: self.new_shape.clone(),
+            kernel: engine.then_some(o.kernel),
+            coords: engine.then_some(o.coords),
+            edges: engine.then_some(o.edges),
+            antialias: self.antialias_applied,
+            cubic_a: (engine && o.kernel == resample::Kernel::Bicubic).then_some(o.cubic_a),
+            method: self.method(),
+            companions: self
+                .rewrites()
+                .into_iter()
+                .skip(1)
+                .map(|(n, _)| n.to_string())
+                .collect(),
+            fidelity: None,
+        }
+    }
+
+    fn provenance(&self) -> serde_json::Value {
+        let o = &self.options;
+        serde_json::json!({
+            "name": self.table.name,
+            "kind": self.table.kind,
+            "method": self.method(),
+            "window_from": self.table.window,
+            "window_to": self.to,
+            "class_rows": self.table.class_rows,
+            "kernel": (!self.geometric).then_some(o.kernel),
+            "coords": o.coords,
+            "edges": o.edges,
+            "antialias": o.antialias,
+            "antialias_applied": self.antialias_applied,
+            "cubic_a": o.cubic_a,
+            "index": self.table.index,
+            "masks_rebuilt": self.masks.iter().filter(|m| m.layout.is_some()).map(|m| &m.name).collect::<Vec<_>>(),
+            "masks_dropped": self.drops(),
+        })
+    }
+
+    fn needed_bytes(&self) -> u64 {
+        self.needed_bytes
+    }
+}
