@@ -276,7 +276,7 @@ pub fn resize_text(r: &ResizeReport) -> String {
     if !r.companions.is_empty() {
         push_line(
             &mut s,
-            format!("position ids rewritten: {}", r.companions.join(", ")),
+            format!("rewritten with them: {}", r.companions.join(", ")),
         );
     }
     if !r.already_at_target.is_empty() {

@@ -13,8 +13,9 @@ use crate::checkpoint::{Format, Source, TensorSource};
 use crate::error::{Error, Result};
 use crate::figure::{self, GridRows};
 use crate::kinds::{self, Hints};
-use crate::kinds::{Change, ChangeReport, Images};
+use crate::kinds::{Change, ChangeReport, Images, Kind};
 use crate::plan::{self, Plan, Request};
+use crate::render::offsets::{self, OffsetGrid};
 use crate::selection::{self, SelectionRequest};
 use crate::similarity::{self, Grid};
 use crate::write::{self, AtomicFile, Bar, OutputRules, Pending, Progress, Silent};
@@ -395,12 +396,12 @@ fn draw_map(
     let Some(_) = &job.map else {
         return Ok(None);
     };
-    // The first absolute table that was resampled.
+    // The first absolute table that was resampled; else the first window-relative table.
     let Some((change, table, images)) = images.iter().find_map(|(c, i)| {
         let table = c.absolute()?;
         Some((*c, table, i.as_ref()?))
     }) else {
-        return Ok(None);
+        return Ok(offsets_figure(images));
     };
     let rows = GridRows::borrowed;
     let mut after_table = table.table.clone();
@@ -414,6 +415,49 @@ fn draw_map(
     )?;
     warnings.extend(drawn.notes.iter().cloned());
     Ok(Some(drawn.png))
+}
+
+/// The per-head offset images of the first window-relative table, before and after.
+fn offsets_figure(images: &[(&dyn Change, Option<Images>)]) -> Option<Vec<u8>> {
+    let (change, images) = images.iter().find_map(|(c, i)| {
+        (c.report().kind == Kind::WindowRelative).then_some((*c, i.as_ref()?))
+    })?;
+    let heads = images.width;
+    fn grid(values: &[f32], [h, w]: [usize; 2], heads: usize) -> OffsetGrid<'_> {
+        OffsetGrid {
+            values,
+            h,
+            w,
+            heads,
+        }
+    }
+    let r = change.report();
+    let title = format!(
+        "{}  |  window {} -> {}  |  {}",
+        r.name,
+        r.from
+            .iter()
+            .map(|n| n.to_string())
+            .collect::<Vec<_>>()
+            .join("x"),
+        r.to.iter()
+            .map(|n| n.to_string())
+            .collect::<Vec<_>>()
+            .join("x"),
+        r.dtype
+    );
+    let shown = images.width.min(offsets::MAX_HEADS);
+    let subtitle = format!(
+        "bias against the offset between two positions (zero offset in the middle); {shown} of {} heads, each on its own scale",
+        images.width
+    );
+    let canvas = offsets::draw(
+        &title,
+        &subtitle,
+        &grid(&images.before, images.from, heads),
+        &grid(&images.after, images.to, heads),
+    );
+    Some(canvas.png())
 }
 
 /// Write the figure (if any) to its temporary, then put OUT and the figure in place together:

@@ -5,6 +5,7 @@
 pub mod canvas;
 pub mod colour;
 pub mod font;
+pub mod offsets;
 
 use canvas::{Canvas, Rgb};
 
