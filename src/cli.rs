@@ -11,7 +11,7 @@ use crate::checkpoint::{Source, TensorSource};
 use crate::error::{Error, Result, EXIT_NO_TABLE, EXIT_OK};
 use crate::figure;
 use crate::kinds::{self, Channels, Hints};
-use crate::plan::{Relative, Request, Target};
+use crate::plan::{Frames, Relative, Request, Target};
 use crate::report::{self, ScanReport};
 use crate::resample::{Antialias, Coords, Edges, Kernel, Options, DEFAULT_CUBIC_A};
 use crate::resize::{self, ResizeJob};
@@ -146,7 +146,8 @@ pub struct ResizeArgs {
     /// Target input image size in pixels: HxW, or N for NxN. The grid is image / patch size.
     #[arg(long, value_name = "HxW", value_parser = parse_grid)]
     pub image: Option<(usize, usize)>,
-    /// Target frames T of a video grid (with --image; --grid takes TxHxW).
+    /// Target input frames of a video model: the time axis is frames / tubelet size (the
+    /// 5-D patch kernel's); --grid TxHxW gives it directly instead.
     #[arg(long, value_name = "T", value_parser = clap::value_parser!(u32).range(1..))]
     pub frames: Option<u32>,
     #[command(flatten)]
@@ -433,12 +434,12 @@ fn resize_cmd(args: ResizeArgs) -> Result<i32> {
         }
     };
     let frames = match (args.grid.and_then(|g| g.frames), args.frames) {
-        (Some(a), Some(b)) if a as u64 != u64::from(b) => {
-            return Err(Error::Usage(format!(
-                "--grid gives {a} frames and --frames {b}; give the frames once"
-            )))
-        }
-        (a, b) => a.or(b.map(|f| f as usize)),
+        (Some(_), Some(_)) => return Err(Error::Usage(
+            "--grid TxHxW gives the time axis already; --frames is for --image (or a 2-D --grid)"
+                .into(),
+        )),
+        (Some(t), None) => Some(Frames::Grid(t)),
+        (None, f) => f.map(|f| Frames::Input(f as usize)),
     };
     let job = ResizeJob {
         input: args.checkpoint.clone(),

@@ -35,10 +35,33 @@ pub struct Request {
     /// The new attention window `(Wh, Ww)` of window-relative and per-axis tables that do not
     /// span the whole grid (`None`: unchanged).
     pub window: Option<(usize, usize)>,
-    /// The new number of frames (tubelets along time) of a video grid (`None`: unchanged).
-    pub frames: Option<usize>,
+    /// The new time axis of a video grid (`None`: unchanged).
+    pub frames: Option<Frames>,
     /// How window-relative tables are resampled.
     pub relative: Relative,
+}
+
+/// The new time axis of a video grid.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Frames {
+    /// Positions along time (the T of `--grid TxHxW`).
+    Grid(usize),
+    /// Input frames (`--frames`): positions are frames / tubelet size, as the grid is image /
+    /// patch size.
+    Input(usize),
+}
+
+impl Frames {
+    /// The positions along time for a model whose tubelets span `tubelet` frames.
+    pub fn positions(self, name: &str, tubelet: usize) -> Result<usize> {
+        match self {
+            Frames::Grid(t) => Ok(t),
+            Frames::Input(f) if tubelet > 0 && f % tubelet == 0 => Ok(f / tubelet),
+            Frames::Input(f) => Err(Error::Usage(format!(
+                "{f} frames are not a whole number of {tubelet}-frame tubelets (\"{name}\"); choose a multiple of {tubelet}"
+            ))),
+        }
+    }
 }
 
 /// How window-relative tables are resampled.

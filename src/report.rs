@@ -75,10 +75,11 @@ pub fn scan_text(r: &ScanReport) -> String {
         push_line(
             &mut s,
             format!(
-                "      {} {:?}  {} + {}x{} grid, dim {}, {}",
+                "      {} {:?}  {} + {}{}x{} grid, dim {}, {}",
                 t.dtype,
                 t.shape,
                 plural(t.slots, "slot", "slots"),
+                t.frames.map(|f| format!("{f}x")).unwrap_or_default(),
                 t.grid[0],
                 t.grid[1],
                 t.dim,
@@ -90,9 +91,13 @@ pub fn scan_text(r: &ScanReport) -> String {
                 push_line(
                     &mut s,
                     format!(
-                        "      patch {p} px (from {src}), image {}x{} px",
+                        "      patch {p} px (from {src}), image {}x{} px{}",
                         t.grid[0] * p,
-                        t.grid[1] * p
+                        t.grid[1] * p,
+                        match (t.frames, t.tubelet) {
+                            (Some(f), Some(k)) => format!(", {} frames ({k} per tubelet)", f * k),
+                            _ => String::new(),
+                        }
                     ),
                 );
             }

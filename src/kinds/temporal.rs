@@ -24,6 +24,8 @@ pub struct TemporalTable {
     pub shape: Vec<usize>,
     pub frames: usize,
     pub dim: usize,
+    /// Input frames per position along time (a 5-D patch kernel's t; 1 without one).
+    pub tubelet: usize,
 }
 
 /// Names of temporal tables in released video checkpoints (common practice): `time_embed`,
@@ -36,6 +38,9 @@ pub(crate) fn is_temporal_name(name: &str) -> bool {
 }
 
 pub(super) fn find(source: &dyn TensorSource, found: &mut Discovery) -> Result<()> {
+    let tubelet = super::absolute::tubelet_kernels(source.entries())
+        .first()
+        .map_or(1, |k| k.frames);
     for entry in source.entries() {
         if !is_temporal_name(&entry.name) {
             continue;
@@ -60,6 +65,7 @@ pub(super) fn find(source: &dyn TensorSource, found: &mut Discovery) -> Result<(
             shape: entry.shape.clone(),
             frames,
             dim,
+            tubelet,
         }));
     }
     Ok(())
@@ -82,9 +88,13 @@ pub fn plan(
     t: &TemporalTable,
     request: &Request,
 ) -> Result<Option<TemporalChange>> {
-    let Some(to) = request.frames.filter(|&f| f != t.frames) else {
+    let Some(frames) = request.frames else {
         return Ok(None);
     };
+    let to = frames.positions(&t.name, t.tubelet)?;
+    if to == t.frames {
+        return Ok(None);
+    }
     resample::validate((t.frames, 1), (to, 1), &request.options)
         .map_err(|e| Error::Usage(format!("{}: {e}", t.name)))?;
     let needed = (to as u64 * t.dim as u64).saturating_mul(32);

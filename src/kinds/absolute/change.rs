@@ -56,7 +56,10 @@ pub fn plan(
     let path = ckpt.source_path();
     let to = target_grid(path, table, request.target)?;
     let from = table.grid;
-    let frames = table.frames.map(|t| (t, request.frames.unwrap_or(t)));
+    let frames = match (table.frames, request.frames) {
+        (Some(t), Some(f)) => Some((t, f.positions(&table.name, table.tubelet.unwrap_or(1))?)),
+        (t, _) => t.map(|t| (t, t)),
+    };
     if from == to && frames.is_none_or(|(t, t2)| t == t2) {
         return Ok(None);
     }

@@ -57,9 +57,13 @@ pub struct Table {
     pub kind: Kind,
     /// For `sincos`: which axis the first half of the channels encodes.
     pub sincos_first_axis: Option<FirstAxis>,
-    /// For a video table: the frames T of its `T × H × W` grid (rows are frame-major).
+    /// For a video table: the positions T along time of its `T × H × W` grid (rows are
+    /// time-major).
     #[serde(skip_serializing_if = "Option::is_none")]
     pub frames: Option<usize>,
+    /// For a video table: input frames per tubelet (the 5-D patch kernel's t).
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub tubelet: Option<usize>,
     /// Integer position-id buffers that must change with the table.
     pub companions: Vec<String>,
     /// Another table this one duplicates under a different prefix (EMA or averaged copies).
@@ -114,7 +118,10 @@ fn is_position_id_name(name: &str) -> bool {
 pub(super) fn find(source: &dyn TensorSource, hints: &Hints, found: &mut Discovery) -> Result<()> {
     let entries = source.entries();
     let kernel_widths: Vec<usize> = patch_kernels(entries).iter().map(|k| k.1).collect();
-    let tubelet_widths: Vec<usize> = tubelet_kernels(entries).iter().map(|k| k.dim).collect();
+    let tubelet_widths: Vec<(usize, usize)> = tubelet_kernels(entries)
+        .iter()
+        .map(|k| (k.dim, k.frames))
+        .collect();
     for entry in entries {
         let forced = hints.tensors.iter().any(|n| n == &entry.name);
         if !forced && !is_position_name(&entry.name) {
@@ -149,7 +156,8 @@ pub(super) fn find(source: &dyn TensorSource, hints: &Hints, found: &mut Discove
 #[derive(Clone, Copy)]
 struct Kernels<'a> {
     flat: &'a [usize],
-    tubelet: &'a [usize],
+    /// (width, frames per tubelet) of each 5-D kernel.
+    tubelet: &'a [(usize, usize)],
 }
 
 enum Verdict {
@@ -233,6 +241,10 @@ fn examine(
     }
 
     let mut frames = None;
+    let tubelet = tubelet_widths
+        .iter()
+        .find(|(width, _)| *width == dim)
+        .map(|k| k.1);
     let candidates: Vec<(usize, (usize, usize))> = if let Some(g) = grid_from_shape {
         if let Some(s) = hints.slots.filter(|&s| s != 0) {
             notes.push(format!(
@@ -252,7 +264,7 @@ fn examine(
                 )))
             }
         }
-    } else if tubelet_widths.contains(&dim) && hints.source_grid.is_none() {
+    } else if tubelet.is_some() && hints.source_grid.is_none() {
         // A video model: rows are T·H·W after the slots, and the row count alone cannot
         // tell T from H·W.
         let fits = video_explanations(rows, hints.slots);
@@ -418,6 +430,7 @@ fn examine(
             patch_source: None,
             kind,
             sincos_first_axis: first_axis,
+            tubelet: frames.and(tubelet),
             frames,
             companions: Vec::new(),
             copy_of: None,
@@ -600,6 +613,8 @@ pub(crate) fn model_patch(entries: &[TensorEntry], hints: &Hints) -> Option<(usi
 pub(crate) struct Tubelet<'a> {
     pub entry: &'a TensorEntry,
     pub dim: usize,
+    /// Input frames per tubelet (t).
+    pub frames: usize,
     pub patch: usize,
 }
 
@@ -612,6 +627,7 @@ pub(crate) fn tubelet_kernels(entries: &[TensorEntry]) -> Vec<Tubelet<'_>> {
             [d, c, t, p, q] if p == q && *c <= 64 && *t >= 1 => Some(Tubelet {
                 entry: e,
                 dim: *d,
+                frames: *t,
                 patch: *p,
             }),
             _ => None,
