@@ -31,6 +31,7 @@ fn main() {
         kind: posgrid::kinds::Kind::Learned,
         sincos_first_axis: None,
         frames: None,
+        tubelet: None,
         companions: vec![],
         copy_of: None,
         notes: vec![],
