@@ -144,6 +144,18 @@ pub(super) fn find(source: &dyn TensorSource, hints: &Hints, found: &mut Discove
         .flat_map(|t| t.masks.iter().map(|m| m.map))
         .max_by_key(|m| m[0] * m[1]);
     let model_grid = hints.source_grid.map(|(h, w)| [h, w]).or(largest);
+    // Index buffers and masks no table claimed still depend on the window: say so.
+    let claimed: Vec<&String> = tables.iter().flat_map(|t| &t.companions).collect();
+    for entry in entries {
+        if (is_index_name(&entry.name) || is_mask_name(&entry.name))
+            && !claimed.contains(&&entry.name)
+        {
+            found.skipped.push(super::Skipped {
+                name: entry.name.clone(),
+                reason: "a window-relative index buffer or attention mask with no bias table of its window beside it (a continuous position bias?); left unchanged".into(),
+            });
+        }
+    }
     for mut table in tables {
         table.model_grid = model_grid;
         found.encodings.push(Encoding::Window(table));
