@@ -32,6 +32,7 @@ fn main() {
         sincos_first_axis: None,
         frames: None,
         tubelet: None,
+        slots_from: posgrid::kinds::absolute::SlotsFrom::Rows,
         companions: vec![],
         copy_of: None,
         notes: vec![],

@@ -75,10 +75,11 @@ pub fn scan_text(r: &ScanReport) -> String {
         push_line(
             &mut s,
             format!(
-                "      {} {:?}  {} + {}{}x{} grid, dim {}, {}",
+                "      {} {:?}  {} (from {}) + {}{}x{} grid, dim {}, {}",
                 t.dtype,
                 t.shape,
                 plural(t.slots, "slot", "slots"),
+                format!("{:?}", t.slots_from).to_lowercase(),
                 t.frames.map(|f| format!("{f}x")).unwrap_or_default(),
                 t.grid[0],
                 t.grid[1],

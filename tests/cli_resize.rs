@@ -520,7 +520,7 @@ fn scan_json_carries_the_contract_fields() {
         )
     );
     let text = posgrid(&["scan", s(&input)]);
-    assert!(String::from_utf8_lossy(&text.stdout).contains("1 slot + 14x14 grid"));
+    assert!(String::from_utf8_lossy(&text.stdout).contains("1 slot (from tokens) + 14x14 grid"));
 }
 
 #[test]

@@ -729,3 +729,117 @@ fn non_square_explanations_are_every_divisor_pair() {
         assert_eq!((t.slots, t.grid), (0, [h, w]), "{h}x{w}");
     }
 }
+
+/// A table of `rows` rows with the given token tensors beside it (width 16).
+fn with_tokens(dir: &std::path::Path, rows: usize, tokens: &[(&str, usize)]) -> std::path::PathBuf {
+    let d = 16;
+    let mut tensors = vec![floats(
+        "pos_embed",
+        Dtype::F32,
+        &[1, rows, d],
+        &noise(rows * d, 5, 0.1),
+    )];
+    for (i, (name, n)) in tokens.iter().enumerate() {
+        tensors.push(floats(
+            name,
+            Dtype::F32,
+            &[1, *n, d],
+            &noise(n * d, 6 + i as u64, 0.1),
+        ));
+    }
+    write(dir, "tokens.safetensors", &tensors, None)
+}
+
+#[test]
+fn slots_are_decided_by_the_tokens_beside_the_table() {
+    use posgrid::kinds::absolute::SlotsFrom;
+    let dir = tempfile::tempdir().unwrap();
+    // A class token has a position row in front of the grid (common practice).
+    let found = scan(
+        &with_tokens(dir.path(), 197, &[("cls_token", 1)]),
+        &Hints::default(),
+    );
+    let t = &found.tables[0];
+    assert_eq!(
+        (t.slots, t.grid, t.slots_from),
+        (1, [14, 14], SlotsFrom::Tokens)
+    );
+
+    // Class and distillation tokens: two rows (common practice in distilled classifiers).
+    let found = scan(
+        &with_tokens(dir.path(), 198, &[("cls_token", 1), ("dist_token", 1)]),
+        &Hints::default(),
+    );
+    let t = &found.tables[0];
+    assert_eq!(
+        (t.slots, t.grid, t.slots_from),
+        (2, [14, 14], SlotsFrom::Tokens)
+    );
+
+    // Register tokens have no position rows (common practice): still one slot, and said so.
+    let found = scan(
+        &with_tokens(dir.path(), 257, &[("cls_token", 1), ("reg_token", 4)]),
+        &Hints::default(),
+    );
+    let t = &found.tables[0];
+    assert_eq!(
+        (t.slots, t.grid, t.slots_from),
+        (1, [16, 16], SlotsFrom::Tokens)
+    );
+    assert!(
+        t.notes.iter().any(|n| n.contains("reg_token")),
+        "{:?}",
+        t.notes
+    );
+
+    // A class token whose row was folded away: the table holds the grid alone.
+    let found = scan(
+        &with_tokens(dir.path(), 196, &[("cls_token", 1)]),
+        &Hints::default(),
+    );
+    let t = &found.tables[0];
+    assert_eq!(
+        (t.slots, t.grid, t.slots_from),
+        (0, [14, 14], SlotsFrom::Rows)
+    );
+    assert!(
+        t.notes.iter().any(|n| n.contains("folded")),
+        "{:?}",
+        t.notes
+    );
+
+    // Without tokens the rows decide, and say so.
+    let found = scan(&with_tokens(dir.path(), 197, &[]), &Hints::default());
+    assert_eq!(found.tables[0].slots_from, SlotsFrom::Rows);
+}
+
+#[test]
+fn tokens_and_rows_that_disagree_are_ambiguous_with_the_flag_that_settles_it() {
+    // Two tokens expect 2 rows; 50 rows fit 1 + 7x7 only (and no grid alone): no silent guess.
+    let dir = tempfile::tempdir().unwrap();
+    let path = with_tokens(dir.path(), 50, &[("cls_token", 1), ("dist_token", 1)]);
+    let found = scan(&path, &Hints::default());
+    assert!(found.tables.is_empty());
+    assert_eq!(found.ambiguous.len(), 1);
+    assert!(found.ambiguous[0].resolve_with.contains("--slots"));
+    let o = posgrid(&[
+        "resize",
+        s(&path),
+        "-o",
+        s(&dir.path().join("o.safetensors")),
+        "--grid",
+        "8",
+    ]);
+    assert_eq!(code(&o), 4, "{}", stderr(&o));
+    let o = posgrid(&[
+        "resize",
+        s(&path),
+        "-o",
+        s(&dir.path().join("o.safetensors")),
+        "--grid",
+        "8",
+        "--slots",
+        "1",
+    ]);
+    assert_eq!(code(&o), 0, "{}", stderr(&o));
+}

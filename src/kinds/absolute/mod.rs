@@ -4,6 +4,7 @@
 //! the engine (or a sine-cosine table built anew); integer position-id buffers follow them.
 
 mod change;
+mod tokens;
 
 use serde::Serialize;
 
@@ -34,6 +35,17 @@ pub enum Layout {
     Grid,
     /// `[1, D, H, W]`: channels first (no class slots)
     GridChannelsFirst,
+}
+
+/// What decided a table's class slots.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
+#[serde(rename_all = "lowercase")]
+pub enum SlotsFrom {
+    Tokens,
+    Rows,
+    Values,
+    Flag,
+    Shape,
 }
 
 /// A position table on a 2-D patch grid.
@@ -68,6 +80,10 @@ pub struct Table {
     pub companions: Vec<String>,
     /// Another table this one duplicates under a different prefix (EMA or averaged copies).
     pub copy_of: Option<String>,
+    /// What decided the slots: `tokens` (the class and distillation token tensors beside the
+    /// table, with the row count), `rows` (the row count alone), `values` (the sine-cosine
+    /// values), `flag` (`--slots`/`--source-grid`) or `shape` (a grid-shaped table has none).
+    pub slots_from: SlotsFrom,
     /// How the slots and grid were decided, when it was not the only explanation.
     pub notes: Vec<String>,
 }
@@ -241,6 +257,14 @@ fn examine(
     }
 
     let mut frames = None;
+    let mut slots_from = match (
+        grid_from_shape,
+        hints.source_grid.or(hints.slots.map(|_| (0, 0))),
+    ) {
+        (Some(_), _) => SlotsFrom::Shape,
+        (None, Some(_)) => SlotsFrom::Flag,
+        (None, None) => SlotsFrom::Rows,
+    };
     let tubelet = tubelet_widths
         .iter()
         .find(|(width, _)| *width == dim)
@@ -301,7 +325,26 @@ fn examine(
             }
         }
     } else {
-        square_explanations(rows)
+        let by_rows = square_explanations(rows);
+        match tokens::decide(
+            &by_rows,
+            &tokens::beside(source.entries(), &entry.name, dim),
+        ) {
+            tokens::Decision::Rows => by_rows,
+            tokens::Decision::Take(c, from, note) => {
+                slots_from = from;
+                notes.push(note);
+                vec![c]
+            }
+            tokens::Decision::Disagree(why) => {
+                return Ok(Verdict::Ambiguous(Ambiguous {
+                    name: entry.name.clone(),
+                    rows,
+                    candidates: by_rows.iter().map(|&(s, (h, w))| (s, vec![h, w])).collect(),
+                    resolve_with: format!("--slots N ({why})"),
+                }))
+            }
+        }
     };
 
     // The values settle the sine-cosine kind, and can settle an ambiguous or non-square grid.
@@ -347,6 +390,7 @@ fn examine(
                     .collect(),
             };
             if fits.len() == 1 {
+                slots_from = SlotsFrom::Values;
                 notes.push(format!(
                     "grid {}x{} read from the sine-cosine values (no square grid fits {rows} rows)",
                     fits[0].1 .0, fits[0].1 .1
@@ -367,6 +411,7 @@ fn examine(
                 .collect();
             if fits.len() == 1 {
                 notes.push("slots and grid read from the sine-cosine values".into());
+                slots_from = SlotsFrom::Values;
                 fits[0]
             } else if let Some(&c) = candidates.iter().find(|(s, _)| *s <= 2) {
                 // 0, 1 or 2 slots is what released models use (common practice); a larger
@@ -431,6 +476,7 @@ fn examine(
             kind,
             sincos_first_axis: first_axis,
             tubelet: frames.and(tubelet),
+            slots_from,
             frames,
             companions: Vec::new(),
             copy_of: None,
