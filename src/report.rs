@@ -37,7 +37,8 @@ impl ScanReport {
 
     /// Whether a script should treat the scan as a failure: nothing found, or ambiguity.
     pub fn is_conclusive(&self) -> bool {
-        !self.discovery.tables.is_empty() && self.discovery.ambiguous.is_empty()
+        let d = &self.discovery;
+        !(d.tables.is_empty() && d.encodings.is_empty()) && d.ambiguous.is_empty()
     }
 }
 

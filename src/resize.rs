@@ -122,10 +122,22 @@ pub fn run(job: &ResizeJob) -> Result<ResizeReport> {
         images,
     } = compute(&source, &plan, job.request.allow_nonfinite)?;
     for (report_table, (change, images)) in report.tables.iter_mut().zip(&images) {
-        if let Some(images) = images {
-            let (fidelity, notes) = fidelity_of(*change, images, job);
-            report_table.fidelity = fidelity;
-            report.warnings.extend(notes);
+        match images {
+            Some(Images {
+                unscored: Some(why),
+                ..
+            }) => report
+                .warnings
+                .push(format!("\"{}\": fidelity not scored: {why}", change.name())),
+            Some(images) => {
+                let (fidelity, notes) = fidelity_of(*change, images, job);
+                report_table.fidelity = fidelity;
+                report.warnings.extend(notes);
+            }
+            None => report.warnings.push(format!(
+                "\"{}\": fidelity not scored: the similarity maps are drawn on 2-D grids",
+                change.name()
+            )),
         }
     }
     let output = output_of(&source, &plan, &selection, &new_data);

@@ -905,9 +905,6 @@ fn scan_lists_window_relative_tables_with_their_windows() {
 }
 
 #[test]
-#[ignore = "posgrid defect: scan exits 4 (no table) when every grid-dependent tensor found is \
-            of a kind other than learned/sincos (report::ScanReport::is_conclusive looks only \
-            at absolute tables)"]
 fn scan_of_window_relative_tables_alone_exits_0() {
     // README Exit codes: 0 for success; 4 is for no table or an ambiguous one, and scan finds
     // and lists 1 to 4 tables here, none ambiguous, with nothing on stderr.
@@ -1140,8 +1137,6 @@ fn tensor_restricts_the_change_to_one_table() {
 }
 
 #[test]
-#[ignore = "posgrid defect: with --tensor, a global block's per-axis table follows --window \
-            (or is taken as already at target) instead of the grid"]
 fn tensor_restricts_the_change_to_a_global_per_axis_table() {
     // README kinds table: a per-axis table whose S is the patch grid side follows --grid;
     // --tensor only restricts which tables change. Without --tensor, blocks.1's table goes
@@ -1208,7 +1203,7 @@ fn a_non_square_grid_with_rotary_buffers_is_a_usage_error() {
 }
 
 #[test]
-fn frames_and_a_different_t_in_the_grid_conflict() {
+fn frames_beside_a_time_axis_in_the_grid_is_refused_and_counts_input_frames() {
     let video = input_of(&case("video"));
     let temporal = input_of(&case("video_temporal"));
     let refused: [(&str, &[&str]); 2] = [
@@ -1231,7 +1226,8 @@ fn frames_and_a_different_t_in_the_grid_conflict() {
         assert!(stderr(&r.run).contains("--frames"), "{}", stderr(&r.run));
         assert!(entries(r.dir.path()).is_empty());
     }
-    // The same T given twice is no conflict.
+    // --grid TxHxW gives the time axis itself: --frames (input frames) beside it is refused
+    // even when it would agree.
     let r = resize(
         &video,
         &[
@@ -1240,10 +1236,25 @@ fn frames_and_a_different_t_in_the_grid_conflict() {
             "--grid",
             "8x16x16",
             "--frames",
-            "8",
+            "16",
+        ],
+    );
+    assert_eq!(code(&r.run), USAGE, "{}", stderr(&r.run));
+    // --frames counts input frames: 16 frames of 2-frame tubelets are 8 positions along time
+    // (the 5-D kernel's t = 2), so this is the 8x16x16 case.
+    let r = resize(
+        &video,
+        &[
+            "--source-grid",
+            "8x14x14",
+            "--image",
+            "256",
+            "--frames",
+            "16",
         ],
     );
     assert_eq!(code(&r.run), 0, "{}", stderr(&r.run));
+    assert_eq!(r.report["tables"][0]["to"], serde_json::json!([8, 16, 16]));
 }
 
 #[test]

@@ -72,6 +72,11 @@ pub struct AxialTable {
     pub notes: Vec<String>,
 }
 
+/// Names this kind recognises.
+pub(crate) fn claims(name: &str) -> bool {
+    axis_of(name).is_some()
+}
+
 fn axis_of(name: &str) -> Option<Axis> {
     let n = normalized(name);
     if n.ends_with("relposh") {
@@ -258,6 +263,7 @@ impl Change for AxialChange {
                 from: [from, 1],
                 to: [to, 1],
                 width: c,
+                unscored: None,
             }),
         })
     }

@@ -255,6 +255,9 @@ pub struct Images {
     pub to: [usize; 2],
     /// Values per grid cell.
     pub width: usize,
+    /// Why the fidelity score would mislead here, if it would (it compares with an even
+    /// stretch of the old grid).
+    pub unscored: Option<&'static str>,
 }
 
 /// The new bytes of every tensor a change rewrites, and its images.
@@ -365,4 +368,13 @@ pub(crate) fn stretch_rows(
         let bytes = values::encode_f32(entry.dtype, &r).map_err(value_error)?;
         (bytes, v, r)
     })
+}
+
+/// Whether a kind other than the absolute table claims tensors named like this: `--tensor`
+/// forces the absolute reading only on names no other kind recognises.
+pub(crate) fn other_kind_name(name: &str) -> bool {
+    window::claims(name)
+        || axial::claims(name)
+        || rotary::claims(name)
+        || temporal::is_temporal_name(name)
 }

@@ -44,6 +44,11 @@ pub struct RotaryBuffers {
     pub patch: Option<usize>,
 }
 
+/// Names this kind recognises.
+pub(crate) fn claims(name: &str) -> bool {
+    which(name).is_some()
+}
+
 fn which(name: &str) -> Option<Which> {
     let n = normalized(name);
     if n.ends_with("freqscos") {
@@ -278,6 +283,7 @@ impl Change for RotaryChange {
             from: b.grid,
             to: self.to,
             width: 2 * b.axis_dim,
+            unscored: None,
         });
         Ok(out)
     }

@@ -157,6 +157,7 @@ impl Change for TemporalChange {
                 from: [self.table.frames, 1],
                 to: [self.to, 1],
                 width: self.table.dim,
+                unscored: None,
             }),
         })
     }

@@ -214,6 +214,7 @@ impl Change for TableChange {
                 from: self.from,
                 to: self.to,
                 width: self.table.dim,
+                unscored: None,
             }),
         };
         for c in &self.ids {

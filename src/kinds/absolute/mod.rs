@@ -139,7 +139,10 @@ pub(super) fn find(source: &dyn TensorSource, hints: &Hints, found: &mut Discove
         .map(|k| (k.dim, k.frames))
         .collect();
     for entry in entries {
-        let forced = hints.tensors.iter().any(|n| n == &entry.name);
+        // `--tensor` names a tensor to change; it forces the absolute reading only on a name
+        // no other kind recognises.
+        let forced =
+            hints.tensors.iter().any(|n| n == &entry.name) && !super::other_kind_name(&entry.name);
         if !forced && !is_position_name(&entry.name) {
             continue;
         }

@@ -282,6 +282,9 @@ impl WindowChange {
             from,
             to,
             width: heads,
+            unscored: self.geometric.then_some(
+                "the geometric method spaces the offsets unevenly, so an even stretch is no reference",
+            ),
         };
         Ok((bytes, images))
     }

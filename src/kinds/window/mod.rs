@@ -90,6 +90,11 @@ fn is_index_name(name: &str) -> bool {
     n.ends_with("relativepositionindex") || n.ends_with("relposindex")
 }
 
+/// Names this kind recognises: bias tables, their index buffers and masks.
+pub(crate) fn claims(name: &str) -> bool {
+    is_table_name(name) || is_index_name(name) || is_mask_name(name)
+}
+
 fn is_mask_name(name: &str) -> bool {
     normalized(name).ends_with("attnmask")
 }
