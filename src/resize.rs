@@ -6,6 +6,7 @@ use std::path::{Path, PathBuf};
 
 use serde::Serialize;
 
+use crate::checkpoint::directory::{self, ModelDir};
 use crate::checkpoint::sharded::ShardedSet;
 use crate::checkpoint::torch::TorchFile;
 use crate::checkpoint::writer::{self, Destination, OutEntry, Output};
@@ -154,7 +155,16 @@ pub fn run(job: &ResizeJob) -> Result<ResizeReport> {
         return Ok(report);
     }
     let figure = draw_map(job, &images, &mut report.warnings)?;
-    write_and_commit(job, &source, writer.as_ref(), &output, figure, &mut report)?;
+    let edits: Vec<(PathBuf, Vec<u8>)> = Vec::new();
+    write_and_commit(
+        job,
+        &source,
+        writer.as_ref(),
+        &output,
+        figure,
+        &edits,
+        &mut report,
+    )?;
     Ok(report)
 }
 
@@ -215,6 +225,7 @@ fn write_and_commit(
     writer: &dyn writer::Writer,
     output: &Output,
     figure: Option<Vec<u8>>,
+    edits: &[(PathBuf, Vec<u8>)],
     report: &mut ResizeReport,
 ) -> Result<()> {
     let like = mode_source(job, source);
@@ -229,7 +240,10 @@ fn write_and_commit(
         Format::Npz => Box::new(Silent),
         _ => progress_for(job, report.output_size),
     };
-    let written = writer.write(output, &dest, progress.as_mut())?;
+    let written = match model_dir_output(source, job)? {
+        Some(md) => directory::write_dir(md, writer, output, &dest, edits, progress.as_mut())?,
+        None => writer.write(output, &dest, progress.as_mut())?,
+    };
     report.output_size = written.size;
     report.bytes_written = written.size;
     report.warnings.extend(written.warnings);
@@ -356,15 +370,20 @@ fn stale_moments(output: &Output, plan: &Plan) -> Vec<String> {
 /// figure, which must be neither OUT nor an input, nor inside a set directory.
 fn check_outputs(source: &Source, job: &ResizeJob, format: Format) -> Result<()> {
     let set = source.downcast::<ShardedSet>();
-    match (format, set) {
-        (Format::ShardedSafetensors, Some(set)) => {
+    let model_dir = model_dir_output(source, job)?;
+    match (format, set, model_dir) {
+        (_, _, Some(md)) => write::check_destination_model_dir(&md.dir, &job.output, job.force)?,
+        (Format::ShardedSafetensors, Some(set), _) => {
             write::check_destination_dir(set.dir(), &job.output, job.force)?
         }
-        _ => write::check_destination(&job.input, &job.output, job.force)?,
+        _ => write::check_destination(mode_source(job, source), &job.output, job.force)?,
     }
-    if let Some(set) = set {
-        // A set converted to one file must not land among the files it is read from.
-        write::outside_set(&job.output, set.dir())?;
+    // A set or a directory converted to one file must not land among the files it is read from.
+    if let Some(dir) = set
+        .map(ShardedSet::dir)
+        .or(source.directory().map(|d| d.dir.as_path()))
+    {
+        write::outside_set(&job.output, dir)?;
     }
     let Some(png) = &job.map else {
         return Ok(());
@@ -379,22 +398,48 @@ fn check_outputs(source: &Source, job: &ResizeJob, format: Format) -> Result<()>
     if write::same_destination(png, &job.output) {
         return clash("is also the checkpoint output (-o)");
     }
-    if let Some(set) = set {
-        if write::inside(png, set.dir()) {
-            return clash("is inside the input set's directory");
+    if let Some(dir) = set
+        .map(ShardedSet::dir)
+        .or(source.directory().map(|d| d.dir.as_path()))
+    {
+        if write::inside(png, dir) {
+            return clash("is inside the input directory");
         }
-        if format == Format::ShardedSafetensors && write::inside(png, &job.output) {
-            return clash("is inside the output directory, which is written as a whole");
-        }
+    }
+    let dir_output = model_dir.is_some() || (format == Format::ShardedSafetensors && set.is_some());
+    if dir_output && write::inside(png, &job.output) {
+        return clash("is inside the output directory, which is written as a whole");
     }
     Ok(())
 }
 
-/// The input file whose permission bits limit the outputs' (a set's index for a set).
+/// The input file whose permission bits limit the outputs' (a set's index for a set, the
+/// weights file of a model directory).
 fn mode_source<'a>(job: &'a ResizeJob, source: &'a Source) -> &'a Path {
-    match source.downcast::<ShardedSet>() {
-        Some(set) => set.index_path(),
-        None => &job.input,
+    match (source.downcast::<ShardedSet>(), source.directory()) {
+        (Some(set), _) => set.index_path(),
+        (None, Some(md)) => &md.weights,
+        (None, None) => &job.input,
+    }
+}
+
+/// The model directory whose output is a directory: a model directory given as input, unless
+/// OUT names a file of a container (then the weights alone are written there). A directory
+/// output keeps its weights' container.
+fn model_dir_output<'a>(source: &'a Source, job: &ResizeJob) -> Result<Option<&'a ModelDir>> {
+    let Some(md) = source.directory() else {
+        return Ok(None);
+    };
+    if Format::from_extension(&job.output).is_some() {
+        return Ok(None);
+    }
+    match job.format {
+        Some(f) if f != source.format() => Err(Error::Usage(format!(
+            "a model directory's output keeps its weights' container ({}); to convert, name an output file such as {}",
+            source.format().name(),
+            job.output.with_extension(f.extension()).display()
+        ))),
+        _ => Ok(Some(md)),
     }
 }
 

@@ -494,6 +494,21 @@ impl AtomicFile {
 /// exists without `force`; with `force`, refuse one that is not recognisably an earlier
 /// output set (see [`recognise_previous_set`]); check that its parent exists.
 pub fn check_destination_dir(input_dir: &Path, output: &Path, force: bool) -> Result<()> {
+    check_destination_dir_with(input_dir, output, force, recognise_previous_set)
+}
+
+/// As [`check_destination_dir`] for a model directory's output: `--force` replaces only a
+/// directory that looks like an earlier output of the same model directory.
+pub fn check_destination_model_dir(input_dir: &Path, output: &Path, force: bool) -> Result<()> {
+    check_destination_dir_with(input_dir, output, force, recognise_previous_model_dir)
+}
+
+fn check_destination_dir_with(
+    input_dir: &Path,
+    output: &Path,
+    force: bool,
+    recognise: fn(&Path, &Path) -> Result<()>,
+) -> Result<()> {
     let parent = parent_dir(output);
     if !parent.is_dir() {
         return Err(Error::write(
@@ -510,7 +525,7 @@ pub fn check_destination_dir(input_dir: &Path, output: &Path, force: bool) -> Re
         return Err(Error::write(
             output,
             format!(
-                "overlaps the input set {}; choose a directory outside it",
+                "overlaps the input directory {}; choose a directory outside it",
                 input_dir.display()
             ),
         ));
@@ -533,7 +548,31 @@ pub fn check_destination_dir(input_dir: &Path, output: &Path, force: bool) -> Re
             "already exists; pass --force to replace it",
         ));
     }
-    recognise_previous_set(output, input_dir)
+    recognise(output, input_dir)
+}
+
+/// `--force` replaces a model directory's output only if it holds nothing but regular files
+/// named like the files of the input directory (what posgrid writes there); anything else is
+/// refused with the reason, and nothing is removed.
+pub fn recognise_previous_model_dir(output: &Path, input_dir: &Path) -> Result<()> {
+    let copied = input_files(input_dir);
+    for entry in fs::read_dir(output).map_err(|e| Error::read(output, e))? {
+        let entry = entry.map_err(|e| Error::read(output, e))?;
+        let name = entry.file_name().to_string_lossy().into_owned();
+        let meta = fs::symlink_metadata(entry.path()).map_err(|e| Error::read(output, e))?;
+        let why = if !meta.is_file() {
+            format!("holds \"{name}\", which is {}", kind_name(&meta))
+        } else if !copied.contains(&name) {
+            format!("holds \"{name}\", which is not a file of the input directory")
+        } else {
+            continue;
+        };
+        return Err(Error::write(
+            output,
+            format!("{why}; --force replaces only a directory that posgrid wrote from this model directory, so it was left as it is"),
+        ));
+    }
+    Ok(())
 }
 
 /// `--force` replaces a directory only if it looks like an earlier output set of posgrid:
@@ -621,7 +660,6 @@ fn input_files(dir: &Path) -> Vec<String> {
         .flatten()
         .filter(|e| e.file_type().is_ok_and(|t| t.is_file()))
         .map(|e| e.file_name().to_string_lossy().into_owned())
-        .filter(|n| !n.starts_with('.'))
         .collect()
 }
 

@@ -4,6 +4,7 @@
 //! bytes", and commits atomically. Validation happens when a container is opened, before any
 //! tensor data is used.
 
+pub mod directory;
 pub mod json;
 pub mod npz;
 pub mod pickle;
@@ -84,6 +85,15 @@ impl Format {
             "safetensors" => Some(Format::Safetensors),
             "pth" | "pt" | "bin" => Some(Format::PyTorch),
             _ => None,
+        }
+    }
+
+    /// The file extension of a single file of this container.
+    pub fn extension(self) -> &'static str {
+        match self {
+            Format::Npz => "npz",
+            Format::PyTorch => "pth",
+            _ => "safetensors",
         }
     }
 
@@ -439,42 +449,39 @@ impl Reader for Checkpoint {
 #[derive(Debug)]
 pub struct Source {
     reader: Box<dyn Reader>,
+    /// The model directory the weights were found in, when a directory was given.
+    directory: Option<directory::ModelDir>,
 }
 
 impl Source {
-    /// Open a file, a set's directory or a set's index. The container is told by the file's
-    /// first bytes; a `.npz` name that is not a ZIP archive is reported as such.
+    /// Open a file, a model directory (one checkpoint file and its configuration), a set's
+    /// directory or a set's index. The container is told by the file's first bytes; a `.npz`
+    /// name that is not a ZIP archive is reported as such.
     pub fn open(path: impl AsRef<Path>) -> Result<Self> {
         let path = path.as_ref();
         let is_index = path.extension().is_some_and(|e| e == "json");
-        let reader: Box<dyn Reader> = if path.is_dir() || is_index {
-            Box::new(sharded::ShardedSet::open(path)?)
-        } else {
-            let (file, meta) = open_regular(path)?;
-            let named_npz = path
-                .extension()
-                .is_some_and(|e| e.eq_ignore_ascii_case("npz"));
-            // A PyTorch name with a damaged ZIP inside is reported as a PyTorch file.
-            let named_torch = Format::from_extension(path) == Some(Format::PyTorch);
-            let zip = is_zip(&file);
-            if zip && (named_torch || torch::is_torch_zip(&file)) {
-                Box::new(torch::TorchFile::open(path)?)
-            } else if zip {
-                Box::new(npz::Npz::open(path)?)
-            } else if torch::is_legacy(&file) {
-                return Err(torch::legacy_error(path));
-            } else if named_npz {
-                let problem = if meta.len() == 0 {
-                    "is empty, not an npz archive"
-                } else {
-                    "has a .npz name but is not a ZIP archive (an npz file is a ZIP of .npy arrays)"
-                };
-                return Err(Error::invalid(path, FormatProblem::Other(problem.into())));
-            } else {
-                Box::new(Checkpoint::open(path)?)
-            }
-        };
-        Ok(Source { reader })
+        if is_index || (path.is_dir() && directory::has_shard_index(path)) {
+            return Ok(Source {
+                reader: Box::new(sharded::ShardedSet::open(path)?),
+                directory: None,
+            });
+        }
+        if path.is_dir() {
+            let dir = directory::ModelDir::find(path)?;
+            return Ok(Source {
+                reader: open_file(&dir.weights)?,
+                directory: Some(dir),
+            });
+        }
+        Ok(Source {
+            reader: open_file(path)?,
+            directory: None,
+        })
+    }
+
+    /// The model directory the weights come from, if a directory was opened.
+    pub fn directory(&self) -> Option<&directory::ModelDir> {
+        self.directory.as_ref()
     }
 
     /// The reader behind this source.
@@ -486,6 +493,33 @@ impl Source {
     pub fn downcast<T: 'static>(&self) -> Option<&T> {
         self.reader.as_any().downcast_ref::<T>()
     }
+}
+
+/// Open one checkpoint file, its container told by its first bytes.
+fn open_file(path: &Path) -> Result<Box<dyn Reader>> {
+    let (file, meta) = open_regular(path)?;
+    let named_npz = path
+        .extension()
+        .is_some_and(|e| e.eq_ignore_ascii_case("npz"));
+    // A PyTorch name with a damaged ZIP inside is reported as a PyTorch file.
+    let named_torch = Format::from_extension(path) == Some(Format::PyTorch);
+    let zip = is_zip(&file);
+    Ok(if zip && (named_torch || torch::is_torch_zip(&file)) {
+        Box::new(torch::TorchFile::open(path)?)
+    } else if zip {
+        Box::new(npz::Npz::open(path)?)
+    } else if torch::is_legacy(&file) {
+        return Err(torch::legacy_error(path));
+    } else if named_npz {
+        let problem = if meta.len() == 0 {
+            "is empty, not an npz archive"
+        } else {
+            "has a .npz name but is not a ZIP archive (an npz file is a ZIP of .npy arrays)"
+        };
+        return Err(Error::invalid(path, FormatProblem::Other(problem.into())));
+    } else {
+        Box::new(Checkpoint::open(path)?)
+    })
 }
 
 impl std::ops::Deref for Source {

@@ -191,8 +191,8 @@ impl ShardedSet {
         self.owner.get(name).copied()
     }
 
-    /// The other visible regular files of the set's directory (configuration files and the
-    /// like), which a set output copies unchanged.
+    /// The other regular files of the set's directory (configuration files and the like,
+    /// hidden ones included), which a set output copies.
     pub fn other_files(&self) -> Result<Vec<PathBuf>> {
         let index_name = self.index_path.file_name().unwrap_or_default();
         let mut found: Vec<PathBuf> = fs::read_dir(&self.dir)
@@ -202,9 +202,7 @@ impl ShardedSet {
             .filter(|e| {
                 let n = e.file_name();
                 let text = n.to_string_lossy();
-                n != index_name
-                    && !self.shards.iter().any(|(s, _)| s.as_str() == text)
-                    && !text.starts_with('.')
+                n != index_name && !self.shards.iter().any(|(s, _)| s.as_str() == text)
             })
             .map(|e| e.path())
             .collect();
