@@ -4,6 +4,7 @@
 //! buffer is that construction (and for which window, map or parameters). Pure functions: no
 //! file knowledge, every fault an error value, every output bounded before it is allocated.
 
+pub mod patch_kernel;
 pub mod relative_index;
 pub mod rotary;
 pub mod shift_mask;
