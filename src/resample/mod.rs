@@ -13,7 +13,10 @@ use std::borrow::Cow;
 
 pub use options::{Antialias, Coords, Edges, Kernel, Options, DEFAULT_CUBIC_A};
 use passes::{pass_along_axis, AxisLayout};
-pub use weights::{axis_weights, try_axis_weights, AxisWeights};
+pub use weights::{
+    axis_weights, scaled_side, try_axis_weights, try_axis_weights_mapped, try_scaled_side,
+    AxisWeights, ScaleProblem,
+};
 
 /// The most grid axes the engine resamples: time, height, width.
 pub const MAX_AXES: usize = 3;
@@ -38,7 +41,7 @@ impl Sample for f64 {
 }
 
 /// Why a resampling request was refused.
-#[derive(Debug, Clone, PartialEq, Eq, thiserror::Error)]
+#[derive(Debug, Clone, PartialEq, thiserror::Error)]
 pub enum ResampleError {
     #[error("grid sizes must be at least 1x1 (got {0}x{1} to {2}x{3})")]
     EmptyGrid(usize, usize, usize, usize),
@@ -79,6 +82,15 @@ pub enum ResampleError {
         expected: usize,
         found: usize,
     },
+    #[error("axis {axis} of {input} samples cannot be scaled by {scale}: {problem}")]
+    BadScale {
+        axis: usize,
+        input: usize,
+        scale: f64,
+        problem: ScaleProblem,
+    },
+    #[error("a grid of {axes} axes needs {axes} scales (got {scales})")]
+    ScaleCountMismatch { axes: usize, scales: usize },
     /// A working buffer could not be allocated.
     #[error("cannot allocate {} MiB for the resampled values", bytes.div_ceil(1 << 20))]
     OutOfMemory { bytes: usize },
@@ -169,19 +181,103 @@ pub fn resample_grid<T: Sample>(
     opts: &Options,
 ) -> Result<Vec<T>, ResampleError> {
     validate_grid(from, to, d, opts)?;
+    check_grid_length(src.len(), from, d)?;
+    separable(src, from, d, to, |axis| {
+        Ok(Cow::Owned(try_axis_weights(from[axis], to[axis], opts)?))
+    })
+}
+
+/// Resample `src`, a row-major grid of sizes `from` whose cells hold `d` values, by a scale
+/// factor per axis, with the ONNX Resize `scales` semantics: each output side is
+/// `floor(in·s)` (in f64) and half-pixel coordinates, the area footprint and the antialias
+/// stretch follow 1/s rather than in/out (align-corners uses the sizes, ignoring s). Returns
+/// the values and the output sizes. An axis whose scale is exactly 1 is copied untouched.
+pub fn resample_grid_scaled<T: Sample>(
+    src: &[T],
+    from: &[usize],
+    d: usize,
+    scales: &[f64],
+    opts: &Options,
+) -> Result<(Vec<T>, Vec<usize>), ResampleError> {
+    let to = scaled_sizes(from, scales)?;
+    validate_grid(from, &to, d, opts)?;
+    check_grid_length(src.len(), from, d)?;
+    let out = separable_mapped(
+        src,
+        from,
+        d,
+        &to,
+        |axis| !weights::is_identity_mapping(from[axis], to[axis], Some(scales[axis]), opts.coords),
+        |axis| {
+            let weights = try_axis_weights_mapped(from[axis], to[axis], Some(scales[axis]), opts)
+                .map_err(|e| on_axis(e, axis))?;
+            Ok(Cow::Owned(weights))
+        },
+    )?;
+    Ok((out, to))
+}
+
+/// The output sizes `floor(in·s)` of a scaled grid, or why there are none. An empty input
+/// axis keeps 0, for the grid check to name.
+fn scaled_sizes(from: &[usize], scales: &[f64]) -> Result<Vec<usize>, ResampleError> {
+    if from.is_empty() || from.len() > MAX_AXES {
+        return Err(ResampleError::UnsupportedRank(from.len()));
+    }
+    if scales.len() != from.len() {
+        return Err(ResampleError::ScaleCountMismatch {
+            axes: from.len(),
+            scales: scales.len(),
+        });
+    }
+    from.iter()
+        .zip(scales)
+        .enumerate()
+        .map(
+            |(axis, (&input, &scale))| match try_scaled_side(input, scale) {
+                Ok(side) => Ok(side),
+                Err(ScaleProblem::NothingLeft) if input == 0 => Ok(0),
+                Err(problem) => Err(ResampleError::BadScale {
+                    axis,
+                    input,
+                    scale,
+                    problem,
+                }),
+            },
+        )
+        .collect()
+}
+
+/// A per-axis refusal, renamed to the axis it concerns.
+fn on_axis(e: ResampleError, axis: usize) -> ResampleError {
+    match e {
+        ResampleError::BadScale {
+            input,
+            scale,
+            problem,
+            ..
+        } => ResampleError::BadScale {
+            axis,
+            input,
+            scale,
+            problem,
+        },
+        other => other,
+    }
+}
+
+/// That `found` values are exactly a grid `from` of cells of `d` values (the sizes validated).
+fn check_grid_length(found: usize, from: &[usize], d: usize) -> Result<(), ResampleError> {
     // Cannot overflow: validate_grid bounded the product.
     let expected = from.iter().product::<usize>() * d;
-    if src.len() != expected {
+    if found != expected {
         return Err(ResampleError::GridLengthMismatch {
-            found: src.len(),
+            found,
             expected,
             grid: from.to_vec(),
             d,
         });
     }
-    separable(src, from, d, to, |axis| {
-        Ok(Cow::Owned(try_axis_weights(from[axis], to[axis], opts)?))
-    })
+    Ok(())
 }
 
 /// Resample `src`, a row-major `[h, w, d]` grid, to `[oh, ow, d]`.
@@ -266,12 +362,25 @@ fn separable<'w, T: Sample>(
     from: &[usize],
     d: usize,
     to: &[usize],
+    weights_of: impl FnMut(usize) -> Result<Cow<'w, AxisWeights>, ResampleError>,
+) -> Result<Vec<T>, ResampleError> {
+    separable_mapped(src, from, d, to, |axis| from[axis] != to[axis], weights_of)
+}
+
+/// [`separable`], resampling exactly the axes for which `moves(axis)` holds (with a scale, a
+/// side can stay while its coordinates move).
+fn separable_mapped<'w, T: Sample>(
+    src: &[T],
+    from: &[usize],
+    d: usize,
+    to: &[usize],
+    moves: impl Fn(usize) -> bool,
     mut weights_of: impl FnMut(usize) -> Result<Cow<'w, AxisWeights>, ResampleError>,
 ) -> Result<Vec<T>, ResampleError> {
     let mut shape = from.to_vec();
     let mut current: Option<Vec<T>> = None;
     for axis in (0..from.len()).rev() {
-        if shape[axis] == to[axis] || d == 0 {
+        if !moves(axis) || d == 0 {
             continue;
         }
         let weights = weights_of(axis)?;

@@ -85,10 +85,16 @@ impl Default for Options {
 impl Options {
     /// Whether antialiasing applies to an axis going from `input` to `output` samples.
     pub fn antialias_applies(&self, input: usize, output: usize) -> bool {
+        self.antialias_applies_when(output < input)
+    }
+
+    /// Whether antialiasing applies to an axis that shrinks (`out < in`, or a scale below 1)
+    /// or not.
+    pub fn antialias_applies_when(&self, shrinks: bool) -> bool {
         match self.antialias {
             Antialias::Off => false,
             Antialias::On => true,
-            Antialias::Auto => output < input,
+            Antialias::Auto => shrinks,
         }
     }
 }

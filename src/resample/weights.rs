@@ -3,6 +3,7 @@
 
 use super::kernels;
 use super::options::{Coords, Edges, Kernel, Options};
+use super::ResampleError;
 use crate::values::{self, OutOfMemory};
 
 /// The taps of one axis: `taps` (index, weight) pairs per output coordinate, padded with zero
@@ -37,15 +38,116 @@ impl AxisWeights {
     }
 }
 
+/// How one axis's output samples map back onto its input: by the two sizes (the ratio in/out),
+/// or by a scale factor s given beside them (the ratio 1/s, as the ONNX Resize `scales` input
+/// and a framework's interpolate with a scale factor use it; out = floor(in·s) need not equal
+/// in·s, so the two differ).
+#[derive(Debug, Clone, Copy, PartialEq)]
+struct Mapping {
+    input: usize,
+    output: usize,
+    /// Source samples per output sample: in/out, or 1/s.
+    step: f64,
+    /// Whether the axis shrinks: out < in, or s < 1.
+    shrinks: bool,
+}
+
+impl Mapping {
+    fn new(input: usize, output: usize, scale: Option<f64>) -> Self {
+        match scale {
+            Some(s) => Mapping {
+                input,
+                output,
+                step: 1.0 / s,
+                shrinks: s < 1.0,
+            },
+            None => Mapping {
+                input,
+                output,
+                step: input as f64 / output as f64,
+                shrinks: output < input,
+            },
+        }
+    }
+
+    /// The source coordinate of output `o`. Align-corners uses the sizes alone, whatever the
+    /// scale (as the ONNX operator does).
+    fn source(&self, o: usize, coords: Coords) -> f64 {
+        match coords {
+            Coords::HalfPixel => (o as f64 + 0.5) * self.step - 0.5,
+            Coords::AlignCorners if self.output > 1 => {
+                o as f64 * (self.input as f64 - 1.0) / (self.output as f64 - 1.0)
+            }
+            Coords::AlignCorners => 0.0,
+        }
+    }
+}
+
 /// The source coordinate (in sample units, sample centres at integers) of output `o`.
 pub fn source_coordinate(o: usize, input: usize, output: usize, coords: Coords) -> f64 {
-    match coords {
-        Coords::HalfPixel => (o as f64 + 0.5) * (input as f64 / output as f64) - 0.5,
-        Coords::AlignCorners if output > 1 => {
-            o as f64 * (input as f64 - 1.0) / (output as f64 - 1.0)
-        }
-        Coords::AlignCorners => 0.0,
+    Mapping::new(input, output, None).source(o, coords)
+}
+
+/// [`source_coordinate`] with an optional scale factor: with `Some(s)` the half-pixel
+/// coordinate is `(o + 0.5)/s − 0.5` (computed as `(o + 0.5)·(1/s) − 0.5`).
+pub fn source_coordinate_mapped(
+    o: usize,
+    input: usize,
+    output: usize,
+    scale: Option<f64>,
+    coords: Coords,
+) -> f64 {
+    Mapping::new(input, output, scale).source(o, coords)
+}
+
+/// The output side of an axis of `input` samples scaled by `scale`: `floor(input·scale)`,
+/// computed in f64 as the frameworks compute it. `None` when the scale is not finite or not
+/// above 0, when no sample would be left, or when the side does not fit a `usize`.
+pub fn scaled_side(input: usize, scale: f64) -> Option<usize> {
+    if !scale.is_finite() || scale <= 0.0 {
+        return None;
     }
+    let side = (input as f64 * scale).floor();
+    // usize::MAX as f64 rounds up to a power of two, which itself does not fit.
+    (side >= 1.0 && side < usize::MAX as f64).then_some(side as usize)
+}
+
+/// Why an axis cannot be scaled.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, thiserror::Error)]
+pub enum ScaleProblem {
+    #[error("a scale must be finite and above 0")]
+    NotPositive,
+    #[error("floor(size·scale) leaves no sample")]
+    NothingLeft,
+    #[error("floor(size·scale) is more samples than memory can address")]
+    TooLarge,
+    #[error("the output has {output} samples, not floor(size·scale) = {side}")]
+    SizeNotScaled { output: usize, side: usize },
+}
+
+/// [`scaled_side`], saying why when there is no side.
+pub fn try_scaled_side(input: usize, scale: f64) -> Result<usize, ScaleProblem> {
+    if !scale.is_finite() || scale <= 0.0 {
+        return Err(ScaleProblem::NotPositive);
+    }
+    scaled_side(input, scale).ok_or(if input as f64 * scale < 1.0 {
+        ScaleProblem::NothingLeft
+    } else {
+        ScaleProblem::TooLarge
+    })
+}
+
+/// Whether resampling an axis this way leaves every value where it was: same size and either
+/// the ratio is exactly 1 or the coordinates ignore it (align-corners). With a scale, a side
+/// can stay while the coordinates move (floor(10·1.05) = 10), and then the axis is resampled.
+pub fn is_identity_mapping(
+    input: usize,
+    output: usize,
+    scale: Option<f64>,
+    coords: Coords,
+) -> bool {
+    input == output
+        && (coords == Coords::AlignCorners || Mapping::new(input, output, scale).step == 1.0)
 }
 
 /// Build the weight table of one axis going from `input` to `output` samples.
@@ -65,14 +167,59 @@ pub fn try_axis_weights(
     output: usize,
     opts: &Options,
 ) -> Result<AxisWeights, OutOfMemory> {
+    weights_of(Mapping::new(input, output, None), opts)
+}
+
+/// [`try_axis_weights`] with an optional scale factor `s`: coordinates, the area footprint, the
+/// antialias stretch and whether the axis shrinks all follow 1/s instead of in/out (ONNX Resize
+/// `scales` semantics); align-corners uses the sizes alone (its antialias stretch too, where
+/// the ONNX operator would stretch by 1/s). `output` must be
+/// `floor(input·s)` ([`scaled_side`]), which also keeps every footprint within the input's
+/// reach. A refused scale is reported on axis 0: the caller knows which axis it asked for.
+pub fn try_axis_weights_mapped(
+    input: usize,
+    output: usize,
+    scale: Option<f64>,
+    opts: &Options,
+) -> Result<AxisWeights, ResampleError> {
+    if input == 0 || output == 0 {
+        return Err(ResampleError::EmptyAxis {
+            from: vec![input],
+            to: vec![output],
+        });
+    }
+    if let Some(s) = scale {
+        let problem = match try_scaled_side(input, s) {
+            Ok(side) if side == output => None,
+            Ok(side) => Some(ScaleProblem::SizeNotScaled { output, side }),
+            Err(problem) => Some(problem),
+        };
+        if let Some(problem) = problem {
+            return Err(ResampleError::BadScale {
+                axis: 0,
+                input,
+                scale: s,
+                problem,
+            });
+        }
+    }
+    // Align-corners ignores the scale altogether, the antialias stretch included: the result
+    // is the size-based one for floor(in·s).
+    let scale = scale.filter(|_| opts.coords == Coords::HalfPixel);
+    Ok(weights_of(Mapping::new(input, output, scale), opts)?)
+}
+
+/// The weight table of one mapped axis.
+fn weights_of(map: Mapping, opts: &Options) -> Result<AxisWeights, OutOfMemory> {
+    let Mapping { input, output, .. } = map;
     // All rows back to back, then padded to the longest one.
     let mut flat: Vec<(usize, f64)> = Vec::new();
     let mut ends = values::try_with_capacity(output)?;
     for o in 0..output {
         let row = match opts.kernel {
-            Kernel::Nearest => vec![nearest_tap(o, input, output, opts.coords)],
-            Kernel::Area => area_taps(o, input, output)?,
-            _ => kernel_taps(o, input, output, opts)?,
+            Kernel::Nearest => vec![nearest_tap(o, &map, opts.coords)],
+            Kernel::Area => area_taps(o, &map)?,
+            _ => kernel_taps(o, &map, opts)?,
         };
         reserve(&mut flat, row.len())?;
         flat.extend_from_slice(&row);
@@ -111,16 +258,16 @@ fn reserve<T>(v: &mut Vec<T>, extra: usize) -> Result<(), OutOfMemory> {
 }
 
 /// ONNX `round_prefer_floor`: the nearest sample, a tie going to the lower one.
-fn nearest_tap(o: usize, input: usize, output: usize, coords: Coords) -> (usize, f64) {
-    let x = source_coordinate(o, input, output, coords);
-    let i = (x - 0.5).ceil().clamp(0.0, (input - 1) as f64) as usize;
+fn nearest_tap(o: usize, map: &Mapping, coords: Coords) -> (usize, f64) {
+    let x = map.source(o, coords);
+    let i = (x - 0.5).ceil().clamp(0.0, (map.input - 1) as f64) as usize;
     (i, 1.0)
 }
 
-/// The fraction of output cell `o`'s footprint `[o·in/out, (o+1)·in/out)` each source cell
-/// covers.
-fn area_taps(o: usize, input: usize, output: usize) -> Result<Vec<(usize, f64)>, OutOfMemory> {
-    let step = input as f64 / output as f64;
+/// The fraction of output cell `o`'s footprint `[o·step, (o+1)·step)` each source cell covers
+/// (step = in/out, or 1/s).
+fn area_taps(o: usize, map: &Mapping) -> Result<Vec<(usize, f64)>, OutOfMemory> {
+    let (step, input) = (map.step, map.input);
     let lo = o as f64 * step;
     let hi = (o as f64 + 1.0) * step;
     let first = lo.floor() as usize;
@@ -136,12 +283,7 @@ fn area_taps(o: usize, input: usize, output: usize) -> Result<Vec<(usize, f64)>,
 
 /// Linear, cubic and Lanczos taps: every integer j strictly within the (stretched) support of
 /// the source coordinate, weighted by the kernel at (j - x) / stretch.
-fn kernel_taps(
-    o: usize,
-    input: usize,
-    output: usize,
-    opts: &Options,
-) -> Result<Vec<(usize, f64)>, OutOfMemory> {
+fn kernel_taps(o: usize, map: &Mapping, opts: &Options) -> Result<Vec<(usize, f64)>, OutOfMemory> {
     let (support, kernel): (f64, Box<dyn Fn(f64) -> f64>) = match opts.kernel {
         Kernel::Bilinear => (1.0, Box::new(kernels::triangle)),
         Kernel::Bicubic => {
@@ -151,13 +293,13 @@ fn kernel_taps(
         Kernel::Lanczos3 => (3.0, Box::new(kernels::lanczos3)),
         Kernel::Nearest | Kernel::Area => unreachable!("handled by their own tap builders"),
     };
-    let antialias = opts.antialias_applies(input, output);
-    let stretch = if antialias && output < input {
-        input as f64 / output as f64
+    let antialias = opts.antialias_applies_when(map.shrinks);
+    let stretch = if antialias && map.shrinks {
+        map.step
     } else {
         1.0
     };
-    let x = source_coordinate(o, input, output, opts.coords);
+    let x = map.source(o, opts.coords);
     let reach = support * stretch;
     let lo = (x - reach).floor() as i64 + 1;
     let hi = (x + reach).ceil() as i64 - 1;
@@ -175,7 +317,7 @@ fn kernel_taps(
             taps.iter_mut().for_each(|t| t.1 /= sum);
         }
     }
-    let last = input as i64 - 1;
+    let last = map.input as i64 - 1;
     let inside = |j: i64| (0..=last).contains(&j);
     let renormalised = match opts.edges {
         Edges::Renormalize => {
