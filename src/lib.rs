@@ -22,6 +22,7 @@
 
 pub mod checkpoint;
 pub mod cli;
+pub mod config;
 pub mod error;
 pub mod figure;
 pub mod kinds;

@@ -1,0 +1,564 @@
+//! Configuration files updated to a new input size: only the size values change, every other byte
+//! stays.
+//!
+//! Sources beside each check:
+//! - fixtures/config/: files written by Python's own `json` module in the layout model libraries
+//!   use (`json.dumps(config, indent=2, sort_keys=True) + "\n"`, common practice, from memory),
+//!   with the expected results made by the same module from the loaded dictionaries
+//!   (fixtures/config/make_config_cases.py, the rules written there independently);
+//! - configurations written in this file, shaped after widely used image classification and
+//!   image-text models: key names (`image_size`, `patch_size`, `vision_config`, `text_config`,
+//!   `max_position_embeddings`, `size`, `crop_size`, `shortest_edge`, `height`, `width`) as a
+//!   widely used model library writes them, common practice, from memory; values invented;
+//! - serde_json (the JSON grammar of RFC 8259) reading every output, compared value by value.
+
+use std::path::Path;
+
+use posgrid::config::{
+    disagreements, recorded_sizes, text_from_bytes, update, Change, ConfigError, FileKind, Request,
+    SizeKey, SizeValue, MAX_DEPTH, MAX_TEXT_BYTES,
+};
+use proptest::prelude::*;
+use serde_json::{json, Value};
+
+fn request(old_image: (usize, usize), new_image: (usize, usize), patch: (usize, usize)) -> Request {
+    Request {
+        old_image,
+        new_image,
+        old_patch: patch.0,
+        new_patch: patch.1,
+    }
+}
+
+/// 224 px with 16-px patches to 384 px, the patch kept.
+const TO_384: Request = Request {
+    old_image: (224, 224),
+    new_image: (384, 384),
+    old_patch: 16,
+    new_patch: 16,
+};
+
+fn path(keys: &[&str]) -> Vec<String> {
+    keys.iter().map(|k| k.to_string()).collect()
+}
+
+/// Everything outside the changed spans is byte-identical, and each span holds exactly the old
+/// value in the input and the new one in the output (a span one byte too wide or too narrow would
+/// not read as that value).
+fn assert_only_spans_differ(input: &str, output: &str, changes: &[Change]) {
+    let (mut in_at, mut out_at) = (0, 0);
+    for change in changes {
+        assert_eq!(
+            &input[in_at..change.input_span.start],
+            &output[out_at..change.output_span.start],
+            "bytes before {:?} differ",
+            change.path
+        );
+        let old: Value = serde_json::from_str(&input[change.input_span.clone()]).unwrap();
+        let new: Value = serde_json::from_str(&output[change.output_span.clone()]).unwrap();
+        assert_eq!((old, new), (change.old.clone(), change.new.clone()));
+        in_at = change.input_span.end;
+        out_at = change.output_span.end;
+    }
+    assert_eq!(
+        &input[in_at..],
+        &output[out_at..],
+        "bytes after the last change differ"
+    );
+}
+
+/// The output read as JSON equals the input read as JSON with exactly `expected` applied:
+/// (key path, new value).
+fn assert_values(input: &str, output: &str, expected: &[(Vec<String>, Value)]) {
+    let mut want: Value = serde_json::from_str(input).unwrap();
+    for (keys, new) in expected {
+        let pointer = format!("/{}", keys.join("/"));
+        *want.pointer_mut(&pointer).expect("path exists") = new.clone();
+    }
+    let got: Value = serde_json::from_str(output).expect("output is JSON");
+    assert_eq!(got, want);
+}
+
+/// Run `update` and check it against the changes the test expects: (path, old, new).
+fn assert_update(input: &str, req: &Request, expected: &[(&[&str], Value, Value)]) -> String {
+    let (output, changes) = update(input, req).unwrap();
+    let listed: Vec<(Vec<String>, Value, Value)> = changes
+        .iter()
+        .map(|c| (c.path.clone(), c.old.clone(), c.new.clone()))
+        .collect();
+    let wanted: Vec<(Vec<String>, Value, Value)> = expected
+        .iter()
+        .map(|(p, o, n)| (path(p), o.clone(), n.clone()))
+        .collect();
+    assert_eq!(listed, wanted);
+    assert_only_spans_differ(input, &output, &changes);
+    let applied: Vec<(Vec<String>, Value)> = wanted.into_iter().map(|(p, _, n)| (p, n)).collect();
+    assert_values(input, &output, &applied);
+    output
+}
+
+// ---------------------------------------------------------------------------------------------
+// Files written by Python's json module
+
+#[test]
+fn python_written_configurations_become_exactly_what_python_writes() {
+    let dir = Path::new(env!("CARGO_MANIFEST_DIR")).join("fixtures/config");
+    let manifest: Value =
+        serde_json::from_str(&std::fs::read_to_string(dir.join("manifest.json")).unwrap()).unwrap();
+    let cases = manifest["cases"].as_array().unwrap();
+    assert_eq!(cases.len(), 8);
+    for case in cases {
+        let read = |key: &str| std::fs::read_to_string(dir.join(case[key].as_str().unwrap()));
+        let (input, expected) = (read("input").unwrap(), read("expected").unwrap());
+        let side = |v: &Value| v.as_u64().unwrap() as usize;
+        let pair = |v: &Value| (side(&v[0]), side(&v[1]));
+        let r = &case["request"];
+        let req = request(
+            pair(&r["old_image"]),
+            pair(&r["new_image"]),
+            (side(&r["old_patch"]), side(&r["new_patch"])),
+        );
+        let name = &case["input"];
+
+        let kind = recorded_sizes(&input).unwrap().kind;
+        let want_kind = match case["kind"].as_str() {
+            Some("model") => FileKind::Model,
+            _ => FileKind::Preprocessing,
+        };
+        assert_eq!(kind, want_kind, "{name}");
+
+        let (output, changes) = update(&input, &req).unwrap();
+        assert_eq!(
+            output, expected,
+            "{name}: Python's json.dumps of the resized dict"
+        );
+        let report = serde_json::to_value(&changes).unwrap();
+        assert_eq!(report, case["changes"], "{name}: the change list");
+        assert_only_spans_differ(&input, &output, &changes);
+    }
+}
+
+// ---------------------------------------------------------------------------------------------
+// Model configurations
+
+/// A single-tower classifier's configuration, written by hand with tabs, CRLF line ends, numbers
+/// in unusual spellings, string escapes and no trailing newline.
+const CLASSIFIER: &str = "{\r\n\t\"architectures\": [\"ViTForImageClassification\"],\r\n\t\"hidden_size\" : 768,\r\n\t\"image_size\":224.0,\r\n\t\"initializer_range\": 0.0200,\r\n\t\"layer_norm_eps\": 1E-12,\r\n\t\"id2label\": {\"0\": \"caf\\u00e9 \\/ cr\\u00e8me\", \"1\": \"tab\\there \\\"quoted\\\"\"},\r\n\t\"num_channels\": 3,\r\n\t\"patch_size\": 16,\r\n\t\"qkv_bias\": true,\r\n\t\"encoder_stride\": 16\r\n}";
+
+#[test]
+fn single_tower_image_size_alone_changes() {
+    let recorded = recorded_sizes(CLASSIFIER).unwrap();
+    assert_eq!(recorded.kind, FileKind::Model);
+    let found: Vec<_> = recorded
+        .sizes
+        .iter()
+        .map(|s| (s.path.clone(), s.key, s.value))
+        .collect();
+    assert_eq!(
+        found,
+        [
+            (
+                path(&["image_size"]),
+                SizeKey::ImageSize,
+                SizeValue::Number(224)
+            ),
+            (
+                path(&["patch_size"]),
+                SizeKey::PatchSize,
+                SizeValue::Number(16)
+            ),
+        ]
+    );
+    let output = assert_update(
+        CLASSIFIER,
+        &TO_384,
+        &[(&["image_size"], json!(224.0), json!(384))],
+    );
+    // New numbers are integers; the untouched float spellings, escapes and CRLFs stay.
+    assert!(output.contains("\"image_size\":384,\r\n"));
+    assert!(output.contains("0.0200") && output.contains("1E-12"));
+    assert!(output.contains("caf\\u00e9 \\/ cr\\u00e8me") && output.ends_with('}'));
+}
+
+#[test]
+fn a_request_that_keeps_the_sizes_changes_nothing() {
+    let same = request((224, 224), (224, 224), (16, 16));
+    let (output, changes) = update(CLASSIFIER, &same).unwrap();
+    assert_eq!(output, CLASSIFIER);
+    assert!(changes.is_empty());
+}
+
+/// An image-text model: the vision tower nested, a text tower beside it whose numbers (some equal
+/// to the image size on purpose) must not move.
+const IMAGE_TEXT: &str = r#"{
+  "architectures": ["CLIPModel"],
+  "projection_dim": 224,
+  "text_config": {
+    "hidden_size": 224,
+    "max_position_embeddings": 77,
+    "patch_size": 16,
+    "vocab_size": 49408
+  },
+  "vision_config": {
+    "hidden_size": 768,
+    "image_size": 224,
+    "layer_norm_eps": 1e-05,
+    "patch_size": 16,
+    "prior_vision_config": {"image_size": [224, 224], "patch_size": {"height": 16, "width": 16}}
+  },
+  "vision": {"image_size": 224},
+  "vision_config_path": "vision/config.json",
+  "logit_scale_init_value": 2.6592
+}
+"#;
+
+#[test]
+fn dual_tower_changes_vision_sections_only() {
+    let recorded = recorded_sizes(IMAGE_TEXT).unwrap();
+    let paths: Vec<_> = recorded.sizes.iter().map(|s| s.path.join(".")).collect();
+    assert_eq!(
+        paths,
+        [
+            "vision_config.image_size",
+            "vision_config.patch_size",
+            "vision_config.prior_vision_config.image_size",
+            "vision_config.prior_vision_config.patch_size",
+            "vision.image_size",
+        ]
+    );
+    let req = request((224, 224), (448, 448), (16, 14));
+    let output = assert_update(
+        IMAGE_TEXT,
+        &req,
+        &[
+            (&["vision_config", "image_size"], json!(224), json!(448)),
+            (&["vision_config", "patch_size"], json!(16), json!(14)),
+            (
+                &["vision_config", "prior_vision_config", "image_size"],
+                json!([224, 224]),
+                json!([448, 448]),
+            ),
+            (
+                &["vision_config", "prior_vision_config", "patch_size"],
+                json!({"height": 16, "width": 16}),
+                json!({"height": 14, "width": 14}),
+            ),
+            (&["vision", "image_size"], json!(224), json!(448)),
+        ],
+    );
+    let out: Value = serde_json::from_str(&output).unwrap();
+    assert_eq!(out["text_config"]["max_position_embeddings"], 77);
+    assert_eq!(out["text_config"]["hidden_size"], 224);
+    assert_eq!(out["text_config"]["patch_size"], 16);
+    assert_eq!(out["projection_dim"], 224);
+    // Shapes kept: the array stays an array with its spacing, the object keeps its keys.
+    assert!(output.contains(r#""prior_vision_config": {"image_size": [448, 448], "patch_size": {"height": 14, "width": 14}}"#));
+}
+
+#[test]
+fn a_non_square_size_keeps_arrays_and_refuses_single_numbers() {
+    let arrays = r#"{"vision_config": {"image_size": [224,224], "patch_size": 16}}"#;
+    let req = request((224, 224), (384, 512), (16, 16));
+    let output = assert_update(
+        arrays,
+        &req,
+        &[(
+            &["vision_config", "image_size"],
+            json!([224, 224]),
+            json!([384, 512]),
+        )],
+    );
+    assert_eq!(
+        output,
+        r#"{"vision_config": {"image_size": [384,512], "patch_size": 16}}"#
+    );
+
+    let number = r#"{"image_size": 224, "patch_size": 16}"#;
+    match update(number, &req) {
+        Err(ConfigError::NotSquare {
+            path,
+            height: 384,
+            width: 512,
+        }) => assert_eq!(path, "image_size"),
+        other => panic!("expected NotSquare, got {other:?}"),
+    }
+}
+
+#[test]
+fn escaped_key_names_are_read_as_python_reads_them_and_kept_as_written() {
+    // "\u005f" is "_": Python's json reads these keys as vision_config and image_size.
+    let text = r#"{"vision\u005fconfig": {"image\u005fsize": 224, "patch_size": 16}}"#;
+    let output = assert_update(
+        text,
+        &TO_384,
+        &[(&["vision_config", "image_size"], json!(224), json!(384))],
+    );
+    assert_eq!(
+        output,
+        r#"{"vision\u005fconfig": {"image\u005fsize": 384, "patch_size": 16}}"#
+    );
+}
+
+// ---------------------------------------------------------------------------------------------
+// Preprocessing configurations
+
+#[test]
+fn preprocessing_sizes_change_only_where_they_equal_the_old_input() {
+    let text = r#"{
+  "crop_size": {"height": 224, "width": 224},
+  "do_center_crop": true,
+  "do_resize": true,
+  "image_mean": [0.48145466, 0.4578275, 0.40821073],
+  "image_processor_type": "CLIPImageProcessor",
+  "image_size": 256,
+  "resample": 3,
+  "size": {"shortest_edge": 224}
+}
+"#;
+    let recorded = recorded_sizes(text).unwrap();
+    assert_eq!(recorded.kind, FileKind::Preprocessing);
+    let values: Vec<_> = recorded.sizes.iter().map(|s| (s.key, s.value)).collect();
+    assert_eq!(
+        values,
+        [
+            (SizeKey::CropSize, SizeValue::HeightWidth(224, 224)),
+            (SizeKey::ImageSize, SizeValue::Number(256)),
+            (SizeKey::Size, SizeValue::ShortestEdge(224)),
+        ]
+    );
+    assert_update(
+        text,
+        &request((224, 224), (336, 336), (14, 14)),
+        &[
+            (
+                &["crop_size"],
+                json!({"height": 224, "width": 224}),
+                json!({"height": 336, "width": 336}),
+            ),
+            (
+                &["size"],
+                json!({"shortest_edge": 224}),
+                json!({"shortest_edge": 336}),
+            ),
+        ],
+    );
+}
+
+#[test]
+fn shortest_edge_follows_the_short_side_only() {
+    let text = r#"{"do_resize": true, "size": {"shortest_edge": 224}}"#;
+    // Old input 224x320: short side 224 -> new input 384x512: short side 384.
+    assert_update(
+        text,
+        &request((224, 320), (384, 512), (16, 16)),
+        &[(
+            &["size"],
+            json!({"shortest_edge": 224}),
+            json!({"shortest_edge": 384}),
+        )],
+    );
+    // A resize of 256 before a crop is a setting of its own and stays.
+    let larger = r#"{"do_resize": true, "size": {"shortest_edge": 256}}"#;
+    assert_update(larger, &TO_384, &[]);
+}
+
+#[test]
+fn preprocessing_numbers_and_unknown_forms() {
+    let text = "{\"feature_extractor_type\": \"ViTFeatureExtractor\", \"size\": 224, \"crop_size\": {\"height\": 224, \"width\": 256}, \"image_size\": {\"shortest_edge\": 224, \"longest_edge\": 1333}}\n";
+    let recorded = recorded_sizes(text).unwrap();
+    let skipped: Vec<_> = recorded.skipped.iter().map(|s| s.path.join(".")).collect();
+    assert_eq!(
+        skipped,
+        ["image_size"],
+        "an edge pair is not a size posgrid can keep consistent"
+    );
+    // The 224x256 crop is not the old input: it stays; the number 224 follows.
+    assert_update(text, &TO_384, &[(&["size"], json!(224), json!(384))]);
+}
+
+// ---------------------------------------------------------------------------------------------
+// Disagreements with the checkpoint
+
+#[test]
+fn disagreements_name_the_file_value_and_the_checkpoint() {
+    let text = r#"{"vision_config": {"image_size": 256, "patch_size": 14}}"#;
+    let warnings = disagreements(&recorded_sizes(text).unwrap(), (14, 14), 16);
+    assert_eq!(warnings.len(), 2, "{warnings:?}");
+    assert!(warnings[0].contains("vision_config.image_size") && warnings[0].contains("256"));
+    assert!(warnings[0].contains("14x14") && warnings[0].contains("224x224"));
+    assert!(warnings[1].contains("vision_config.patch_size") && warnings[1].contains("16 pixels"));
+
+    // Agreeing values: 14 x 16 = 224 (and a non-square grid as [h, w]).
+    let agreeing = r#"{"image_size": [224, 320], "patch_size": 16}"#;
+    assert!(disagreements(&recorded_sizes(agreeing).unwrap(), (14, 20), 16).is_empty());
+}
+
+#[test]
+fn a_resize_smaller_than_the_new_crop_is_reported_after_the_update() {
+    let text = r#"{"crop_size": 224, "do_center_crop": true, "size": 256}"#;
+    let (output, _) = update(text, &TO_384).unwrap();
+    assert_eq!(
+        output,
+        r#"{"crop_size": 384, "do_center_crop": true, "size": 256}"#
+    );
+    let warnings = disagreements(&recorded_sizes(&output).unwrap(), (24, 24), 16);
+    assert_eq!(warnings.len(), 1, "{warnings:?}");
+    assert!(warnings[0].starts_with("size resizes images to 256"));
+    assert!(disagreements(&recorded_sizes(text).unwrap(), (14, 14), 16).is_empty());
+}
+
+// ---------------------------------------------------------------------------------------------
+// Hostile inputs: errors, never panics
+
+fn nested(levels: usize) -> String {
+    format!(
+        "{{\"vision_config\": {{\"image_size\": 224, \"x\": {}1{}}}}}",
+        "[".repeat(levels),
+        "]".repeat(levels)
+    )
+}
+
+#[test]
+fn nesting_is_bounded() {
+    // The vision section is level 2: 62 arrays inside it reach MAX_DEPTH exactly.
+    assert_eq!(MAX_DEPTH, 64);
+    assert!(update(&nested(62), &TO_384).is_ok());
+    assert_eq!(
+        update(&nested(63), &TO_384).err(),
+        Some(ConfigError::TooDeep { limit: 64 })
+    );
+    // Far beyond any parser's recursion: refused without exhausting the stack.
+    let deep = nested(1_000_000);
+    assert_eq!(
+        recorded_sizes(&deep).err(),
+        Some(ConfigError::TooDeep { limit: 64 })
+    );
+}
+
+#[test]
+fn repeated_keys_are_refused_at_every_level() {
+    for (text, key) in [
+        (r#"{"image_size": 224, "image_size": 384}"#, "image_size"),
+        (
+            r#"{"vision_config": {"patch_size": 16, "patch_size": 14}}"#,
+            "patch_size",
+        ),
+        (
+            r#"{"image_size": 224, "image\u005fsize": 384}"#,
+            "image_size",
+        ),
+        (
+            r#"{"size": {"height": 224, "height": 224, "width": 1}}"#,
+            "height",
+        ),
+    ] {
+        assert_eq!(
+            update(text, &TO_384).err(),
+            Some(ConfigError::DuplicateKey(key.into())),
+            "{text}"
+        );
+    }
+}
+
+#[test]
+fn numbers_that_are_no_size_are_refused() {
+    for text in [
+        r#"{"image_size": 100000000000000000000000000000}"#,
+        r#"{"image_size": 18446744073709551616}"#,
+        r#"{"image_size": 2000000}"#,
+        r#"{"image_size": -224}"#,
+        r#"{"image_size": 0}"#,
+        r#"{"image_size": 224.5}"#,
+        r#"{"vision_config": {"patch_size": [16, -1]}}"#,
+        r#"{"do_resize": true, "size": {"height": 1e30, "width": 224}}"#,
+    ] {
+        match update(text, &TO_384) {
+            Err(ConfigError::BadSize { .. }) => {}
+            other => panic!("{text}: expected BadSize, got {other:?}"),
+        }
+    }
+    // Out of range for a double: not JSON a reader can hold.
+    assert!(matches!(
+        update(r#"{"image_size": 1e400}"#, &TO_384),
+        Err(ConfigError::Malformed(_))
+    ));
+    // A huge number elsewhere is not a size: it is kept as written.
+    let kept = r#"{"seed": 123456789012345678901234567890, "image_size": 224}"#;
+    assert_update(kept, &TO_384, &[(&["image_size"], json!(224), json!(384))]);
+}
+
+#[test]
+fn text_that_is_not_a_json_object_is_refused() {
+    for text in [
+        "",
+        "   ",
+        "[]",
+        "224",
+        "{} {}",
+        "{\"image_size\": 224,}",
+        "{\"image_size\": 224",
+        "{\"image_size\" 224}",
+        "{\"a\": \"unterminated}",
+        "{\"a\": NaN}",
+        "{\"a\": tru}",
+        "{\"a\": 01}",
+        "{\"\\ud800\": 1}",
+        "\u{feff}{}",
+        "{\"a\": \"\u{1}\"}",
+    ] {
+        match update(text, &TO_384) {
+            Err(ConfigError::Malformed(_)) => {}
+            other => panic!("{text:?}: expected Malformed, got {other:?}"),
+        }
+    }
+}
+
+#[test]
+fn bytes_are_checked_for_size_and_utf8() {
+    assert_eq!(
+        text_from_bytes(b"{\"a\": \"\xff\"}"),
+        Err(ConfigError::NotUtf8 { at: 7 })
+    );
+    assert_eq!(text_from_bytes(b"{}"), Ok("{}"));
+    let big = vec![b' '; MAX_TEXT_BYTES + 1];
+    assert!(matches!(
+        text_from_bytes(&big),
+        Err(ConfigError::TooLarge { .. })
+    ));
+}
+
+#[test]
+fn control_characters_in_key_names_stay_out_of_printed_warnings() {
+    let text = r#"{"\u001b[2J\u202evision_config": {"image_size": 256}}"#;
+    let recorded = recorded_sizes(text).unwrap();
+    assert_eq!(recorded.sizes.len(), 1);
+    for warning in disagreements(&recorded, (14, 14), 16) {
+        let shown = posgrid::visible::visible(&warning);
+        assert!(!shown.contains('\u{1b}') && !shown.contains('\u{202e}'));
+    }
+}
+
+proptest! {
+    #![proptest_config(ProptestConfig::with_cases(256))]
+
+    /// Truncated, cut and spliced configurations: an error or a valid update, never a panic; an
+    /// accepted text changes only inside the reported spans.
+    #[test]
+    fn damaged_configurations_never_panic(
+        cut in 0usize..IMAGE_TEXT.len(),
+        len in 0usize..8,
+        insert in prop::sample::select(vec!["", "{", "}", "[", "]", "\"", "\\", ",", ":", "1e999", "-", "\u{e9}"]),
+    ) {
+        let mut text = IMAGE_TEXT.to_string();
+        let start = (0..=cut).rev().find(|&i| text.is_char_boundary(i)).unwrap_or(0);
+        let end = (start + len..=text.len()).find(|&i| text.is_char_boundary(i)).unwrap_or(text.len());
+        text.replace_range(start..end, insert);
+        if let Ok(recorded) = recorded_sizes(&text) {
+            let _ = disagreements(&recorded, (14, 14), 16);
+        }
+        if let Ok((output, changes)) = update(&text, &request((224, 224), (448, 448), (16, 14))) {
+            assert_only_spans_differ(&text, &output, &changes);
+            prop_assert!(serde_json::from_str::<Value>(&output).is_ok());
+        }
+    }
+}
