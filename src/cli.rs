@@ -176,6 +176,15 @@ normalises its weights (ONNX antialias = 1); off never; auto is on for an axis t
     /// The bicubic parameter a (ONNX cubic_coeff_a).
     #[arg(long, default_value_t = DEFAULT_CUBIC_A, allow_negative_numbers = true, value_name = "A")]
     pub cubic_a: f64,
+    /// Leave the configuration files of a directory output as they are.
+    #[arg(
+        long,
+        long_help = "Leave the configuration files of a model directory or sharded set as they are. By default \
+the keys that record the input resolution and patch size (image_size, patch_size, at the top level or in a \
+nested vision section; a preprocessing file's size and crop_size when they equal the old input size) are set \
+to the new values, every other byte kept, and each change is reported (config_changes)."
+    )]
+    pub keep_config: bool,
     /// Print what would change, write nothing.
     #[arg(long)]
     pub dry_run: bool,
@@ -474,6 +483,7 @@ fn resize_cmd(args: ResizeArgs) -> Result<i32> {
             strip_prefix: args.strip_prefix.clone(),
             model_only: args.model_only,
         },
+        keep_config: args.keep_config,
     };
     let report = resize::run(&job)?;
     if args.json {

@@ -23,6 +23,7 @@
 pub mod checkpoint;
 pub mod cli;
 pub mod config;
+pub mod config_files;
 pub mod error;
 pub mod figure;
 pub mod kinds;

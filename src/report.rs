@@ -312,6 +312,12 @@ pub fn resize_text(r: &ResizeReport) -> String {
             ),
         );
     }
+    for c in &r.config_changes {
+        push_line(
+            &mut s,
+            format!("{}: {} {} -> {}", c.file, c.path.join("."), c.old, c.new),
+        );
+    }
     if let Some(m) = &r.map {
         push_line(&mut s, format!("similarity maps: {}", m.display()));
     }

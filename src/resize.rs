@@ -11,6 +11,7 @@ use crate::checkpoint::sharded::ShardedSet;
 use crate::checkpoint::torch::TorchFile;
 use crate::checkpoint::writer::{self, Destination, OutEntry, Output};
 use crate::checkpoint::{Format, Source, TensorSource};
+use crate::config_files::{self, ConfigChange};
 use crate::error::{Error, Result};
 use crate::figure::{self, GridRows};
 use crate::kinds::{self, Hints};
@@ -47,6 +48,8 @@ pub struct ResizeJob {
     pub format: Option<Format>,
     /// Which state dict of a tree-shaped checkpoint a flat output holds, and its names.
     pub selection: SelectionRequest,
+    /// Leave the configuration files of a directory output as they are.
+    pub keep_config: bool,
 }
 
 /// What `resize` did (or, in a dry run, would do).
@@ -73,6 +76,9 @@ pub struct ResizeReport {
     /// Tensors and other values of the input that the output does not hold (a flat output
     /// of a tree-shaped checkpoint holds one state dict).
     pub dropped: Vec<String>,
+    /// Configuration values set to the new size in a directory output (file, key path, old,
+    /// new).
+    pub config_changes: Vec<ConfigChange>,
     pub warnings: Vec<String>,
 }
 
@@ -110,6 +116,7 @@ pub fn run(job: &ResizeJob) -> Result<ResizeReport> {
         shards_copied: None,
         map: None,
         dropped: Vec::new(),
+        config_changes: Vec::new(),
         warnings: found.warnings.clone(),
     };
     if plan.is_noop() {
@@ -141,7 +148,8 @@ pub fn run(job: &ResizeJob) -> Result<ResizeReport> {
             )),
         }
     }
-    let output = output_of(&source, &plan, &selection, &new_data);
+    let mut output = output_of(&source, &plan, &selection, &new_data);
+    output.edits = update_configs(&source, job, format, &plan, &mut report)?;
     account_for(&mut report, &source, &output, &plan)?;
     writer.check(&output)?;
     let preview = writer.preview(&output)?;
@@ -155,16 +163,7 @@ pub fn run(job: &ResizeJob) -> Result<ResizeReport> {
         return Ok(report);
     }
     let figure = draw_map(job, &images, &mut report.warnings)?;
-    let edits: Vec<(PathBuf, Vec<u8>)> = Vec::new();
-    write_and_commit(
-        job,
-        &source,
-        writer.as_ref(),
-        &output,
-        figure,
-        &edits,
-        &mut report,
-    )?;
+    write_and_commit(job, &source, writer.as_ref(), &output, figure, &mut report)?;
     Ok(report)
 }
 
@@ -193,6 +192,7 @@ fn output_of<'a>(
             })
             .collect(),
         provenance: provenance(plan),
+        edits: Vec::new(),
     }
 }
 
@@ -218,6 +218,44 @@ fn account_for(
     Ok(())
 }
 
+/// The configuration files of a directory output, updated to the new size (their new
+/// contents); for a file output, a warning when configuration files beside the input record the
+/// old size.
+fn update_configs(
+    source: &Source,
+    job: &ResizeJob,
+    format: Format,
+    plan: &Plan,
+    report: &mut ResizeReport,
+) -> Result<Vec<(PathBuf, Vec<u8>)>> {
+    let set = source
+        .downcast::<ShardedSet>()
+        .filter(|_| format == Format::ShardedSafetensors);
+    let files = match (model_dir_output(source, job)?, set) {
+        (Some(md), _) => md.others.clone(),
+        (None, Some(set)) => set.other_files()?,
+        (None, None) => {
+            let beside = match source.directory() {
+                Some(md) => md.json_files().cloned().collect(),
+                None if source.downcast::<ShardedSet>().is_some() => Vec::new(),
+                None => directory::configs_beside(&job.input),
+            };
+            if !beside.is_empty() {
+                let names: Vec<String> = beside.iter().map(|p| p.display().to_string()).collect();
+                report.warnings.push(format!(
+                    "{} may record the old input size and is not changed by a file output; resize the model's directory instead (posgrid resize DIR -o OUTDIR ...) to update it",
+                    names.join(", ")
+                ));
+            }
+            return Ok(Vec::new());
+        }
+    };
+    let updates = config_files::updates(&files, plan, job.keep_config)?;
+    report.warnings.extend(updates.warnings);
+    report.config_changes = updates.changes;
+    Ok(updates.edits)
+}
+
 /// Write the output beside OUT and put it in place together with the figure, if any.
 fn write_and_commit(
     job: &ResizeJob,
@@ -225,7 +263,6 @@ fn write_and_commit(
     writer: &dyn writer::Writer,
     output: &Output,
     figure: Option<Vec<u8>>,
-    edits: &[(PathBuf, Vec<u8>)],
     report: &mut ResizeReport,
 ) -> Result<()> {
     let like = mode_source(job, source);
@@ -241,7 +278,7 @@ fn write_and_commit(
         _ => progress_for(job, report.output_size),
     };
     let written = match model_dir_output(source, job)? {
-        Some(md) => directory::write_dir(md, writer, output, &dest, edits, progress.as_mut())?,
+        Some(md) => directory::write_dir(md, writer, output, &dest, progress.as_mut())?,
         None => writer.write(output, &dest, progress.as_mut())?,
     };
     report.output_size = written.size;

@@ -150,6 +150,27 @@ pub fn configs_beside(file: &Path) -> Vec<PathBuf> {
         .collect()
 }
 
+/// Fill the output copy of side file `p`: its new contents from `edits`, or its bytes as they
+/// are. Returns the bytes written.
+pub(crate) fn fill_side_file(
+    file: &mut crate::write::AtomicFile,
+    p: &Path,
+    edits: &[(PathBuf, Vec<u8>)],
+    progress: &mut dyn crate::write::Progress,
+) -> Result<u64> {
+    match edits.iter().find(|(q, _)| q == p) {
+        Some((_, text)) => {
+            file.write(text, progress)?;
+            Ok(text.len() as u64)
+        }
+        None => {
+            let (input, meta) = super::open_regular(p)?;
+            file.copy_from(&input, p, 0, meta.len(), progress)?;
+            Ok(meta.len())
+        }
+    }
+}
+
 /// Write a model directory's output in a temporary directory beside `dest.path`: the weights
 /// through `writer` under their own file name, every other file copied as it is or, when
 /// `edits` holds new contents for it, written anew. Committed by the caller (with the figure).
@@ -158,7 +179,6 @@ pub fn write_dir(
     writer: &dyn super::writer::Writer,
     out: &super::writer::Output,
     dest: &super::writer::Destination,
-    edits: &[(PathBuf, Vec<u8>)],
     progress: &mut dyn crate::write::Progress,
 ) -> Result<super::writer::Written> {
     use crate::write::{commit_all, AtomicDir, AtomicFile, OutputRules, Pending};
@@ -184,17 +204,7 @@ pub fn write_dir(
             &dir.path().join(name),
             &OutputRules::like(p, dest.sync, false),
         )?;
-        match edits.iter().find(|(q, _)| q == p) {
-            Some((_, text)) => {
-                file.write(text, progress)?;
-                size += text.len() as u64;
-            }
-            None => {
-                let (input, meta) = super::open_regular(p)?;
-                file.copy_from(&input, p, 0, meta.len(), progress)?;
-                size += meta.len();
-            }
-        }
+        size += fill_side_file(&mut file, p, &out.edits, progress)?;
         file.commit()?;
     }
     // Checked again: OUTDIR may have appeared during the write.

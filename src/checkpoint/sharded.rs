@@ -379,10 +379,9 @@ impl Writer for SetWriter {
                 .filter_map(|p| p.file_name())
                 .map(|n| n.to_string_lossy().into_owned())
                 .collect();
-            preview.notes.push(format!(
-                "copied unchanged beside the shards: {} (update any image size they record)",
-                names.join(", ")
-            ));
+            preview
+                .notes
+                .push(format!("copied beside the shards: {}", names.join(", ")));
             for p in &plan.others {
                 preview.size += fs::metadata(p).map_err(|e| Error::read(p, e))?.len();
             }
@@ -426,10 +425,8 @@ impl Writer for SetWriter {
         }
         for p in &plan.others {
             let name = p.file_name().expect("listed files have names");
-            let (input, meta) = super::open_regular(p)?;
             let mut file = member(name, p)?;
-            file.copy_from(&input, p, 0, meta.len(), progress)?;
-            size += meta.len();
+            size += super::directory::fill_side_file(&mut file, p, &out.edits, progress)?;
             file.commit()?;
         }
         let index_name = set.index_path().file_name().expect("an index is a file");

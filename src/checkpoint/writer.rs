@@ -41,6 +41,9 @@ pub struct Output<'a> {
     /// posgrid's provenance (a JSON object); a writer adds a record already in its source
     /// under `previous`.
     pub provenance: serde_json::Value,
+    /// New contents for side files of a set or model directory (configuration files updated
+    /// to the new size); the others are copied as they are.
+    pub edits: Vec<(std::path::PathBuf, Vec<u8>)>,
 }
 
 impl<'a> Output<'a> {
@@ -50,6 +53,7 @@ impl<'a> Output<'a> {
             source,
             entries: self.entries.iter().filter(|e| keep(e)).cloned().collect(),
             provenance: self.provenance.clone(),
+            edits: self.edits.clone(),
         }
     }
 

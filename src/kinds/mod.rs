@@ -309,6 +309,11 @@ pub trait Change: std::fmt::Debug + Send + Sync {
     fn provenance(&self) -> serde_json::Value;
     /// Bytes the change needs (what the memory guard checked).
     fn needed_bytes(&self) -> u64;
+    /// The model's patch grid before and after, and its patch size, when this change moves
+    /// the patch grid itself (what configuration files record as the input size).
+    fn grid_change(&self) -> Option<([usize; 2], [usize; 2], usize)> {
+        None
+    }
     /// Tensors the output leaves out (a mask its block no longer has).
     fn drops(&self) -> Vec<&str> {
         Vec::new()

@@ -328,4 +328,8 @@ impl Change for RotaryChange {
     fn needed_bytes(&self) -> u64 {
         (self.new_shape[0] as u64 * self.new_shape[1] as u64).saturating_mul(40)
     }
+
+    fn grid_change(&self) -> Option<([usize; 2], [usize; 2], usize)> {
+        Some((self.buffers.grid, self.to, self.buffers.patch?))
+    }
 }

@@ -274,6 +274,10 @@ impl Change for TableChange {
     fn absolute(&self) -> Option<&TableChange> {
         Some(self)
     }
+
+    fn grid_change(&self) -> Option<([usize; 2], [usize; 2], usize)> {
+        Some((self.from, self.to, self.table.patch?))
+    }
 }
 
 impl TableChange {

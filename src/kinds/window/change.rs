@@ -312,6 +312,11 @@ impl Change for WindowChange {
         out
     }
 
+    fn grid_change(&self) -> Option<([usize; 2], [usize; 2], usize)> {
+        let patch = self.table.patch?;
+        (self.table.follows == Follows::Grid).then_some((self.table.window, self.to, patch))
+    }
+
     fn drops(&self) -> Vec<&str> {
         self.masks
             .iter()

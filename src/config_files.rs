@@ -1,0 +1,123 @@
+//! The configuration files of a directory output (a model directory or a sharded set), updated
+//! to the new size: the JSON files beside the weights that record the input resolution and
+//! patch size get their new values, every other byte kept (see [`crate::config`]). Files that
+//! cannot be read as such are copied as they are, with a warning.
+
+use std::path::{Path, PathBuf};
+
+use serde::Serialize;
+
+use crate::config::{self, Request};
+use crate::error::Result;
+use crate::plan::Plan;
+
+/// One configuration value changed, for the report.
+#[derive(Debug, Clone, Serialize)]
+pub struct ConfigChange {
+    /// The file's name in the output directory.
+    pub file: String,
+    /// The key path inside it.
+    pub path: Vec<String>,
+    pub old: serde_json::Value,
+    pub new: serde_json::Value,
+}
+
+/// The new contents of the configuration files, the changes, and the warnings.
+#[derive(Debug, Default)]
+pub struct Updates {
+    pub edits: Vec<(PathBuf, Vec<u8>)>,
+    pub changes: Vec<ConfigChange>,
+    pub warnings: Vec<String>,
+}
+
+/// The model's grid before and after and its patch size, from the first change that moves the
+/// patch grid itself (an absolute table, a window-relative table spanning the grid, rotary
+/// buffers).
+pub fn model_sizes(plan: &Plan) -> Option<([usize; 2], [usize; 2], usize)> {
+    plan.changes.iter().find_map(|c| c.grid_change())
+}
+
+/// Update the configuration files among `files` for `plan` (none with `keep`: only the
+/// warnings of recorded sizes that disagree with the checkpoint).
+pub fn updates(files: &[PathBuf], plan: &Plan, keep: bool) -> Result<Updates> {
+    let mut out = Updates::default();
+    let Some((from, to, patch)) = model_sizes(plan) else {
+        return Ok(out);
+    };
+    let request = Request {
+        old_image: (from[0] * patch, from[1] * patch),
+        new_image: (to[0] * patch, to[1] * patch),
+        old_patch: patch,
+        new_patch: patch,
+    };
+    for path in files
+        .iter()
+        .filter(|p| p.extension().is_some_and(|e| e == "json"))
+    {
+        let name = path
+            .file_name()
+            .map(|n| n.to_string_lossy().into_owned())
+            .unwrap_or_default();
+        let Some(bytes) = read_capped(path)? else {
+            out.warnings.push(format!(
+                "{name}: over {} MiB, not read as a configuration; copied as it is",
+                config::MAX_TEXT_BYTES >> 20
+            ));
+            continue;
+        };
+        let text = match config::text_from_bytes(&bytes) {
+            Ok(t) => t,
+            Err(e) => {
+                out.warnings.push(format!(
+                    "{name}: not read as a configuration ({e}); copied as it is"
+                ));
+                continue;
+            }
+        };
+        let recorded = match config::recorded_sizes(text) {
+            Ok(r) => r,
+            Err(e) => {
+                out.warnings.push(format!(
+                    "{name}: not read as a configuration ({e}); copied as it is"
+                ));
+                continue;
+            }
+        };
+        out.warnings.extend(
+            config::disagreements(&recorded, (from[0], from[1]), patch)
+                .into_iter()
+                .map(|w| format!("{name}: {w}")),
+        );
+        if keep || recorded.sizes.is_empty() {
+            continue;
+        }
+        match config::update(text, &request) {
+            Ok((new_text, changes)) if !changes.is_empty() => {
+                out.changes
+                    .extend(changes.into_iter().map(|c| ConfigChange {
+                        file: name.clone(),
+                        path: c.path,
+                        old: c.old,
+                        new: c.new,
+                    }));
+                out.edits.push((path.clone(), new_text.into_bytes()));
+            }
+            Ok(_) => {}
+            Err(e) => out
+                .warnings
+                .push(format!("{name}: not updated ({e}); copied as it is")),
+        }
+    }
+    Ok(out)
+}
+
+/// A side file's bytes, or `None` past the configuration size cap (a hostile directory cannot
+/// make posgrid read a huge file into memory; such a file is copied as it is).
+fn read_capped(path: &Path) -> Result<Option<Vec<u8>>> {
+    let (_, meta) = crate::checkpoint::open_regular(path)?;
+    if meta.len() > config::MAX_TEXT_BYTES as u64 {
+        return Ok(None);
+    }
+    crate::checkpoint::read_capped(path, config::MAX_TEXT_BYTES as u64, "a configuration file")
+        .map(Some)
+}
