@@ -132,7 +132,7 @@ pub struct ScanArgs {
 }
 
 #[derive(Debug, Args)]
-#[command(group(clap::ArgGroup::new("target").required(true).args(["grid", "image"])))]
+#[command(group(clap::ArgGroup::new("target").required(true).args(["grid", "image", "scale"])))]
 pub struct ResizeArgs {
     /// The checkpoint to read: a .safetensors, .npz or PyTorch (.pth, .pt, .bin) file, or a
     /// sharded set (its directory or index .json). It is never changed.
@@ -146,6 +146,18 @@ pub struct ResizeArgs {
     /// Target input image size in pixels: HxW, or N for NxN. The grid is image / patch size.
     #[arg(long, value_name = "HxW", value_parser = parse_grid)]
     pub image: Option<(usize, usize)>,
+    /// Scale factors instead of a size: S or SYxSX, each a decimal or a fraction A/B.
+    #[arg(
+        long,
+        value_name = "S",
+        value_parser = parse_scale,
+        long_help = "Scale factors instead of a target size: S for both axes or SYxSX, each a decimal (1.5) or a \
+fraction A/B (24.1/14, so that a nudged size is written as it is meant). Each side becomes floor(side * S) and \
+absolute tables are sampled with S itself: x_src = (x + 0.5)/S - 0.5 (the ONNX Resize scales input; a framework \
+interpolate given scale_factor), not with the ratio of the sizes. align-corners ignores S, as in the standard. \
+Other kinds take the sizes the scale gives."
+    )]
+    pub scale: Option<(f64, f64)>,
     /// Target input frames of a video model: the time axis is frames / tubelet size (the
     /// 5-D patch kernel's); --grid TxHxW gives it directly instead.
     #[arg(long, value_name = "T", value_parser = clap::value_parser!(u32).range(1..))]
@@ -326,6 +338,29 @@ pub fn parse_grid_frames(s: &str) -> std::result::Result<GridArg, String> {
     parse_grid(s).map(|(h, w)| GridArg { frames: None, h, w })
 }
 
+/// `S` or `SYxSX`, each a positive decimal or a fraction `A/B` of positive decimals.
+pub fn parse_scale(s: &str) -> std::result::Result<(f64, f64), String> {
+    let factor = |t: &str| -> std::result::Result<f64, String> {
+        let number = |u: &str| {
+            u.trim()
+                .parse::<f64>()
+                .ok()
+                .filter(|v| v.is_finite() && *v > 0.0)
+        };
+        let value = match t.split_once('/') {
+            Some((a, b)) => number(a).zip(number(b)).map(|(a, b)| a / b),
+            None => number(t),
+        };
+        value.filter(|v| v.is_finite() && *v > 0.0).ok_or_else(|| {
+            format!("\"{s}\" is not S or SYxSX with positive decimals or fractions A/B (for example 1.5, 24.1/14 or 2x1.5)")
+        })
+    };
+    match s.split_once(['x', 'X', '×']) {
+        Some((a, b)) => Ok((factor(a)?, factor(b)?)),
+        None => factor(s).map(|v| (v, v)),
+    }
+}
+
 /// A byte count with an optional K, M, G or T suffix (powers of 1024; `B`, `iB` accepted).
 pub fn parse_size(s: &str) -> std::result::Result<u64, String> {
     let t = s.trim();
@@ -436,6 +471,10 @@ fn resize_cmd(args: ResizeArgs) -> Result<i32> {
     let target = match (args.grid, args.image) {
         (Some(g), None) => Target::Grid(g.h, g.w),
         (None, Some((h, w))) => Target::Image(h, w),
+        (None, None) if args.scale.is_some() => {
+            let (sy, sx) = args.scale.expect("checked");
+            Target::Scale(sy, sx)
+        }
         _ => {
             return Err(Error::Usage(
                 "give exactly one of --grid and --image".into(),

@@ -2,18 +2,71 @@
 //! each kind plans its own tensors and the companions that follow them — checked before any
 //! value is computed or any byte is written.
 
+use std::path::Path;
+
 use crate::checkpoint::TensorSource;
 use crate::error::{Error, Result};
 use crate::kinds::{absolute, Change, Discovery, Table};
 use crate::resample::Options;
 
 /// The grid to resample to.
-#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+#[derive(Debug, Clone, Copy, PartialEq)]
 pub enum Target {
     /// A patch grid (rows, columns).
     Grid(usize, usize),
     /// An input image size in pixels (height, width); the grid is image / patch per table.
     Image(usize, usize),
+    /// Scale factors (rows, columns): each side becomes floor(side·s), and absolute tables are
+    /// sampled with s itself (x_src = (x + 0.5)/s − 0.5, as the ONNX `scales` input and a
+    /// framework call given a scale factor do), not with the ratio of the sizes.
+    Scale(f64, f64),
+}
+
+impl Target {
+    /// The scale factors of a `Scale` target.
+    pub fn scale(&self) -> Option<[f64; 2]> {
+        match *self {
+            Target::Scale(sy, sx) => Some([sy, sx]),
+            _ => None,
+        }
+    }
+
+    /// The grid this target gives tensor `name`, now on grid `old` (rows, columns) of
+    /// `patch`-pixel patches. Errors: an unknown patch size for an image target, an image the
+    /// patch does not divide, a scale that leaves no row or column.
+    pub fn grid_for(
+        &self,
+        path: &Path,
+        name: &str,
+        old: [usize; 2],
+        patch: Option<usize>,
+    ) -> Result<[usize; 2]> {
+        match *self {
+            Target::Grid(h, w) => Ok([h, w]),
+            Target::Image(h, w) => {
+                let p = patch.ok_or_else(|| {
+                    Error::table(
+                        path,
+                        format!("\"{name}\": the patch size is unknown (no patch-projection kernel found); pass --patch P or give --grid"),
+                    )
+                })?;
+                if h % p != 0 || w % p != 0 {
+                    return Err(Error::Usage(format!(
+                        "image {h}x{w} is not a whole number of {p}-pixel patches (\"{name}\"); choose a multiple of {p}"
+                    )));
+                }
+                Ok([h / p, w / p])
+            }
+            Target::Scale(sy, sx) => {
+                let side = |n: usize, s: f64| {
+                    crate::resample::try_scaled_side(n, s).map_err(|e| {
+                        Error::Usage(format!("\"{name}\": scale {s} of side {n}: {e}"))
+                    })
+                };
+                Ok([side(old[0], sy)?, side(old[1], sx)?])
+            }
+        }
+    }
 }
 
 /// Default guard on the memory one output table may need (4 GiB).

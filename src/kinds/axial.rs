@@ -11,7 +11,7 @@ use super::{refuse_nonfinite, serialize_dtype, Change, ChangeReport, Computed, D
 use super::{Encoding, Hints, Images, Kind};
 use crate::checkpoint::{Dtype, TensorSource};
 use crate::error::{Error, Result};
-use crate::plan::{Request, Target};
+use crate::plan::Request;
 use crate::resample::{self, Antialias, Coords, Edges, Kernel, Options};
 use crate::values;
 
@@ -190,25 +190,15 @@ pub fn plan(
     let axis = table.axis.index();
     let to = match table.follows {
         Span::Window => request.window.map_or(table.span, |(h, w)| [h, w][axis]),
-        Span::Grid => match request.target {
-            Target::Grid(h, w) => [h, w][axis],
-            Target::Image(h, w) => {
-                let p = table.patch.ok_or_else(|| {
-                    Error::table(
-                        path,
-                        format!("\"{}\": the patch size is unknown (no patch-projection kernel found); pass --patch P or give --grid", table.name),
-                    )
-                })?;
-                let side = [h, w][axis];
-                if side % p != 0 {
-                    return Err(Error::Usage(format!(
-                        "image {h}x{w} is not a whole number of {p}-pixel patches (\"{}\"); choose a multiple of {p}",
-                        table.name
-                    )));
-                }
-                side / p
-            }
-        },
+        Span::Grid => {
+            let grid = request.target.grid_for(
+                path,
+                &table.name,
+                [table.span, table.span],
+                table.patch,
+            )?;
+            grid[axis]
+        }
     };
     if to == table.span {
         return Ok(None);
@@ -285,6 +275,7 @@ impl Change for AxialChange {
             antialias: false,
             cubic_a: None,
             method: "resampled",
+            scale: None,
             companions: Vec::new(),
             fidelity: None,
         }

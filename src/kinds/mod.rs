@@ -286,6 +286,9 @@ pub struct ChangeReport {
     pub cubic_a: Option<f64>,
     /// `resampled`, or `rebuilt` for a tensor built anew by its construction.
     pub method: &'static str,
+    /// The scale factors (rows, columns) an absolute table was sampled with (`--scale`).
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub scale: Option<[f64; 2]>,
     /// Buffers rewritten with it (position ids, index buffers, masks).
     pub companions: Vec<String>,
     /// Similarity-map fidelity of the changed tensor (1 is perfect).

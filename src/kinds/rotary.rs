@@ -12,7 +12,7 @@ use super::{serialize_dtype, value_tolerance, Change, ChangeReport, Computed, Di
 use super::{Encoding, Hints, Images, Kind, Skipped};
 use crate::checkpoint::{Dtype, TensorEntry, TensorSource};
 use crate::error::{Error, Result};
-use crate::plan::{Request, Target};
+use crate::plan::Request;
 use crate::rebuild::rotary::{self, RotaryParams, Which};
 use crate::values;
 
@@ -182,21 +182,7 @@ pub fn plan(
     request: &Request,
 ) -> Result<Option<RotaryChange>> {
     let path = ckpt.source_path();
-    let (h, w) = match request.target {
-        Target::Grid(h, w) => (h, w),
-        Target::Image(h, w) => {
-            let p = b.patch.ok_or_else(|| {
-                Error::table(path, format!("\"{}\": the patch size is unknown (no patch-projection kernel found); pass --patch P or give --grid", b.name))
-            })?;
-            if h % p != 0 || w % p != 0 {
-                return Err(Error::Usage(format!(
-                    "image {h}x{w} is not a whole number of {p}-pixel patches (\"{}\"); choose a multiple of {p}",
-                    b.name
-                )));
-            }
-            (h / p, w / p)
-        }
-    };
+    let [h, w] = request.target.grid_for(path, &b.name, b.grid, b.patch)?;
     if h != w {
         return Err(Error::Usage(format!(
             "\"{}\": rotary buffers of the 2-D construction hold a square grid; {h}x{w} is not square",
@@ -305,6 +291,7 @@ impl Change for RotaryChange {
             antialias: false,
             cubic_a: None,
             method: "rebuilt",
+            scale: None,
             companions: b.companions.clone(),
             fidelity: None,
         }

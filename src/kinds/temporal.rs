@@ -179,6 +179,7 @@ impl Change for TemporalChange {
             antialias: self.antialias_applied,
             cubic_a: (o.kernel == resample::Kernel::Bicubic).then_some(o.cubic_a),
             method: "resampled",
+            scale: None,
             companions: Vec::new(),
             fidelity: None,
         }

@@ -10,7 +10,7 @@ use super::{Layout, Table};
 use crate::checkpoint::{Dtype, TensorEntry, TensorSource};
 use crate::error::{Error, Result};
 use crate::kinds::{Change, ChangeReport, Computed, Images, Kind};
-use crate::plan::{Request, Target};
+use crate::plan::Request;
 use crate::resample::{self, Options};
 use crate::values;
 
@@ -24,6 +24,9 @@ pub struct TableChange {
     /// For a video table: its frames before and after.
     #[serde(skip_serializing_if = "Option::is_none")]
     pub frames: Option<(usize, usize)>,
+    /// Scale factors (rows, columns) the grid is sampled with, for `--scale`.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub scale: Option<[f64; 2]>,
     /// The new shape, in the table's own layout.
     pub new_shape: Vec<usize>,
     pub options: Options,
@@ -54,7 +57,9 @@ pub fn plan(
     request: &Request,
 ) -> Result<Option<TableChange>> {
     let path = ckpt.source_path();
-    let to = target_grid(path, table, request.target)?;
+    let to = request
+        .target
+        .grid_for(path, &table.name, table.grid, table.patch)?;
     let from = table.grid;
     let frames = match (table.frames, request.frames) {
         (Some(t), Some(f)) => Some((t, f.positions(&table.name, table.tubelet.unwrap_or(1))?)),
@@ -94,13 +99,23 @@ pub fn plan(
         ));
     }
     let rebuild = request.rebuild_sincos && table.kind == Kind::Sincos;
+    let scale = request.target.scale();
+    if scale.is_some() && t_from != t_to {
+        return Err(Error::Usage(format!(
+            "{}: --scale samples the image axes; give the frames of a video grid with --grid TxHxW instead of changing them beside --scale",
+            table.name
+        )));
+    }
     let o = &request.options;
+    // With a scale, an axis shrinks when its factor is below 1 (not when its size drops).
+    let shrinks = |axis: usize| match scale {
+        Some(s) => o.antialias_applies_when(s[axis] < 1.0),
+        None => o.antialias_applies(from[axis], to[axis]),
+    };
     let antialias_applied = !rebuild
         && o.kernel != resample::Kernel::Nearest
         && o.kernel != resample::Kernel::Area
-        && (o.antialias_applies(from[0], to[0])
-            || o.antialias_applies(from[1], to[1])
-            || o.antialias_applies(t_from, t_to));
+        && (shrinks(0) || shrinks(1) || o.antialias_applies(t_from, t_to));
     let ids = table
         .companions
         .iter()
@@ -111,6 +126,7 @@ pub fn plan(
         from,
         to,
         frames,
+        scale,
         new_shape,
         options: request.options,
         antialias_applied,
@@ -155,30 +171,6 @@ fn ids_change(ckpt: &dyn TensorSource, name: &str, rows: usize) -> Result<IdsCha
         new_shape,
         rows,
     })
-}
-
-fn target_grid(path: &std::path::Path, table: &Table, target: Target) -> Result<[usize; 2]> {
-    match target {
-        Target::Grid(h, w) => Ok([h, w]),
-        Target::Image(h, w) => {
-            let p = table.patch.ok_or_else(|| {
-                Error::table(
-                    path,
-                    format!(
-                        "\"{}\": the patch size is unknown (no patch-projection kernel found); pass --patch P or give --grid",
-                        table.name
-                    ),
-                )
-            })?;
-            if h % p != 0 || w % p != 0 {
-                return Err(Error::Usage(format!(
-                    "image {h}x{w} is not a whole number of {p}-pixel patches (\"{}\"); choose a multiple of {p}",
-                    table.name
-                )));
-            }
-            Ok([h / p, w / p])
-        }
-    }
 }
 
 impl Change for TableChange {
@@ -243,6 +235,7 @@ impl Change for TableChange {
             antialias: self.antialias_applied,
             cubic_a: (o.kernel == resample::Kernel::Bicubic && !self.rebuild).then_some(o.cubic_a),
             method: self.method(),
+            scale: self.scale,
             companions: self.table.companions.clone(),
             fidelity: None,
         }
@@ -263,6 +256,7 @@ impl Change for TableChange {
             "antialias": o.antialias,
             "antialias_applied": self.antialias_applied,
             "cubic_a": o.cubic_a,
+            "scale": self.scale,
             "companions": self.table.companions,
         })
     }
@@ -354,27 +348,27 @@ fn new_grid<T: resample::Sample>(
     v: &[T],
     change: &TableChange,
 ) -> std::result::Result<Vec<T>, resample::ResampleError> {
-    let (from, to) = (
-        (change.from[0], change.from[1]),
-        (change.to[0], change.to[1]),
-    );
     let t = &change.table;
-    if let Some((t_from, t_to)) = change.frames {
-        return resample::resample_grid(
-            v,
-            &[t_from, from.0, from.1],
-            t.dim,
-            &[t_to, to.0, to.1],
-            &change.options,
-        );
-    }
-    match (change.rebuild, t.sincos_first_axis) {
-        (true, Some(first)) => Ok(crate::sincos::build(to.0, to.1, t.dim, first)
+    let ([h, w], [h2, w2]) = (change.from, change.to);
+    if let (true, Some(first), None) = (change.rebuild, t.sincos_first_axis, change.frames) {
+        return Ok(crate::sincos::build(h2, w2, t.dim, first)
             .expect("a recognised sine-cosine table has a width divisible by 4")
             .into_iter()
             .map(T::from_f64)
-            .collect()),
-        _ => resample::resample(v, from, t.dim, to, &change.options),
+            .collect());
+    }
+    let (t_from, t_to) = change.frames.unwrap_or((1, 1));
+    let video = change.frames.is_some();
+    // A video grid has the time axis in front; an image grid has none.
+    let from: Vec<usize> = [t_from, h, w][usize::from(!video)..].to_vec();
+    let to: Vec<usize> = [t_to, h2, w2][usize::from(!video)..].to_vec();
+    match change.scale {
+        Some([sy, sx]) => {
+            let scales = [1.0, sy, sx][usize::from(!video)..].to_vec();
+            resample::resample_grid_scaled(v, &from, t.dim, &scales, &change.options)
+                .map(|(values, _)| values)
+        }
+        None => resample::resample_grid(v, &from, t.dim, &to, &change.options),
     }
 }
 

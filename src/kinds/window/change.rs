@@ -8,7 +8,7 @@ use super::{mask_layout, Follows, WindowTable};
 use crate::checkpoint::{Dtype, TensorSource};
 use crate::error::{Error, Result};
 use crate::kinds::{refuse_nonfinite, Change, ChangeReport, Computed, Images};
-use crate::plan::{Relative, Request, Target};
+use crate::plan::{Relative, Request};
 use crate::rebuild::relative_index::{self, IndexLayout};
 use crate::rebuild::shift_mask::{self, MaskLayout};
 use crate::resample::{self, geometric, Options};
@@ -124,33 +124,7 @@ pub fn plan(
 fn target_window(path: &std::path::Path, t: &WindowTable, request: &Request) -> Result<[usize; 2]> {
     match t.follows {
         Follows::Window => Ok(request.window.map_or(t.window, |(h, w)| [h, w])),
-        Follows::Grid => target_grid(path, &t.name, t.patch, request.target),
-    }
-}
-
-/// The patch grid a request asks for, the patch size dividing an image size.
-fn target_grid(
-    path: &std::path::Path,
-    name: &str,
-    patch: Option<usize>,
-    target: Target,
-) -> Result<[usize; 2]> {
-    match target {
-        Target::Grid(h, w) => Ok([h, w]),
-        Target::Image(h, w) => {
-            let p = patch.ok_or_else(|| {
-                Error::table(
-                    path,
-                    format!("\"{name}\": the patch size is unknown (no patch-projection kernel found); pass --patch P or give --grid"),
-                )
-            })?;
-            if h % p != 0 || w % p != 0 {
-                return Err(Error::Usage(format!(
-                    "image {h}x{w} is not a whole number of {p}-pixel patches (\"{name}\"); choose a multiple of {p}"
-                )));
-            }
-            Ok([h / p, w / p])
-        }
+        Follows::Grid => request.target.grid_for(path, &t.name, t.window, t.patch),
     }
 }
 
@@ -163,7 +137,7 @@ fn mask_change(
     request: &Request,
 ) -> Result<MaskChange> {
     let grid = t.model_grid.unwrap_or(m.map);
-    let new_grid = target_grid(path, &m.name, t.patch, request.target)?;
+    let new_grid = request.target.grid_for(path, &m.name, grid, t.patch)?;
     let mut map = [0; 2];
     for axis in 0..2 {
         let (g, g2, side) = (grid[axis], new_grid[axis], m.map[axis]);
@@ -390,6 +364,7 @@ impl Change for WindowChange {
             antialias: self.antialias_applied,
             cubic_a: (engine && o.kernel == resample::Kernel::Bicubic).then_some(o.cubic_a),
             method: self.method(),
+            scale: None,
             companions: self
                 .rewrites()
                 .into_iter()
