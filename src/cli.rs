@@ -115,6 +115,7 @@ impl DiscoveryArgs {
             patch: self.patch.map(|p| p as usize),
             tensors: self.tensors.clone(),
             channels: self.channels,
+            new_patch: None,
         }
     }
 }
@@ -188,6 +189,19 @@ normalises its weights (ONNX antialias = 1); off never; auto is on for an axis t
     /// The bicubic parameter a (ONNX cubic_coeff_a).
     #[arg(long, default_value_t = DEFAULT_CUBIC_A, allow_negative_numbers = true, value_name = "A")]
     pub cubic_a: f64,
+    /// A new patch size P or PxQ: patch-projection kernels resized so every patch projects as
+    /// before; the grid then follows --image / P.
+    #[arg(
+        long,
+        value_name = "P",
+        value_parser = parse_grid,
+        long_help = "A new patch size, P or PxQ pixels. Every patch-projection kernel ([D, C, p, p], or channels \
+last [p, p, C, D]) is resized by the pseudo-inverse method: with B the matrix that resizes a p x p patch to \
+P x Q (bilinear, half-pixel), the new kernel is pinv(B^T) w, so that <x, w> = <Bx, w'> for every patch x when \
+enlarging (in the least-squares sense when shrinking); computed in f64, bias unchanged. The grid follows \
+--image / P, and the position tables are resampled to it in the same run."
+    )]
+    pub new_patch: Option<(usize, usize)>,
     /// Leave the configuration files of a directory output as they are.
     #[arg(
         long,
@@ -492,7 +506,10 @@ fn resize_cmd(args: ResizeArgs) -> Result<i32> {
     let job = ResizeJob {
         input: args.checkpoint.clone(),
         output: args.output.clone(),
-        hints: args.discovery.hints(),
+        hints: Hints {
+            new_patch: args.new_patch,
+            ..args.discovery.hints()
+        },
         request: Request {
             target,
             tensors: args.discovery.tensors.clone(),
@@ -509,6 +526,7 @@ fn resize_cmd(args: ResizeArgs) -> Result<i32> {
             window: args.window,
             frames,
             relative: args.relative,
+            new_patch: args.new_patch,
         },
         dry_run: args.dry_run,
         force: args.force,

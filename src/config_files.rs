@@ -39,16 +39,23 @@ pub fn model_sizes(plan: &Plan) -> Option<([usize; 2], [usize; 2], usize)> {
 
 /// Update the configuration files among `files` for `plan` (none with `keep`: only the
 /// warnings of recorded sizes that disagree with the checkpoint).
-pub fn updates(files: &[PathBuf], plan: &Plan, keep: bool) -> Result<Updates> {
+pub fn updates(
+    files: &[PathBuf],
+    plan: &Plan,
+    new_patch: Option<(usize, usize)>,
+    keep: bool,
+) -> Result<Updates> {
     let mut out = Updates::default();
     let Some((from, to, patch)) = model_sizes(plan) else {
         return Ok(out);
     };
+    // A new patch size changes the recorded patch and, with the grid, the input size.
+    let (new_p, new_q) = new_patch.unwrap_or((patch, patch));
     let request = Request {
         old_image: (from[0] * patch, from[1] * patch),
-        new_image: (to[0] * patch, to[1] * patch),
+        new_image: (to[0] * new_p, to[1] * new_q),
         old_patch: patch,
-        new_patch: patch,
+        new_patch: new_p,
     };
     for path in files
         .iter()

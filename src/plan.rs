@@ -39,23 +39,24 @@ impl Target {
         path: &Path,
         name: &str,
         old: [usize; 2],
-        patch: Option<usize>,
+        patch: Option<[usize; 2]>,
     ) -> Result<[usize; 2]> {
         match *self {
             Target::Grid(h, w) => Ok([h, w]),
             Target::Image(h, w) => {
-                let p = patch.ok_or_else(|| {
+                let [p, q] = patch.ok_or_else(|| {
                     Error::table(
                         path,
                         format!("\"{name}\": the patch size is unknown (no patch-projection kernel found); pass --patch P or give --grid"),
                     )
                 })?;
-                if h % p != 0 || w % p != 0 {
+                if h % p != 0 || w % q != 0 {
+                    let sides = if p == q { format!("{p}") } else { format!("{p}x{q}") };
                     return Err(Error::Usage(format!(
-                        "image {h}x{w} is not a whole number of {p}-pixel patches (\"{name}\"); choose a multiple of {p}"
+                        "image {h}x{w} is not a whole number of {sides}-pixel patches (\"{name}\"); choose a multiple of {sides}"
                     )));
                 }
-                Ok([h / p, w / p])
+                Ok([h / p, w / q])
             }
             Target::Scale(sy, sx) => {
                 let side = |n: usize, s: f64| {
@@ -92,6 +93,27 @@ pub struct Request {
     pub frames: Option<Frames>,
     /// How window-relative tables are resampled.
     pub relative: Relative,
+    /// A new patch size (rows, columns): patch-projection kernels are resized to it and an
+    /// image target is divided by it.
+    pub new_patch: Option<(usize, usize)>,
+}
+
+impl Request {
+    /// The grid the target gives tensor `name`, now on grid `old` of `patch`-pixel patches
+    /// (the new patch size when one is asked for).
+    pub fn grid_for(
+        &self,
+        path: &Path,
+        name: &str,
+        old: [usize; 2],
+        patch: Option<usize>,
+    ) -> Result<[usize; 2]> {
+        let sides = self
+            .new_patch
+            .map(|(p, q)| [p, q])
+            .or(patch.map(|p| [p, p]));
+        self.target.grid_for(path, name, old, sides)
+    }
 }
 
 /// The new time axis of a video grid.

@@ -232,6 +232,13 @@ fn encoding_lines(e: &Encoding) -> Vec<String> {
                 }
             ),
         ],
+        Encoding::Patch(k) => vec![
+            format!(
+                "{} {:?}  patch_kernel: {}x{} patches, {} input channels, dim {}",
+                k.dtype, k.shape, k.patch[0], k.patch[1], k.channels, k.dim
+            ),
+            "resized for --new-patch by the pseudo-inverse method (bias unchanged)".into(),
+        ],
         Encoding::Temporal(t) => vec![
             format!(
                 "{} {:?}  temporal: {} frames, dim {}",

@@ -142,10 +142,12 @@ pub fn run(job: &ResizeJob) -> Result<ResizeReport> {
                 report_table.fidelity = fidelity;
                 report.warnings.extend(notes);
             }
-            None => report.warnings.push(format!(
+            // A video table: the maps are drawn on 2-D grids (a patch kernel has no positions).
+            None if change.absolute().is_some() => report.warnings.push(format!(
                 "\"{}\": fidelity not scored: the similarity maps are drawn on 2-D grids",
                 change.name()
             )),
+            None => {}
         }
     }
     let mut output = output_of(&source, &plan, &selection, &new_data);
@@ -250,7 +252,7 @@ fn update_configs(
             return Ok(Vec::new());
         }
     };
-    let updates = config_files::updates(&files, plan, job.keep_config)?;
+    let updates = config_files::updates(&files, plan, job.request.new_patch, job.keep_config)?;
     report.warnings.extend(updates.warnings);
     report.config_changes = updates.changes;
     Ok(updates.edits)

@@ -147,3 +147,63 @@ fn scale_text_is_checked() {
     assert!(stderr(&o).contains("pos_embed"), "{}", stderr(&o));
     assert_eq!(entries(dir.path()), ["in.safetensors"]);
 }
+
+/// `resize --new-patch` end to end: a patch kernel [D, C, 14, 14] resized to 16x16 equals
+/// numpy's pseudo-inverse result (fixtures/golden/patch_cases.safetensors, written by
+/// fixtures/golden/make_patch_golden.py: pinv(B^T) w with B from torch's bilinear interpolate
+/// of each basis image), in both kernel layouts; the grid follows --image / P.
+#[test]
+fn new_patch_kernels_match_the_pseudo_inverse_of_numpy() {
+    let path = std::path::Path::new(env!("CARGO_MANIFEST_DIR"))
+        .join("fixtures/golden/patch_cases.safetensors");
+    let golden = Checkpoint::open(&path).unwrap();
+    let w = values(&golden, "bilinear_14_16.w");
+    let expected = values(&golden, "bilinear_14_16.w_new");
+    let count = w.len() / (14 * 14);
+    for channels_last in [false, true] {
+        let dir = tempfile::tempdir().unwrap();
+        // One input channel, `count` output channels.
+        let (shape, stored): (Vec<usize>, Vec<f64>) = if channels_last {
+            let mut t = vec![0.0; w.len()];
+            for d in 0..count {
+                for i in 0..14 * 14 {
+                    t[i * count + d] = w[d * 196 + i];
+                }
+            }
+            (vec![14, 14, 1, count], t)
+        } else {
+            (vec![count, 1, 14, 14], w.clone())
+        };
+        let file = write(
+            dir.path(),
+            "in.safetensors",
+            &[
+                floats("patch_embed.proj.weight", Dtype::F64, &shape, &stored),
+                floats("pos_embed", Dtype::F64, &[1, 17, count], &noise(17 * count, 3, 0.1)),
+            ],
+            None,
+        );
+        let out = dir.path().join("out.safetensors");
+        // 4x4 patches of 14 px = 56 px; 56 px of 16-px patches would not divide: use 64.
+        let o = posgrid(&["resize", s(&file), "-o", s(&out), "--image", "64", "--new-patch", "16", "--json"]);
+        assert_eq!(code(&o), 0, "{}", stderr(&o));
+        let report: serde_json::Value = serde_json::from_slice(&o.stdout).unwrap();
+        let tables = report["tables"].as_array().unwrap();
+        assert!(tables.iter().any(|t| t["kind"] == "patch_kernel" && t["method"] == "pseudo-inverse"));
+        let got_ckpt = Checkpoint::open(&out).unwrap();
+        let mut got = values(&got_ckpt, "patch_embed.proj.weight");
+        if channels_last {
+            let t = got.clone();
+            for d in 0..count {
+                for i in 0..256 {
+                    got[d * 256 + i] = t[i * count + d];
+                }
+            }
+        }
+        let scale = expected.iter().fold(0f64, |m, v| m.max(v.abs()));
+        let worst = got.iter().zip(&expected).fold(0f64, |m, (a, b)| m.max((a - b).abs()));
+        assert!(worst <= 1e-8 * scale, "channels last {channels_last}: {worst}");
+        // The grid follows --image / P: 64 / 16 = 4, from 4x4: the table is at its target.
+        assert_eq!(got_ckpt.find("pos_embed").unwrap().shape, vec![1, 17, count]);
+    }
+}

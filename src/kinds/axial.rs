@@ -191,7 +191,7 @@ pub fn plan(
     let to = match table.follows {
         Span::Window => request.window.map_or(table.span, |(h, w)| [h, w][axis]),
         Span::Grid => {
-            let grid = request.target.grid_for(
+            let grid = request.grid_for(
                 path,
                 &table.name,
                 [table.span, table.span],

@@ -7,6 +7,7 @@
 pub mod absolute;
 pub mod axial;
 pub mod names;
+pub mod patch;
 pub mod rotary;
 pub mod temporal;
 pub mod window;
@@ -30,6 +31,8 @@ pub struct Hints {
     pub source_grid: Option<(usize, usize)>,
     /// The source frames T of a video grid (`--source-grid TxHxW`).
     pub source_frames: Option<usize>,
+    /// A new patch size is asked for: patch-projection kernels are grid-dependent too.
+    pub new_patch: Option<(usize, usize)>,
     /// The number of leading class slots.
     pub slots: Option<usize>,
     /// The patch size in pixels.
@@ -79,6 +82,8 @@ pub enum Kind {
     Rotary,
     /// A temporal table of a video model `[1, T, D]`.
     Temporal,
+    /// A patch-projection kernel, resized for a new patch size (`--new-patch`).
+    PatchKernel,
 }
 
 /// A grid-dependent tensor of a kind other than an absolute table.
@@ -89,6 +94,7 @@ pub enum Encoding {
     Axial(axial::AxialTable),
     Rotary(rotary::RotaryBuffers),
     Temporal(temporal::TemporalTable),
+    Patch(patch::PatchKernel),
 }
 
 impl Encoding {
@@ -98,6 +104,7 @@ impl Encoding {
             Encoding::Axial(t) => &t.name,
             Encoding::Rotary(b) => &b.name,
             Encoding::Temporal(t) => &t.name,
+            Encoding::Patch(k) => &k.name,
         }
     }
 
@@ -107,6 +114,7 @@ impl Encoding {
             Encoding::Axial(t) => t.kind,
             Encoding::Rotary(b) => b.kind,
             Encoding::Temporal(t) => t.kind,
+            Encoding::Patch(k) => k.kind,
         }
     }
 
@@ -121,6 +129,7 @@ impl Encoding {
             Encoding::Axial(t) => axial::plan(ckpt, t, request)?.map(|c| Box::new(c) as _),
             Encoding::Rotary(b) => rotary::plan(ckpt, b, request)?.map(|c| Box::new(c) as _),
             Encoding::Temporal(t) => temporal::plan(ckpt, t, request)?.map(|c| Box::new(c) as _),
+            Encoding::Patch(k) => patch::plan(ckpt, k, request)?.map(|c| Box::new(c) as _),
         })
     }
 }
@@ -225,6 +234,7 @@ pub fn discover(source: &dyn TensorSource, hints: &Hints) -> Result<Discovery> {
     axial::find(source, hints, &mut found)?;
     rotary::find(source, hints, &mut found)?;
     temporal::find(source, &mut found)?;
+    patch::find(source, hints, &mut found)?;
     for a in &found.ambiguous {
         let options: Vec<String> = a
             .candidates

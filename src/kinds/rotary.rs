@@ -182,7 +182,7 @@ pub fn plan(
     request: &Request,
 ) -> Result<Option<RotaryChange>> {
     let path = ckpt.source_path();
-    let [h, w] = request.target.grid_for(path, &b.name, b.grid, b.patch)?;
+    let [h, w] = request.grid_for(path, &b.name, b.grid, b.patch)?;
     if h != w {
         return Err(Error::Usage(format!(
             "\"{}\": rotary buffers of the 2-D construction hold a square grid; {h}x{w} is not square",

@@ -58,7 +58,6 @@ pub fn plan(
 ) -> Result<Option<TableChange>> {
     let path = ckpt.source_path();
     let to = request
-        .target
         .grid_for(path, &table.name, table.grid, table.patch)?;
     let from = table.grid;
     let frames = match (table.frames, request.frames) {

@@ -124,7 +124,7 @@ pub fn plan(
 fn target_window(path: &std::path::Path, t: &WindowTable, request: &Request) -> Result<[usize; 2]> {
     match t.follows {
         Follows::Window => Ok(request.window.map_or(t.window, |(h, w)| [h, w])),
-        Follows::Grid => request.target.grid_for(path, &t.name, t.window, t.patch),
+        Follows::Grid => request.grid_for(path, &t.name, t.window, t.patch),
     }
 }
 
@@ -137,7 +137,7 @@ fn mask_change(
     request: &Request,
 ) -> Result<MaskChange> {
     let grid = t.model_grid.unwrap_or(m.map);
-    let new_grid = request.target.grid_for(path, &m.name, grid, t.patch)?;
+    let new_grid = request.grid_for(path, &m.name, grid, t.patch)?;
     let mut map = [0; 2];
     for axis in 0..2 {
         let (g, g2, side) = (grid[axis], new_grid[axis], m.map[axis]);
