@@ -1,6 +1,8 @@
 //! Interop with the real clients: files written by the reference safetensors library and numpy
 //! (F32, F16, BF16, with metadata) are read by posgrid, and posgrid's outputs load there with
-//! every untouched tensor equal and the table of the expected shape.
+//! every untouched tensor equal and the table of the expected shape. A model directory's output
+//! (weights, configuration files, the rest) reads there too: Python's own `json` module reads
+//! the configurations at the new size, the reference library the weights.
 //!
 //! The Python side runs in a venv with tests/interop/requirements.txt: `$POSGRID_PYTHON` if
 //! set (CI sets it), otherwise one made under target/. If it cannot be made, the test fails.
@@ -224,4 +226,34 @@ fn sharded_sets_from_the_reference_library_round_trip() {
         2,
         "no temporary directory left: {leftovers:?}"
     );
+}
+
+#[test]
+fn model_directories_read_back_with_json_and_the_reference_library() {
+    let py = python();
+    let script = Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/interop/clients.py");
+    let dir = tempfile::tempdir().unwrap();
+    let input = dir.path().join("model");
+    std::fs::create_dir(&input).unwrap();
+    run(Command::new(&py)
+        .arg(&script)
+        .arg("write-model-dir")
+        .arg(&input));
+    let output = dir.path().join("model-36");
+    let json = run(Command::new(env!("CARGO_BIN_EXE_posgrid"))
+        .arg("resize")
+        .arg(&input)
+        .arg("-o")
+        .arg(&output)
+        .args(["--image", "36", "--json"]));
+    let v: serde_json::Value = serde_json::from_str(&json).unwrap();
+    // config.json's image_size; the preprocessing crop and shortest edge (24 px, the old size).
+    assert_eq!(v["config_changes"].as_array().unwrap().len(), 3, "{v}");
+    let said = run(Command::new(&py)
+        .arg(&script)
+        .arg("check-model-dir")
+        .arg(&input)
+        .arg(&output)
+        .arg("9"));
+    assert!(said.starts_with("ok"), "{said}");
 }

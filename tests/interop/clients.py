@@ -8,9 +8,14 @@
     python clients.py check-npz IN OUT GRID
     python clients.py write-sharded DIR   a two-shard set (shards by the reference library)
     python clients.py check-sharded IN OUT GRID
+    python clients.py write-model-dir DIR a model directory: weights by the reference library,
+                                          config.json and preprocessor_config.json by json
+    python clients.py check-model-dir IN OUT GRID   json reads OUT's configurations at the new
+                                          size, the reference library reads the weights
 """
 
 import json
+import os
 import sys
 
 import numpy as np
@@ -175,7 +180,64 @@ def check_sharded(inp, out, grid):
             else:
                 assert np.array_equal(a[k], v) and a[k].dtype == v.dtype, k
     assert index["metadata"]["total_size"] == total, (index["metadata"], total)
-    assert open(f"{out}/config.json").read() == open(f"{inp}/config.json").read()
+    # The recorded input size follows the new grid; nothing else in the file changes.
+    config_in, config = json.load(open(f"{inp}/config.json")), json.load(open(f"{out}/config.json"))
+    assert config == dict(config_in, image_size=grid * 4), config
+    print(f"ok {out}")
+
+
+# A model directory as a widely used model library writes one (file and key names: common
+# practice, from memory): json.dump with indent=2 and sorted keys.
+MODEL_CONFIG = {
+    "architectures": ["ViTModel"],
+    "hidden_size": D,
+    "image_size": GRID * 4,
+    "layer_norm_eps": 1e-12,
+    "max_position_embeddings": GRID * 4,
+    "model_type": "vit",
+    "patch_size": 4,
+}
+PREPROCESSOR = {
+    "crop_size": {"height": GRID * 4, "width": GRID * 4},
+    "do_center_crop": True,
+    "do_resize": True,
+    "image_mean": [0.5, 0.5, 0.5],
+    "image_processor_type": "ViTImageProcessor",
+    "size": {"shortest_edge": GRID * 4},
+}
+SIDE_FILES = {".gitattributes": "*.safetensors filter=lfs diff=lfs merge=lfs -text\n", "README.md": "# model\n"}
+
+
+def write_model_dir(folder):
+    save_file(tensors(np.float32), f"{folder}/model.safetensors", metadata={"format": "pt"})
+    for name, value in [("config.json", MODEL_CONFIG), ("preprocessor_config.json", PREPROCESSOR)]:
+        with open(f"{folder}/{name}", "w") as f:
+            f.write(json.dumps(value, indent=2, sort_keys=True) + "\n")
+    for name, text in SIDE_FILES.items():
+        with open(f"{folder}/{name}", "w") as f:
+            f.write(text)
+
+
+def check_model_dir(inp, out, grid):
+    grid = int(grid)
+    assert sorted(os.listdir(out)) == sorted(os.listdir(inp)), (os.listdir(inp), os.listdir(out))
+    side = grid * 4
+    config = json.load(open(f"{out}/config.json"))
+    assert config == dict(MODEL_CONFIG, image_size=side), config
+    pre = json.load(open(f"{out}/preprocessor_config.json"))
+    want = dict(PREPROCESSOR, crop_size={"height": side, "width": side}, size={"shortest_edge": side})
+    assert pre == want, pre
+    for name in SIDE_FILES:
+        assert open(f"{out}/{name}", "rb").read() == open(f"{inp}/{name}", "rb").read(), name
+    a, b = load_file(f"{inp}/model.safetensors"), load_file(f"{out}/model.safetensors")
+    assert sorted(a) == sorted(b)
+    for k, v in b.items():
+        assert v.dtype == a[k].dtype, k
+        if k == "encoder.pos_embed":
+            assert v.shape == (1, 1 + grid * grid, D), v.shape
+            assert np.isfinite(v).all() and np.array_equal(v[0, 0], a[k][0, 0]), "class slot kept"
+        else:
+            assert np.array_equal(a[k], v), k
     print(f"ok {out}")
 
 
@@ -187,4 +249,6 @@ if __name__ == "__main__":
         "check-npz": check_npz,
         "write-sharded": write_sharded,
         "check-sharded": check_sharded,
+        "write-model-dir": write_model_dir,
+        "check-model-dir": check_model_dir,
     }[sys.argv[1]](*sys.argv[2:])
