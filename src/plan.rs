@@ -51,7 +51,11 @@ impl Target {
                     )
                 })?;
                 if h % p != 0 || w % q != 0 {
-                    let sides = if p == q { format!("{p}") } else { format!("{p}x{q}") };
+                    let sides = if p == q {
+                        format!("{p}")
+                    } else {
+                        format!("{p}x{q}")
+                    };
                     return Err(Error::Usage(format!(
                         "image {h}x{w} is not a whole number of {sides}-pixel patches (\"{name}\"); choose a multiple of {sides}"
                     )));

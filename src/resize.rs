@@ -239,8 +239,14 @@ fn update_configs(
         (None, None) => {
             let beside = match source.directory() {
                 Some(md) => md.json_files().cloned().collect(),
-                None if source.downcast::<ShardedSet>().is_some() => Vec::new(),
-                None => directory::configs_beside(&job.input),
+                None => match source.downcast::<ShardedSet>() {
+                    Some(set) => set
+                        .other_files()?
+                        .into_iter()
+                        .filter(|p| p.extension().is_some_and(|e| e == "json"))
+                        .collect(),
+                    None => directory::configs_beside(&job.input),
+                },
             };
             if !beside.is_empty() {
                 let names: Vec<String> = beside.iter().map(|p| p.display().to_string()).collect();

@@ -1079,8 +1079,6 @@ fn a_single_file_with_a_config_beside_it_warns() {
 /// A sharded set converted to one file leaves its config.json at the old size just as a model
 /// directory does.
 #[test]
-#[ignore = "posgrid gives no warning: resize SETDIR -o out.safetensors --image 384 with config.json \
-beside the shards reports warnings [] (resize::update_configs skips sets for file outputs)"]
 fn a_file_output_from_a_sharded_set_warns_that_the_configs_keep_the_old_size() {
     let root = tempfile::tempdir().unwrap();
     let dir = sharded_dir(root.path());

@@ -179,17 +179,34 @@ fn new_patch_kernels_match_the_pseudo_inverse_of_numpy() {
             "in.safetensors",
             &[
                 floats("patch_embed.proj.weight", Dtype::F64, &shape, &stored),
-                floats("pos_embed", Dtype::F64, &[1, 17, count], &noise(17 * count, 3, 0.1)),
+                floats(
+                    "pos_embed",
+                    Dtype::F64,
+                    &[1, 17, count],
+                    &noise(17 * count, 3, 0.1),
+                ),
             ],
             None,
         );
         let out = dir.path().join("out.safetensors");
         // 4x4 patches of 14 px = 56 px; 56 px of 16-px patches would not divide: use 64.
-        let o = posgrid(&["resize", s(&file), "-o", s(&out), "--image", "64", "--new-patch", "16", "--json"]);
+        let o = posgrid(&[
+            "resize",
+            s(&file),
+            "-o",
+            s(&out),
+            "--image",
+            "64",
+            "--new-patch",
+            "16",
+            "--json",
+        ]);
         assert_eq!(code(&o), 0, "{}", stderr(&o));
         let report: serde_json::Value = serde_json::from_slice(&o.stdout).unwrap();
         let tables = report["tables"].as_array().unwrap();
-        assert!(tables.iter().any(|t| t["kind"] == "patch_kernel" && t["method"] == "pseudo-inverse"));
+        assert!(tables
+            .iter()
+            .any(|t| t["kind"] == "patch_kernel" && t["method"] == "pseudo-inverse"));
         let got_ckpt = Checkpoint::open(&out).unwrap();
         let mut got = values(&got_ckpt, "patch_embed.proj.weight");
         if channels_last {
@@ -201,9 +218,18 @@ fn new_patch_kernels_match_the_pseudo_inverse_of_numpy() {
             }
         }
         let scale = expected.iter().fold(0f64, |m, v| m.max(v.abs()));
-        let worst = got.iter().zip(&expected).fold(0f64, |m, (a, b)| m.max((a - b).abs()));
-        assert!(worst <= 1e-8 * scale, "channels last {channels_last}: {worst}");
+        let worst = got
+            .iter()
+            .zip(&expected)
+            .fold(0f64, |m, (a, b)| m.max((a - b).abs()));
+        assert!(
+            worst <= 1e-8 * scale,
+            "channels last {channels_last}: {worst}"
+        );
         // The grid follows --image / P: 64 / 16 = 4, from 4x4: the table is at its target.
-        assert_eq!(got_ckpt.find("pos_embed").unwrap().shape, vec![1, 17, count]);
+        assert_eq!(
+            got_ckpt.find("pos_embed").unwrap().shape,
+            vec![1, 17, count]
+        );
     }
 }

@@ -191,12 +191,8 @@ pub fn plan(
     let to = match table.follows {
         Span::Window => request.window.map_or(table.span, |(h, w)| [h, w][axis]),
         Span::Grid => {
-            let grid = request.grid_for(
-                path,
-                &table.name,
-                [table.span, table.span],
-                table.patch,
-            )?;
+            let grid =
+                request.grid_for(path, &table.name, [table.span, table.span], table.patch)?;
             grid[axis]
         }
     };

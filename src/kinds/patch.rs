@@ -183,12 +183,15 @@ impl Change for PatchChange {
         }
         let what = format!("resizing \"{}\"", k.name);
         let oom = |e| values::out_of_memory(path, &what, e);
-        let v = values::decode_f64(entry.dtype, &raw).map_err(|e| values::value_error(path, &what, e))?;
+        let v = values::decode_f64(entry.dtype, &raw)
+            .map_err(|e| values::value_error(path, &what, e))?;
         let [p, q] = k.patch;
         let [p2, q2] = self.to;
         let first = match k.layout {
             KernelLayout::ChannelsFirst => v,
-            KernelLayout::ChannelsLast => reverse_axes(&v, [p, q, k.channels, k.dim]).map_err(oom)?,
+            KernelLayout::ChannelsLast => {
+                reverse_axes(&v, [p, q, k.channels, k.dim]).map_err(oom)?
+            }
         };
         let resized = patch_kernel::resize_kernels(
             &first,

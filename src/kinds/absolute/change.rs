@@ -57,8 +57,7 @@ pub fn plan(
     request: &Request,
 ) -> Result<Option<TableChange>> {
     let path = ckpt.source_path();
-    let to = request
-        .grid_for(path, &table.name, table.grid, table.patch)?;
+    let to = request.grid_for(path, &table.name, table.grid, table.patch)?;
     let from = table.grid;
     let frames = match (table.frames, request.frames) {
         (Some(t), Some(f)) => Some((t, f.positions(&table.name, table.tubelet.unwrap_or(1))?)),
