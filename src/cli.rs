@@ -116,6 +116,7 @@ impl DiscoveryArgs {
             tensors: self.tensors.clone(),
             channels: self.channels,
             new_patch: None,
+            recorded_grid: None,
         }
     }
 }
@@ -462,7 +463,11 @@ fn ckpt_path(ckpt: &Source) -> PathBuf {
 fn scan(args: ScanArgs) -> Result<i32> {
     let ckpt = Source::open(&args.checkpoint)?;
     check_named_tensors(&ckpt, &args.discovery.tensors)?;
-    let mut found = kinds::discover(&ckpt, &args.discovery.hints())?;
+    let hints = Hints {
+        recorded_grid: crate::config_files::grid_beside(&ckpt, &args.checkpoint),
+        ..args.discovery.hints()
+    };
+    let mut found = kinds::discover(&ckpt, &hints)?;
     found.warnings.extend(ckpt.notes());
     let report = ScanReport::new(&args.checkpoint, &ckpt, found);
     if args.json {

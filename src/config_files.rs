@@ -128,3 +128,40 @@ fn read_capped(path: &Path) -> Result<Option<Vec<u8>>> {
     crate::checkpoint::read_capped(path, config::MAX_TEXT_BYTES as u64, "a configuration file")
         .map(Some)
 }
+
+/// The patch grid a model configuration beside the checkpoint records (`image_size` / `patch_size`
+/// of `config.json`, at the top level or in a vision section), with the file it came from:
+/// evidence for a grid the row count alone does not settle (a non-square one).
+pub fn recorded_grid(files: &[PathBuf]) -> Option<((usize, usize), String)> {
+    let config = files
+        .iter()
+        .find(|p| p.file_name().is_some_and(|n| n == "config.json"))?;
+    let bytes = read_capped(config).ok()??;
+    let recorded = config::recorded_sizes(config::text_from_bytes(&bytes).ok()?).ok()?;
+    let find = |key: config::SizeKey| {
+        recorded
+            .sizes
+            .iter()
+            .find(|s| s.key == key)
+            .and_then(|s| s.value.pair())
+    };
+    let (h, w) = find(config::SizeKey::ImageSize)?;
+    let (p, q) = find(config::SizeKey::PatchSize)?;
+    let fits = p > 0 && q > 0 && h % p == 0 && w % q == 0;
+    fits.then(|| ((h / p, w / q), config.display().to_string()))
+}
+
+/// [`recorded_grid`] for the configuration files that go with `source` opened from `input`:
+/// those of its model directory or set, or those beside a single file.
+pub fn grid_beside(
+    source: &crate::checkpoint::Source,
+    input: &Path,
+) -> Option<((usize, usize), String)> {
+    use crate::checkpoint::sharded::ShardedSet;
+    let files = match (source.directory(), source.downcast::<ShardedSet>()) {
+        (Some(md), _) => md.others.clone(),
+        (None, Some(set)) => set.other_files().ok()?,
+        (None, None) => crate::checkpoint::directory::configs_beside(input),
+    };
+    recorded_grid(&files)
+}

@@ -85,7 +85,11 @@ pub struct ResizeReport {
 /// Run a resize job.
 pub fn run(job: &ResizeJob) -> Result<ResizeReport> {
     let source = Source::open(&job.input)?;
-    let mut found = kinds::discover(&source, &job.hints)?;
+    let hints = Hints {
+        recorded_grid: config_files::grid_beside(&source, &job.input),
+        ..job.hints.clone()
+    };
+    let mut found = kinds::discover(&source, &hints)?;
     found.warnings.extend(source.notes());
     let format = job
         .format

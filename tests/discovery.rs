@@ -843,3 +843,33 @@ fn tokens_and_rows_that_disagree_are_ambiguous_with_the_flag_that_settles_it() {
     ]);
     assert_eq!(code(&o), 0, "{}", stderr(&o));
 }
+
+#[test]
+fn a_non_square_grid_is_read_from_the_configuration_beside_the_file() {
+    // 193 rows: 1 class row + a 12x16 grid, which no square grid explains. The model
+    // configuration beside the file records image_size [192, 256] and patch_size 16 (key names
+    // of a widely used model library's configuration files: common practice, from memory).
+    let dir = tempfile::tempdir().unwrap();
+    let path = with_tokens(dir.path(), 193, &[("cls_token", 1)]);
+    let without = posgrid(&["scan", s(&path), "--json"]);
+    let v: serde_json::Value = serde_json::from_slice(&without.stdout).unwrap();
+    assert!(v["tables"].as_array().unwrap().is_empty(), "{v}");
+    std::fs::write(
+        dir.path().join("config.json"),
+        r#"{"image_size": [192, 256], "patch_size": 16, "hidden_size": 16}"#,
+    )
+    .unwrap();
+    let with = posgrid(&["scan", s(&path), "--json"]);
+    assert_eq!(code(&with), 0, "{}", stderr(&with));
+    let v: serde_json::Value = serde_json::from_slice(&with.stdout).unwrap();
+    let t = &v["tables"][0];
+    assert_eq!(
+        (t["slots"].clone(), t["grid"].clone()),
+        (serde_json::json!(1), serde_json::json!([12, 16]))
+    );
+    assert_eq!(t["slots_from"], "config");
+    // And the resize follows it: 12x16 -> 24x32.
+    let out = dir.path().join("out.safetensors");
+    let o = posgrid(&["resize", s(&path), "-o", s(&out), "--grid", "24x32"]);
+    assert_eq!(code(&o), 0, "{}", stderr(&o));
+}

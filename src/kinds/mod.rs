@@ -33,6 +33,8 @@ pub struct Hints {
     pub source_frames: Option<usize>,
     /// A new patch size is asked for: patch-projection kernels are grid-dependent too.
     pub new_patch: Option<(usize, usize)>,
+    /// The patch grid a configuration file beside the checkpoint records, and the file.
+    pub recorded_grid: Option<((usize, usize), String)>,
     /// The number of leading class slots.
     pub slots: Option<usize>,
     /// The patch size in pixels.

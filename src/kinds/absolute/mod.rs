@@ -42,6 +42,8 @@ pub enum Layout {
 #[serde(rename_all = "lowercase")]
 pub enum SlotsFrom {
     Tokens,
+    /// The image and patch sizes a configuration file beside the checkpoint records.
+    Config,
     Rows,
     Values,
     Flag,
@@ -327,6 +329,14 @@ fn examine(
                 )))
             }
         }
+    } else if let Some(c) = recorded_fit(rows, hints) {
+        slots_from = SlotsFrom::Config;
+        let file = hints.recorded_grid.as_ref().map_or("", |r| r.1.as_str());
+        notes.push(format!(
+            "grid {}x{} from the image and patch sizes {file} records",
+            c.1 .0, c.1 .1
+        ));
+        vec![c]
     } else {
         let by_rows = square_explanations(rows);
         match tokens::decide(
@@ -553,6 +563,18 @@ fn channel_order(a: usize, b: usize, c: usize, hints: &Hints, kernel_widths: &[u
     } else {
         Reading::Ambiguous
     }
+}
+
+/// The explanation of `rows` by the grid a configuration file records, when the row count
+/// alone does not settle it (several square grids, or a non-square grid): a few leading slots
+/// (at most 2, common practice) in front of the recorded grid.
+fn recorded_fit(rows: usize, hints: &Hints) -> Option<(usize, (usize, usize))> {
+    let ((h, w), _) = hints.recorded_grid.as_ref()?;
+    if square_explanations(rows).len() == 1 {
+        return None;
+    }
+    let slots = rows.checked_sub(h.checked_mul(*w)?)?;
+    (slots <= 2 && hints.slots.is_none_or(|s| s == slots)).then_some((slots, (*h, *w)))
 }
 
 /// The `T × K × K` video grids (T ≥ 2, K ≥ 2, at most 0 or 1 slot unless `--slots` says)
