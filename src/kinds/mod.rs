@@ -316,6 +316,15 @@ pub trait Change: std::fmt::Debug + Send + Sync {
     }
 }
 
+/// The refusal for a target whose size does not fit a 64-bit count: no machine could hold it,
+/// and a wrapped count would slip past every later check.
+pub(crate) fn too_large(path: &std::path::Path, name: &str, target: &str) -> crate::error::Error {
+    crate::error::Error::refused(
+        path,
+        format!("resizing \"{name}\" to {target}: too large (its size overflows a 64-bit count); choose a smaller target"),
+    )
+}
+
 /// Refuse a tensor holding NaN or infinity (`after`: where the values come from, for the
 /// message), unless the user allowed them.
 pub(crate) fn refuse_nonfinite(

@@ -201,8 +201,13 @@ pub fn plan(
     if [h, w] == b.grid {
         return Ok(None);
     }
-    let new_shape = vec![h * w, 2 * b.axis_dim];
-    let needed = (h as u64 * w as u64 * 2 * b.axis_dim as u64).saturating_mul(40);
+    let cells = h
+        .checked_mul(w)
+        .ok_or_else(|| super::too_large(path, &b.name, &format!("{h}x{w}")))?;
+    let new_shape = vec![cells, 2 * b.axis_dim];
+    let needed = (cells as u64)
+        .saturating_mul(2 * b.axis_dim as u64)
+        .saturating_mul(40);
     if needed > request.memory_limit {
         return Err(Error::refused(
             path,
@@ -320,6 +325,8 @@ impl Change for RotaryChange {
     }
 
     fn needed_bytes(&self) -> u64 {
-        (self.new_shape[0] as u64 * self.new_shape[1] as u64).saturating_mul(40)
+        (self.new_shape[0] as u64)
+            .saturating_mul(self.new_shape[1] as u64)
+            .saturating_mul(40)
     }
 }

@@ -87,7 +87,7 @@ pub fn plan(
     };
     resample::validate((t.frames, 1), (to, 1), &request.options)
         .map_err(|e| Error::Usage(format!("{}: {e}", t.name)))?;
-    let needed = (to as u64 * t.dim as u64).saturating_mul(32);
+    let needed = (to as u64).saturating_mul(t.dim as u64).saturating_mul(32);
     if needed > request.memory_limit {
         return Err(Error::refused(
             ckpt.source_path(),
@@ -191,6 +191,8 @@ impl Change for TemporalChange {
     }
 
     fn needed_bytes(&self) -> u64 {
-        (self.to as u64 * self.table.dim as u64).saturating_mul(32)
+        (self.to as u64)
+            .saturating_mul(self.table.dim as u64)
+            .saturating_mul(32)
     }
 }

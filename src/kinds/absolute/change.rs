@@ -69,7 +69,15 @@ pub fn plan(
             table.name
         )));
     }
-    let rows = table.slots + t_to * to[0] * to[1];
+    let target = match frames {
+        Some(_) => format!("{t_to}x{}x{}", to[0], to[1]),
+        None => format!("{}x{}", to[0], to[1]),
+    };
+    let rows = t_to
+        .checked_mul(to[0])
+        .and_then(|n| n.checked_mul(to[1]))
+        .and_then(|n| n.checked_add(table.slots))
+        .ok_or_else(|| crate::kinds::too_large(path, &table.name, &target))?;
     let new_shape = match table.layout {
         Layout::BatchRows => vec![1, rows, table.dim],
         Layout::Rows => vec![rows, table.dim],
@@ -81,10 +89,8 @@ pub fn plan(
         return Err(Error::refused(
             path,
             format!(
-                "resizing \"{}\" to {}x{} needs about {} MiB, over the {} MiB guard; raise it with --memory-limit",
+                "resizing \"{}\" to {target} needs about {} MiB, over the {} MiB guard; raise it with --memory-limit",
                 table.name,
-                to[0],
-                to[1],
                 needed >> 20,
                 request.memory_limit >> 20
             ),

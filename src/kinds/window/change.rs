@@ -66,8 +66,12 @@ pub fn plan(
     if to == table.window && !masks_change {
         return Ok(None);
     }
-    let side = |w: [usize; 2]| [2 * w[0] - 1, 2 * w[1] - 1];
-    let (from_side, to_side) = (side(table.window), side(to));
+    let target = format!("window {}x{}", to[0], to[1]);
+    let too_large = || crate::kinds::too_large(path, &table.name, &target);
+    let (from_side, to_side) = (
+        offsets_side(table.window).ok_or_else(too_large)?,
+        offsets_side(to).ok_or_else(too_large)?,
+    );
     let geometric = request.relative == Relative::Geometric && to != table.window;
     if geometric && (from_side[0] != from_side[1] || to_side[0] != to_side[1]) {
         return Err(Error::Usage(format!(
@@ -82,11 +86,20 @@ pub fn plan(
     )
     .map_err(|e| Error::Usage(format!("{}: {e}", table.name)))?;
     let class = if table.class_rows { CLASS_ROWS } else { 0 };
-    let rows = to_side[0] * to_side[1] + class;
-    let index_shape = table.index.as_ref().map(|_| {
-        let n = to[0] * to[1] + usize::from(table.class_rows);
-        vec![n, n]
-    });
+    let rows = to_side[0]
+        .checked_mul(to_side[1])
+        .and_then(|n| n.checked_add(class))
+        .ok_or_else(too_large)?;
+    let index_shape = match table.index {
+        Some(_) => {
+            let n = to[0]
+                .checked_mul(to[1])
+                .and_then(|n| n.checked_add(usize::from(table.class_rows)))
+                .ok_or_else(too_large)?;
+            Some(vec![n, n])
+        }
+        None => None,
+    };
     let needed = needed_bytes(table, rows, &index_shape, &masks);
     if needed > request.memory_limit {
         return Err(Error::refused(
@@ -167,7 +180,14 @@ fn mask_change(
     let mut map = [0; 2];
     for axis in 0..2 {
         let (g, g2, side) = (grid[axis], new_grid[axis], m.map[axis]);
-        if g % side != 0 || (g2 * side) % g != 0 {
+        let Some(scaled) = g2.checked_mul(side) else {
+            return Err(crate::kinds::too_large(
+                path,
+                &m.name,
+                &format!("patch grid {}x{}", new_grid[0], new_grid[1]),
+            ));
+        };
+        if g % side != 0 || scaled % g != 0 {
             return Err(Error::table(
                 path,
                 format!(
@@ -176,7 +196,7 @@ fn mask_change(
                 ),
             ));
         }
-        map[axis] = g2 * side / g;
+        map[axis] = scaled / g;
     }
     if map[0] % window[0] != 0 || map[1] % window[1] != 0 {
         return Err(Error::Usage(format!(
@@ -186,15 +206,32 @@ fn mask_change(
     }
     let layout = mask_layout(map, window);
     let shifted = layout.effective_shift() != (0, 0);
+    let new_shape = match shifted {
+        true => Some(mask_shape(map, window).ok_or_else(|| {
+            crate::kinds::too_large(path, &m.name, &format!("feature map {}x{}", map[0], map[1]))
+        })?),
+        false => None,
+    };
     Ok(MaskChange {
         name: m.name.clone(),
         map,
         layout: shifted.then_some(layout),
-        new_shape: shifted.then(|| {
-            let cells = window[0] * window[1];
-            vec![(map[0] / window[0]) * (map[1] / window[1]), cells, cells]
-        }),
+        new_shape,
     })
+}
+
+/// The sides `[2Wh−1, 2Ww−1]` of a window's grid of offsets (`None` past a 64-bit count).
+fn offsets_side(w: [usize; 2]) -> Option<[usize; 2]> {
+    let side = |n: usize| n.checked_mul(2)?.checked_sub(1);
+    Some([side(w[0])?, side(w[1])?])
+}
+
+/// `[nW, N, N]` of a mask of `window` over `map` (`None` past a 64-bit count).
+fn mask_shape(map: [usize; 2], window: [usize; 2]) -> Option<Vec<usize>> {
+    let windows = (map[0] / window[0]).checked_mul(map[1] / window[1])?;
+    let cells = window[0].checked_mul(window[1])?;
+    cells.checked_mul(cells)?.checked_mul(windows)?;
+    Some(vec![windows, cells, cells])
 }
 
 /// The table's working copies (f32/f64) and output, the index buffer and masks.
@@ -206,7 +243,9 @@ fn needed_bytes(
 ) -> u64 {
     let elem = t.dtype.bitsize() as u64 / 8;
     let cells = |shape: &[usize]| shape.iter().fold(1u64, |a, &n| a.saturating_mul(n as u64));
-    let table = (rows as u64 * t.heads as u64).saturating_mul(elem + 24);
+    let table = (rows as u64)
+        .saturating_mul(t.heads as u64)
+        .saturating_mul(elem + 24);
     let source = cells(&t.shape).saturating_mul(elem + 16);
     let index = index_shape
         .as_deref()
