@@ -87,6 +87,9 @@ fn run(args: &[&str]) -> Run {
     run_limited(args, None)
 }
 
+/// Room for the program and its threads, not for a buffer of a gigabyte.
+const ADDRESS_LIMIT: u64 = 768 << 20;
+
 /// A checkpoint in its own directory, and its bytes as they were written.
 struct Input {
     dir: tempfile::TempDir,
@@ -108,7 +111,10 @@ impl Input {
 
     /// `resize IN -o OUT ARGS...`
     fn resize(&self, args: &[&str]) -> Run {
-        let address_limit = None;
+        self.resize_limited(args, None)
+    }
+
+    fn resize_limited(&self, args: &[&str], address_limit: Option<u64>) -> Run {
         let (input, out) = (s(&self.path).to_string(), s(&self.out()).to_string());
         let mut all = vec!["resize", &input, "-o", &out];
         all.extend_from_slice(args);
@@ -293,6 +299,39 @@ fn a_grid_that_overflows_a_stage_map_is_refused() {
     let input = Input::new(&shifted_stage());
     let r = input.resize(&["--grid", "9223372036854775836"]);
     input.assert_refused(&r, 6, &["layers.0.blocks.1.attn_mask", "too large"]);
+}
+
+#[test]
+fn a_window_table_that_cannot_be_allocated_is_refused_not_aborted() {
+    // Window 3000: 5999² offsets of 3 heads, about 430 MB per copy, under a 768 MiB limit. No
+    // index buffer beside the table (its window read from the rows), so no index of 9 million
+    // squared entries stops the request at the guard first.
+    let mut tensors = window_block("layers.0.blocks.0", 7, 3, 1);
+    tensors.truncate(1);
+    let input = Input::new(&tensors);
+    let r = input.resize_limited(
+        &["--grid", "16", "--window", "3000", "--memory-limit", "64G"],
+        Some(ADDRESS_LIMIT),
+    );
+    input.assert_refused(&r, 6, &["relative_position_bias_table", "memory"]);
+}
+
+#[test]
+fn a_one_axis_table_that_cannot_be_allocated_is_refused_with_exit_6() {
+    // 40 million frames of width 24: 3.8 GB, under a 768 MiB limit. Exit 6, not a usage error.
+    let input = Input::new(&temporal());
+    let r = input.resize_limited(
+        &[
+            "--grid",
+            "16",
+            "--frames",
+            "40000000",
+            "--memory-limit",
+            "64G",
+        ],
+        Some(ADDRESS_LIMIT),
+    );
+    input.assert_refused(&r, 6, &["time_embed", "memory"]);
 }
 
 #[test]

@@ -356,8 +356,12 @@ pub(crate) fn stretch_rows(
     use crate::values;
     let what = format!("resizing \"{}\"", entry.name);
     let value_error = |e| values::value_error(path, &what, e);
-    let usage =
-        |e: crate::resample::ResampleError| crate::error::Error::Usage(format!("{what}: {e}"));
+    let oom = |e| values::out_of_memory(path, &what, e);
+    // The target decides how much the engine allocates: running out is a refusal (exit 6).
+    let usage = |e| match e {
+        crate::resample::ResampleError::OutOfMemory { bytes } => oom(values::OutOfMemory { bytes }),
+        other => crate::error::Error::Usage(format!("{}: {what}: {other}", path.display())),
+    };
     let c = *entry.shape.last().unwrap_or(&1);
     let from = entry.shape.iter().product::<usize>() / c.max(1);
     // One axis: a `[rows, 1]` grid of `c` channels.
@@ -366,8 +370,8 @@ pub(crate) fn stretch_rows(
         let v = values::decode_f64(entry.dtype, raw).map_err(value_error)?;
         let r = crate::resample::resample(&v, (from, 1), c, (to, 1), options).map_err(usage)?;
         let bytes = values::encode_f64(entry.dtype, &r).map_err(value_error)?;
-        let narrow = |x: &[f64]| x.iter().map(|v| *v as f32).collect::<Vec<f32>>();
-        (bytes, narrow(&v), narrow(&r))
+        let narrow = |x: &[f64]| values::try_collect(x.len(), x.iter().map(|v| *v as f32));
+        (bytes, narrow(&v).map_err(oom)?, narrow(&r).map_err(oom)?)
     } else {
         let v = values::decode_f32(entry.dtype, raw).map_err(value_error)?;
         let r = resample(&v).map_err(usage)?;

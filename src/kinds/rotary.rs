@@ -277,9 +277,11 @@ impl Change for RotaryChange {
         } else {
             &sin
         };
+        let after = values::try_collect(after.len(), after.iter().map(|x| *x as f32))
+            .map_err(|e| values::out_of_memory(path, &format!("rebuilding \"{}\"", b.name), e))?;
         out.images = Some(Images {
             before,
-            after: after.iter().map(|x| *x as f32).collect(),
+            after,
             from: b.grid,
             to: self.to,
             width: 2 * b.axis_dim,

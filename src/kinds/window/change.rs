@@ -11,6 +11,7 @@ use crate::kinds::{refuse_nonfinite, Change, ChangeReport, Computed, Images};
 use crate::plan::{Relative, Request, Target};
 use crate::rebuild::relative_index::{self, IndexLayout};
 use crate::rebuild::shift_mask::{self, MaskLayout};
+use crate::rebuild::HARD_ELEMENT_LIMIT;
 use crate::resample::{self, geometric, Options};
 use crate::values;
 
@@ -275,55 +276,86 @@ impl WindowChange {
         }
     }
 
-    /// The offset grid resampled, in f64 for F64 tables and for the geometric method.
-    fn new_offsets(&self, path: &std::path::Path, grid: &[u8]) -> Result<(Vec<u8>, Images)> {
+    /// The offset grid resampled (in f64 for F64 tables and for the geometric method, else in
+    /// f32), followed by the class rows as they are. Every buffer is allocated fallibly: the
+    /// window, not the file, decides their size.
+    fn new_offsets(
+        &self,
+        path: &std::path::Path,
+        grid: &[u8],
+        class: &[u8],
+    ) -> Result<(Vec<u8>, Images)> {
         let (from, to) = self.sides();
-        let heads = self.table.heads;
         let dtype = self.table.dtype;
         let what = format!("resizing \"{}\"", self.table.name);
         let value_error = |e| values::value_error(path, &what, e);
-        let limit = crate::rebuild::HARD_ELEMENT_LIMIT;
-        let (before, after): (Vec<f64>, Vec<f64>) = {
+        let oom = |e| values::out_of_memory(path, &what, e);
+        let engine_error = |e| match e {
+            resample::ResampleError::OutOfMemory { bytes } => oom(values::OutOfMemory { bytes }),
+            other => Error::Usage(format!("{}: {what}: {other}", path.display())),
+        };
+        let narrow = |v: &[f64]| values::try_collect(v.len(), v.iter().map(|x| *x as f32));
+        let (bytes, before, after) = if self.geometric || dtype == Dtype::F64 {
             let v = values::decode_f64(dtype, grid).map_err(value_error)?;
             let r = if self.geometric {
-                geometric::resample(&v, from[0], heads, to[0], limit)
+                geometric::resample(&v, from[0], self.table.heads, to[0], HARD_ELEMENT_LIMIT)
                     .map_err(|e| Error::refused(path, format!("{what}: {e}")))?
-            } else if dtype == Dtype::F64 {
-                resample::resample(&v, (from[0], from[1]), heads, (to[0], to[1]), &self.options)
-                    .map_err(|e| Error::Usage(format!("{what}: {e}")))?
             } else {
-                // f32 arithmetic, as for every other table of a narrower dtype.
-                let narrow: Vec<f32> = v.iter().map(|x| *x as f32).collect();
-                resample::resample(
-                    &narrow,
-                    (from[0], from[1]),
-                    heads,
-                    (to[0], to[1]),
-                    &self.options,
-                )
-                .map_err(|e| Error::Usage(format!("{what}: {e}")))?
-                .into_iter()
-                .map(f64::from)
-                .collect()
+                self.engine(&v, from, to).map_err(engine_error)?
             };
-            (v, r)
-        };
-        let mut bytes = Vec::new();
-        if dtype == Dtype::F64 {
-            values::encode_f64_into(dtype, &after, &mut bytes).map_err(value_error)?;
+            let (before, after) = (narrow(&v).map_err(oom)?, narrow(&r).map_err(oom)?);
+            let bytes = match dtype {
+                Dtype::F64 => encode_with(dtype, &r, class, values::encode_f64_into),
+                // Narrower dtypes round from f32, as every other table of theirs does.
+                _ => encode_with(dtype, &after, class, values::encode_f32_into),
+            };
+            (bytes.map_err(value_error)?, before, after)
         } else {
-            let narrow: Vec<f32> = after.iter().map(|x| *x as f32).collect();
-            values::encode_f32_into(dtype, &narrow, &mut bytes).map_err(value_error)?;
-        }
-        let images = Images {
-            before: before.iter().map(|x| *x as f32).collect(),
-            after: after.iter().map(|x| *x as f32).collect(),
+            let v = values::decode_f32(dtype, grid).map_err(value_error)?;
+            let r = self.engine(&v, from, to).map_err(engine_error)?;
+            let bytes = encode_with(dtype, &r, class, values::encode_f32_into);
+            (bytes.map_err(value_error)?, v, r)
+        };
+        Ok((bytes, self.images((before, after))))
+    }
+
+    fn engine<T: resample::Sample>(
+        &self,
+        v: &[T],
+        from: [usize; 2],
+        to: [usize; 2],
+    ) -> std::result::Result<Vec<T>, resample::ResampleError> {
+        let heads = self.table.heads;
+        resample::resample(v, (from[0], from[1]), heads, (to[0], to[1]), &self.options)
+    }
+
+    fn images(&self, (before, after): (Vec<f32>, Vec<f32>)) -> Images {
+        let (from, to) = self.sides();
+        Images {
+            before,
+            after,
             from,
             to,
-            width: heads,
-        };
-        Ok((bytes, images))
+            width: self.table.heads,
+        }
     }
+}
+
+/// Appends values to a buffer as elements of a dtype (`values::encode_f32_into`, `…f64_into`).
+type Encoder<T> = fn(Dtype, &[T], &mut Vec<u8>) -> std::result::Result<(), values::ValueError>;
+
+/// `values` encoded in `dtype` and the class rows after them, in one buffer allocated fallibly.
+fn encode_with<T>(
+    dtype: Dtype,
+    values: &[T],
+    class: &[u8],
+    encode: Encoder<T>,
+) -> std::result::Result<Vec<u8>, values::ValueError> {
+    let elem = dtype.bitsize() / 8;
+    let mut bytes = values::try_with_capacity(values.len().saturating_mul(elem) + class.len())?;
+    encode(dtype, values, &mut bytes)?;
+    bytes.extend_from_slice(class);
+    Ok(bytes)
 }
 
 impl Change for WindowChange {
@@ -366,16 +398,15 @@ impl Change for WindowChange {
         let elem = entry.dtype.bitsize() / 8;
         let (from, _) = self.sides();
         let (grid, class) = raw.split_at(from[0] * from[1] * self.table.heads * elem);
-        let (mut bytes, images) = self.new_offsets(path, grid)?;
+        let (bytes, images) = self.new_offsets(path, grid, class)?;
         if !allow_nonfinite {
             refuse_nonfinite(path, &self.table.name, entry.dtype, &bytes, " after resampling (the kernel overshoots; use --kernel bilinear or pass --allow-nonfinite)")?;
         }
-        bytes.extend_from_slice(class);
         let mut out = Computed {
             bytes: vec![(entry.name.clone(), bytes)],
             images: Some(images),
         };
-        let limit = crate::rebuild::HARD_ELEMENT_LIMIT;
+        let limit = HARD_ELEMENT_LIMIT;
         let rebuild_error = |name: &str, e: crate::rebuild::RebuildError| {
             Error::refused(path, format!("rebuilding \"{name}\": {e}"))
         };
