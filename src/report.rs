@@ -35,9 +35,11 @@ impl ScanReport {
         }
     }
 
-    /// Whether a script should treat the scan as a failure: nothing found, or ambiguity.
+    /// Whether a script should treat the scan as a success: some grid-dependent tensor found
+    /// (of any kind), and nothing ambiguous.
     pub fn is_conclusive(&self) -> bool {
-        !self.discovery.tables.is_empty() && self.discovery.ambiguous.is_empty()
+        let d = &self.discovery;
+        (!d.tables.is_empty() || !d.encodings.is_empty()) && d.ambiguous.is_empty()
     }
 }
 

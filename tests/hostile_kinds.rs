@@ -286,6 +286,22 @@ fn json(r: &Run) -> serde_json::Value {
 // ------------------------------------------------------------------------------------------
 
 #[test]
+fn a_checkpoint_of_other_kinds_only_scans_with_exit_0() {
+    // Exit 4 means "no position table"; a window-attention or rotary checkpoint has tables.
+    let window = Input::new(&window_block("layers.0.blocks.0", 7, 3, 1));
+    let r = window.scan(&["--json"]);
+    assert_eq!(r.code, 0, "{}", r.stderr);
+    assert_eq!(json(&r)["tables"][0]["kind"], "window_relative");
+    let (cos, sin) = rotary(16, 16.0, 8, 10000.0);
+    let rope = Input::new(&[
+        floats("rope.freqs_cos", Dtype::F32, &[256, 16], &cos),
+        floats("rope.freqs_sin", Dtype::F32, &[256, 16], &sin),
+    ]);
+    let r = rope.scan(&[]);
+    assert_eq!(r.code, 0, "{}", r.stderr);
+}
+
+#[test]
 fn a_window_that_overflows_the_row_count_of_a_per_axis_table_is_refused() {
     // 2·(2^63 + 1) − 1 rows wraps to 1 row in 64 bits: the table must not shrink to one row.
     let input = Input::new(&axial_pairs());
