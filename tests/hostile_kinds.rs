@@ -453,3 +453,27 @@ fn targets_whose_sizes_overflow_are_refused_naming_the_file() {
         );
     }
 }
+
+#[test]
+fn an_index_buffer_too_narrow_for_the_new_window_is_refused_before_any_work() {
+    // A U8 index holds rows 0..168 of window 7; window 12 needs rows up to 528.
+    let mut tensors = window_block("layers.0.blocks.0", 7, 3, 1);
+    tensors[1] = ints(
+        "layers.0.blocks.0.attn.relative_position_index",
+        Dtype::U8,
+        &[49, 49],
+        &relative_index(7, 7),
+    );
+    let input = Input::new(&tensors);
+    for dry in [true, false] {
+        let mut args = vec!["--grid", "16", "--window", "12"];
+        if dry {
+            args.push("--dry-run");
+        }
+        let r = input.resize(&args);
+        input.assert_refused(&r, 6, &["relative_position_index", "U8", "529"]);
+    }
+    // Window 8 (225 rows, indices up to 224) still fits U8 and is written.
+    let r = input.resize(&["--grid", "16", "--window", "8"]);
+    assert_eq!(r.code, 0, "{}", r.stderr);
+}

@@ -101,6 +101,7 @@ pub fn plan(
         }
         None => None,
     };
+    refuse_narrow_index(ckpt, table, rows, to)?;
     let needed = needed_bytes(table, rows, &index_shape, &masks);
     if needed > request.memory_limit {
         return Err(Error::refused(
@@ -219,6 +220,29 @@ fn mask_change(
         layout: shifted.then_some(layout),
         new_shape,
     })
+}
+
+/// The rebuilt index keeps its buffer's dtype, which must hold every row number of the new
+/// table (a U8 index of window 7 cannot index the 529 rows of window 12).
+fn refuse_narrow_index(
+    ckpt: &dyn TensorSource,
+    table: &WindowTable,
+    rows: usize,
+    to: [usize; 2],
+) -> Result<()> {
+    let Some(index) = table.index.as_deref().and_then(|name| ckpt.find(name)) else {
+        return Ok(());
+    };
+    if values::range_fits(index.dtype, rows) {
+        return Ok(());
+    }
+    Err(Error::refused(
+        ckpt.source_path(),
+        format!(
+            "index buffer \"{}\" ({}) cannot hold the row numbers of \"{}\" at window {}x{} ({rows} rows); choose a smaller window",
+            index.name, index.dtype, table.name, to[0], to[1]
+        ),
+    ))
 }
 
 /// The sides `[2Wh−1, 2Ww−1]` of a window's grid of offsets (`None` past a 64-bit count).
