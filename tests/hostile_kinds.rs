@@ -477,3 +477,71 @@ fn an_index_buffer_too_narrow_for_the_new_window_is_refused_before_any_work() {
     let r = input.resize(&["--grid", "16", "--window", "8"]);
     assert_eq!(r.code, 0, "{}", r.stderr);
 }
+
+#[test]
+fn a_mask_that_cannot_follow_its_table_stops_the_resize() {
+    // A block whose table changes window but whose mask cannot be read back to its map would be
+    // written with the old mask beside the new table: a checkpoint that no longer loads.
+    let good = shifted_mask(14, 7, 3);
+    let mut nan = good.clone();
+    nan[0] = f64::NAN;
+    let mut inf = good.clone();
+    inf[3 * 49 * 49 + 48 * 49] = f64::NEG_INFINITY;
+    let masks: [(&str, T); 5] = [
+        (
+            "NaN",
+            floats(
+                "layers.0.blocks.1.attn_mask",
+                Dtype::F32,
+                &[4, 49, 49],
+                &nan,
+            ),
+        ),
+        (
+            "infinity",
+            floats(
+                "layers.0.blocks.1.attn_mask",
+                Dtype::F32,
+                &[4, 49, 49],
+                &inf,
+            ),
+        ),
+        (
+            "empty",
+            floats("layers.0.blocks.1.attn_mask", Dtype::F32, &[0, 49, 49], &[]),
+        ),
+        (
+            "integers",
+            ints(
+                "layers.0.blocks.1.attn_mask",
+                Dtype::I64,
+                &[4, 49, 49],
+                &good.iter().map(|v| *v as i64).collect::<Vec<_>>(),
+            ),
+        ),
+        (
+            "other cells",
+            floats(
+                "layers.0.blocks.1.attn_mask",
+                Dtype::F32,
+                &[4, 48, 48],
+                &vec![0.0; 4 * 48 * 48],
+            ),
+        ),
+    ];
+    for (what, mask) in masks {
+        let mut tensors = window_block("layers.0.blocks.1", 7, 3, 1);
+        tensors.push(mask);
+        let input = Input::new(&tensors);
+        let r = input.resize(&["--grid", "24", "--window", "12"]);
+        assert_eq!(r.code, 6, "{what}: {}", r.stderr);
+        input.assert_refused(&r, 6, &["layers.0.blocks.1.attn_mask"]);
+        // Scan says so too.
+        let r = input.scan(&[]);
+        assert!(
+            r.stderr.contains("layers.0.blocks.1.attn_mask"),
+            "{what}: {}",
+            r.stderr
+        );
+    }
+}

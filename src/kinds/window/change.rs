@@ -55,6 +55,15 @@ pub fn plan(
 ) -> Result<Option<WindowChange>> {
     let path = ckpt.source_path();
     let to = target_window(path, table, request)?;
+    if let (true, Some(m)) = (to != table.window, table.unusable_masks.first()) {
+        return Err(Error::refused(
+            path,
+            format!(
+                "\"{}\" cannot change window: the mask \"{}\" of its block cannot be rebuilt ({}), and kept as it is it would not fit the new window",
+                table.name, m.name, m.reason
+            ),
+        ));
+    }
     let masks = table
         .masks
         .iter()
