@@ -545,3 +545,36 @@ fn a_mask_that_cannot_follow_its_table_stops_the_resize() {
         );
     }
 }
+
+#[test]
+fn requests_that_do_not_fit_the_file_name_it() {
+    // A new window that does not split the stage's new map.
+    let stage = Input::new(&shifted_stage());
+    let r = stage.resize(&["--grid", "16", "--window", "12"]);
+    stage.assert_refused(&r, 2, &["layers.0.blocks.1.attn_mask", "12x12"]);
+    // Rotary buffers on a grid that is not square.
+    let (cos, sin) = rotary(16, 16.0, 8, 10000.0);
+    let rope = Input::new(&[
+        floats("rope.freqs_cos", Dtype::F32, &[256, 16], &cos),
+        floats("rope.freqs_sin", Dtype::F32, &[256, 16], &sin),
+    ]);
+    let r = rope.resize(&["--grid", "24x32"]);
+    rope.assert_refused(&r, 2, &["rope.freqs_cos", "square"]);
+    // The geometric method on a window that is not square.
+    let odd = Input::new(&[
+        floats(
+            "blocks.0.attn.relative_position_bias_table",
+            Dtype::F32,
+            &[15, 2],
+            &noise(30, 1, 1.0),
+        ),
+        ints(
+            "blocks.0.attn.relative_position_index",
+            Dtype::I64,
+            &[6, 6],
+            &relative_index(2, 3),
+        ),
+    ]);
+    let r = odd.resize(&["--grid", "16", "--window", "12", "--relative", "geometric"]);
+    odd.assert_refused(&r, 2, &["relative_position_bias_table", "square"]);
+}

@@ -196,7 +196,7 @@ pub fn plan(
                 })?;
                 let side = [h, w][axis];
                 if side % p != 0 {
-                    return Err(Error::Usage(format!(
+                    return Err(Error::usage_in(path, format!(
                         "image {h}x{w} is not a whole number of {p}-pixel patches (\"{}\"); choose a multiple of {p}",
                         table.name
                     )));
@@ -209,10 +209,10 @@ pub fn plan(
         return Ok(None);
     }
     if to == 0 {
-        return Err(Error::Usage(format!(
-            "\"{}\": a span must be at least 1",
-            table.name
-        )));
+        return Err(Error::usage_in(
+            path,
+            format!("\"{}\": a span must be at least 1", table.name),
+        ));
     }
     let rows = to
         .checked_mul(2)

@@ -360,7 +360,7 @@ pub(crate) fn stretch_rows(
     // The target decides how much the engine allocates: running out is a refusal (exit 6).
     let usage = |e| match e {
         crate::resample::ResampleError::OutOfMemory { bytes } => oom(values::OutOfMemory { bytes }),
-        other => crate::error::Error::Usage(format!("{}: {what}: {other}", path.display())),
+        other => crate::error::Error::usage_in(path, format!("{what}: {other}")),
     };
     let c = *entry.shape.last().unwrap_or(&1);
     let from = entry.shape.iter().product::<usize>() / c.max(1);

@@ -184,7 +184,7 @@ pub fn plan(
                 Error::table(path, format!("\"{}\": the patch size is unknown (no patch-projection kernel found); pass --patch P or give --grid", b.name))
             })?;
             if h % p != 0 || w % p != 0 {
-                return Err(Error::Usage(format!(
+                return Err(Error::usage_in(path, format!(
                     "image {h}x{w} is not a whole number of {p}-pixel patches (\"{}\"); choose a multiple of {p}",
                     b.name
                 )));
@@ -193,7 +193,7 @@ pub fn plan(
         }
     };
     if h != w {
-        return Err(Error::Usage(format!(
+        return Err(Error::usage_in(path, format!(
             "\"{}\": rotary buffers of the 2-D construction hold a square grid; {h}x{w} is not square",
             b.name
         )));

@@ -82,15 +82,16 @@ pub fn plan(
     t: &TemporalTable,
     request: &Request,
 ) -> Result<Option<TemporalChange>> {
+    let path = ckpt.source_path();
     let Some(to) = request.frames.filter(|&f| f != t.frames) else {
         return Ok(None);
     };
     resample::validate((t.frames, 1), (to, 1), &request.options)
-        .map_err(|e| Error::Usage(format!("{}: {e}", t.name)))?;
+        .map_err(|e| Error::usage_in(path, format!("{}: {e}", t.name)))?;
     let needed = (to as u64).saturating_mul(t.dim as u64).saturating_mul(32);
     if needed > request.memory_limit {
         return Err(Error::refused(
-            ckpt.source_path(),
+            path,
             format!(
                 "resizing \"{}\" to {to} frames needs about {} MiB, over the {} MiB guard; raise it with --memory-limit",
                 t.name,

@@ -61,13 +61,13 @@ pub fn plan(
         return Ok(None);
     }
     resample::validate((from[0], from[1]), (to[0], to[1]), &request.options)
-        .map_err(|e| Error::Usage(format!("{}: {e}", table.name)))?;
+        .map_err(|e| Error::usage_in(path, format!("{}: {e}", table.name)))?;
     let (t_from, t_to) = frames.unwrap_or((1, 1));
     if t_to == 0 {
-        return Err(Error::Usage(format!(
-            "{}: frames must be at least 1",
-            table.name
-        )));
+        return Err(Error::usage_in(
+            path,
+            format!("{}: frames must be at least 1", table.name),
+        ));
     }
     let target = match frames {
         Some(_) => format!("{t_to}x{}x{}", to[0], to[1]),
@@ -174,7 +174,7 @@ fn target_grid(path: &std::path::Path, table: &Table, target: Target) -> Result<
                 )
             })?;
             if h % p != 0 || w % p != 0 {
-                return Err(Error::Usage(format!(
+                return Err(Error::usage_in(path, format!(
                     "image {h}x{w} is not a whole number of {p}-pixel patches (\"{}\"); choose a multiple of {p}",
                     table.name
                 )));
@@ -383,7 +383,7 @@ fn resample_error(path: &Path, t: &Table, e: resample::ResampleError) -> Error {
             &format!("resizing \"{}\"", t.name),
             values::OutOfMemory { bytes },
         ),
-        other => Error::Usage(format!("{}: {other}", t.name)),
+        other => Error::usage_in(path, format!("{}: {other}", t.name)),
     }
 }
 

@@ -84,17 +84,20 @@ pub fn plan(
     );
     let geometric = request.relative == Relative::Geometric && to != table.window;
     if geometric && (from_side[0] != from_side[1] || to_side[0] != to_side[1]) {
-        return Err(Error::Usage(format!(
-            "{}: --relative geometric needs square windows ({}x{} -> {}x{})",
-            table.name, table.window[0], table.window[1], to[0], to[1]
-        )));
+        return Err(Error::usage_in(
+            path,
+            format!(
+                "{}: --relative geometric needs square windows ({}x{} -> {}x{})",
+                table.name, table.window[0], table.window[1], to[0], to[1]
+            ),
+        ));
     }
     resample::validate(
         (from_side[0], from_side[1]),
         (to_side[0], to_side[1]),
         &request.options,
     )
-    .map_err(|e| Error::Usage(format!("{}: {e}", table.name)))?;
+    .map_err(|e| Error::usage_in(path, format!("{}: {e}", table.name)))?;
     let class = if table.class_rows { CLASS_ROWS } else { 0 };
     let rows = to_side[0]
         .checked_mul(to_side[1])
@@ -169,7 +172,7 @@ fn target_grid(
                 )
             })?;
             if h % p != 0 || w % p != 0 {
-                return Err(Error::Usage(format!(
+                return Err(Error::usage_in(path, format!(
                     "image {h}x{w} is not a whole number of {p}-pixel patches (\"{name}\"); choose a multiple of {p}"
                 )));
             }
@@ -210,7 +213,7 @@ fn mask_change(
         map[axis] = scaled / g;
     }
     if map[0] % window[0] != 0 || map[1] % window[1] != 0 {
-        return Err(Error::Usage(format!(
+        return Err(Error::usage_in(path, format!(
             "\"{}\": the new {}x{} feature map does not split into {}x{} windows; choose a window that divides it",
             m.name, map[0], map[1], window[0], window[1]
         )));
@@ -325,7 +328,7 @@ impl WindowChange {
         let oom = |e| values::out_of_memory(path, &what, e);
         let engine_error = |e| match e {
             resample::ResampleError::OutOfMemory { bytes } => oom(values::OutOfMemory { bytes }),
-            other => Error::Usage(format!("{}: {what}: {other}", path.display())),
+            other => Error::usage_in(path, format!("{what}: {other}")),
         };
         let narrow = |v: &[f64]| values::try_collect(v.len(), v.iter().map(|x| *x as f32));
         let (bytes, before, after) = if self.geometric || dtype == Dtype::F64 {
