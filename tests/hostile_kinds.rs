@@ -578,3 +578,45 @@ fn requests_that_do_not_fit_the_file_name_it() {
     let r = odd.resize(&["--grid", "16", "--window", "12", "--relative", "geometric"]);
     odd.assert_refused(&r, 2, &["relative_position_bias_table", "square"]);
 }
+
+#[test]
+fn rotary_buffers_stored_in_half_precision_rebuild_with_their_round_parameters() {
+    // Stored in F16 or BF16, the values lose the last digits of θ and L; the round parameters
+    // that fit them as well are the ones the model was built with (θ = 10000, L = 16).
+    for dtype in [Dtype::F16, Dtype::BF16] {
+        let (cos, sin) = rotary(24, 16.0, 32, 10000.0);
+        let input = Input::new(&[
+            floats("rope.freqs_cos", dtype, &[576, 64], &cos),
+            floats("rope.freqs_sin", dtype, &[576, 64], &sin),
+        ]);
+        let r = input.scan(&["--json"]);
+        assert_eq!(r.code, 0, "{}", r.stderr);
+        let table = &json(&r)["tables"][0];
+        assert_eq!(table["theta"], 10000.0, "{dtype:?}: {table}");
+        assert_eq!(table["pretrain_side"], 16.0, "{dtype:?}: {table}");
+        // Rebuilt at 32x32: the construction itself, rounded once to the dtype.
+        let r = input.resize(&["--grid", "32"]);
+        assert_eq!(r.code, 0, "{}", r.stderr);
+        let bytes = std::fs::read(input.out()).unwrap();
+        let out = safetensors::SafeTensors::deserialize(&bytes).unwrap();
+        let (want_cos, _) = rotary(32, 16.0, 32, 10000.0);
+        let want = floats("x", dtype, &[1024, 64], &want_cos).bytes;
+        assert!(
+            out.tensor("rope.freqs_cos").unwrap().data() == want.as_slice(),
+            "{dtype:?}"
+        );
+    }
+    // Values within 1e-4 of the construction (README: recognised within 1e-4).
+    let (cos, sin) = rotary(16, 16.0, 16, 10000.0);
+    let wobble = noise(cos.len(), 9, 9e-5);
+    let near = |v: &[f64], sign: f64| -> Vec<f64> {
+        v.iter().zip(&wobble).map(|(x, e)| x + sign * e).collect()
+    };
+    let input = Input::new(&[
+        floats("rope.freqs_cos", Dtype::F64, &[256, 32], &near(&cos, 1.0)),
+        floats("rope.freqs_sin", Dtype::F64, &[256, 32], &near(&sin, -1.0)),
+    ]);
+    let r = input.scan(&["--json"]);
+    assert_eq!(r.code, 0, "{}", r.stderr);
+    assert_eq!(json(&r)["tables"][0]["theta"], 10000.0);
+}

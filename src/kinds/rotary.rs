@@ -13,7 +13,7 @@ use super::{Encoding, Hints, Images, Kind, Skipped};
 use crate::checkpoint::{Dtype, TensorEntry, TensorSource};
 use crate::error::{Error, Result};
 use crate::plan::{Request, Target};
-use crate::rebuild::rotary::{self, RotaryParams, Which};
+use crate::rebuild::rotary::{self, RotaryParams, RoundParameters, Which};
 use crate::values;
 
 /// Buffers larger than this are not read (bounded memory).
@@ -150,10 +150,21 @@ fn examine(
             .map_err(|err| values::value_error(source.source_path(), &e.name, err))
     };
     let tol = value_tolerance(main.dtype);
+    // Half-precision values cannot pin the last digits of θ and L: round ones that fit win.
+    let round = match main.dtype {
+        Dtype::F16 | Dtype::BF16 => RoundParameters::WhenTheyFit,
+        _ => RoundParameters::IfEstimateFails,
+    };
     let params = match (cos, sin) {
-        (Some(c), Some(s)) => rotary::recognise_pair(&read(c)?, &read(s)?, rows, width, tol),
-        (Some(c), None) => rotary::recognise(&read(c)?, rows, width, Which::Cos, tol),
-        (None, Some(s)) => rotary::recognise(&read(s)?, rows, width, Which::Sin, tol),
+        (Some(c), Some(s)) => {
+            rotary::recognise_pair_rounding(&read(c)?, &read(s)?, rows, width, tol, round)
+        }
+        (Some(c), None) => {
+            rotary::recognise_rounding(&read(c)?, rows, width, Which::Cos, tol, round)
+        }
+        (None, Some(s)) => {
+            rotary::recognise_rounding(&read(s)?, rows, width, Which::Sin, tol, round)
+        }
         (None, None) => None,
     };
     Ok(params.ok_or_else(|| {
