@@ -170,6 +170,7 @@ fn output_of<'a>(
             })
             .collect(),
         provenance: provenance(plan),
+        left_out: drops.iter().map(|n| n.to_string()).collect(),
     }
 }
 

@@ -620,3 +620,139 @@ fn rotary_buffers_stored_in_half_precision_rebuild_with_their_round_parameters()
     assert_eq!(r.code, 0, "{}", r.stderr);
     assert_eq!(json(&r)["tables"][0]["theta"], 10000.0);
 }
+
+/// A `.npy` array (format 1.0: magic, header length, a Python dict literal padded with spaces
+/// and a newline to a multiple of 64 bytes, then the data; the numpy format's own rules).
+fn npy(t: &T) -> Vec<u8> {
+    let descr = match t.dtype {
+        Dtype::F32 => "<f4",
+        Dtype::I64 => "<i8",
+        other => panic!("no descr for {other:?}"),
+    };
+    let dims: Vec<String> = t.shape.iter().map(|n| n.to_string()).collect();
+    let shape = match dims.len() {
+        1 => format!("({},)", dims[0]),
+        _ => format!("({})", dims.join(", ")),
+    };
+    let mut header = format!("{{'descr': '{descr}', 'fortran_order': False, 'shape': {shape}, }}");
+    while (10 + header.len() + 1) % 64 != 0 {
+        header.push(' ');
+    }
+    header.push('\n');
+    let mut out = b"\x93NUMPY\x01\x00".to_vec();
+    out.extend((header.len() as u16).to_le_bytes());
+    out.extend(header.as_bytes());
+    out.extend(&t.bytes);
+    out
+}
+
+#[test]
+fn a_mask_the_resized_model_no_longer_has_is_left_out_of_every_container() {
+    // Window 7 on a 14x14 map with shift 3; at window 14 the window covers the map, the block
+    // no longer shifts and has no mask (common practice): the mask must go, everywhere.
+    let args = ["--grid", "14", "--window", "14"];
+    let mask = "layers.0.blocks.1.attn_mask";
+
+    // A sharded set: the mask in a shard of its own with a tensor that does not change.
+    let dir = tempfile::tempdir().unwrap();
+    let set = dir.path().join("set");
+    std::fs::create_dir(&set).unwrap();
+    let mut stage = shifted_stage();
+    let mask_tensor = stage.pop().unwrap();
+    write(&set, "a.safetensors", &stage, None);
+    let norm = floats("norm.weight", Dtype::F32, &[8], &[1.0; 8]);
+    write(&set, "b.safetensors", &[mask_tensor, norm], None);
+    let index = serde_json::json!({
+        "metadata": {"total_size": 0},
+        "weight_map": {
+            "layers.0.blocks.1.attn.relative_position_bias_table": "a.safetensors",
+            "layers.0.blocks.1.attn.relative_position_index": "a.safetensors",
+            mask: "b.safetensors",
+            "norm.weight": "b.safetensors",
+        }
+    });
+    std::fs::write(set.join("model.safetensors.index.json"), index.to_string()).unwrap();
+    let out = dir.path().join("out");
+    let mut all = vec!["resize", s(&set), "-o", s(&out)];
+    all.extend(args);
+    let r = run(&all);
+    assert_eq!(r.code, 0, "{}", r.stderr);
+    let index: serde_json::Value =
+        serde_json::from_slice(&std::fs::read(out.join("model.safetensors.index.json")).unwrap())
+            .unwrap();
+    let weight_map = index["weight_map"].as_object().unwrap();
+    assert!(!weight_map.contains_key(mask), "{weight_map:?}");
+    let mut held = Vec::new();
+    for shard in ["a.safetensors", "b.safetensors"] {
+        let bytes = std::fs::read(out.join(shard)).unwrap();
+        let st = safetensors::SafeTensors::deserialize(&bytes).unwrap();
+        for name in st.names() {
+            let name: &str = name;
+            assert_eq!(weight_map[name], shard, "{name} listed where it is");
+            held.push(name.to_string());
+        }
+    }
+    held.sort();
+    let mut listed: Vec<String> = weight_map.keys().cloned().collect();
+    listed.sort();
+    assert_eq!(held, listed, "the index lists exactly what the shards hold");
+
+    // An npz archive (members written with the zip crate, arrays by the npy rules).
+    let npz = dir.path().join("in.npz");
+    {
+        let mut zip = zip::ZipWriter::new(std::fs::File::create(&npz).unwrap());
+        let stored = zip::write::SimpleFileOptions::default()
+            .compression_method(zip::CompressionMethod::Stored);
+        for t in shifted_stage() {
+            zip.start_file(format!("{}.npy", t.name.replace('.', "/")), stored)
+                .unwrap();
+            std::io::Write::write_all(&mut zip, &npy(&t)).unwrap();
+        }
+        zip.finish().unwrap();
+    }
+    let npz_out = dir.path().join("out.npz");
+    let mut all = vec!["resize", s(&npz), "-o", s(&npz_out)];
+    all.extend(args);
+    let r = run(&all);
+    assert_eq!(r.code, 0, "{}", r.stderr);
+    let archive = zip::ZipArchive::new(std::fs::File::open(&npz_out).unwrap()).unwrap();
+    let mut members: Vec<String> = archive
+        .file_names()
+        .map(|n| n.unwrap().into_owned())
+        .collect();
+    members.sort();
+    assert_eq!(
+        members,
+        [
+            "layers/0/blocks/1/attn/relative_position_bias_table.npy",
+            "layers/0/blocks/1/attn/relative_position_index.npy"
+        ]
+    );
+
+    // A PyTorch file of the framework's own (`{"model": state dict, "epoch": 3}`): written back
+    // as the same tree, less the mask.
+    let pth = concat!(
+        env!("CARGO_MANIFEST_DIR"),
+        "/fixtures/kinds/window_mask_wrapped.pth"
+    );
+    let pth_out = dir.path().join("out.pth");
+    let mut all = vec!["resize", pth, "-o", s(&pth_out)];
+    all.extend(args);
+    let r = run(&all);
+    assert_eq!(r.code, 0, "{}", r.stderr);
+    let written = posgrid::checkpoint::Source::open(&pth_out).unwrap();
+    let torch = written
+        .downcast::<posgrid::checkpoint::torch::TorchFile>()
+        .unwrap();
+    assert_eq!(torch.root_keys(), ["model", "epoch"], "the tree is kept");
+    use posgrid::checkpoint::TensorSource;
+    let names: Vec<&str> = written.entries().iter().map(|t| t.name.as_str()).collect();
+    assert_eq!(
+        names,
+        [
+            "model/layers.0.blocks.1.attn.relative_position_bias_table",
+            "model/layers.0.blocks.1.attn.relative_position_index",
+            "model/norm.weight"
+        ]
+    );
+}

@@ -41,6 +41,10 @@ pub struct Output<'a> {
     /// posgrid's provenance (a JSON object); a writer adds a record already in its source
     /// under `previous`.
     pub provenance: serde_json::Value,
+    /// Source tensors the output leaves out because the resized model no longer has them (a
+    /// mask of a block whose window now covers its map). A writer that keeps the source's
+    /// structure (archive members, shard index, object tree) must leave them out of it too.
+    pub left_out: Vec<String>,
 }
 
 impl<'a> Output<'a> {
@@ -50,6 +54,7 @@ impl<'a> Output<'a> {
             source,
             entries: self.entries.iter().filter(|e| keep(e)).cloned().collect(),
             provenance: self.provenance.clone(),
+            left_out: self.left_out.clone(),
         }
     }
 
