@@ -163,6 +163,32 @@ pub fn build(ckpt: &dyn TensorSource, found: &Discovery, request: &Request) -> R
     Ok(plan)
 }
 
+/// Warnings for flags no tensor of the file follows (`--window`, `--frames`): a typo in a
+/// script should not pass for a resize.
+pub fn unused_flags(found: &Discovery, request: &Request) -> Vec<String> {
+    let mut out = Vec::new();
+    if let Some((h, w)) = request.window {
+        if !found.encodings.iter().any(|e| e.follows_window()) {
+            out.push(format!(
+                "--window {h}x{w}: no table of this file follows a window (window-relative tables with class rows and per-axis tables of global blocks follow the grid); ignored"
+            ));
+        }
+    }
+    if let Some(t) = request.frames {
+        let video = found.tables.iter().any(|t| t.frames.is_some());
+        let temporal = found
+            .encodings
+            .iter()
+            .any(|e| e.kind() == crate::kinds::Kind::Temporal);
+        if !video && !temporal {
+            out.push(format!(
+                "{t} frames asked for, but the file has no video grid or temporal table (a video table needs --source-grid TxHxW); ignored"
+            ));
+        }
+    }
+    out
+}
+
 fn no_table_message(found: &Discovery) -> String {
     let mut message = String::from("no position table on a 2-D patch grid found");
     if !found.skipped.is_empty() {
@@ -181,6 +207,19 @@ fn select<'a>(ckpt: &dyn TensorSource, found: &'a Discovery, name: &str) -> Resu
     let path = ckpt.source_path();
     if let Some(t) = found.table(name) {
         return Ok(t);
+    }
+    if let Some(owner) = found
+        .encodings
+        .iter()
+        .find(|e| e.companions().iter().any(|c| c == name))
+    {
+        return Err(Error::table(
+            path,
+            format!(
+                "\"{name}\" is rebuilt with \"{}\", not resized on its own; name that one with --tensor",
+                owner.name()
+            ),
+        ));
     }
     if let Some(a) = found.ambiguous.iter().find(|a| a.name == name) {
         return Err(Error::table(

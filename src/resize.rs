@@ -79,6 +79,9 @@ pub fn run(job: &ResizeJob) -> Result<ResizeReport> {
     let source = Source::open(&job.input)?;
     let mut found = kinds::discover(&source, &job.hints)?;
     found.warnings.extend(source.notes());
+    found
+        .warnings
+        .extend(plan::unused_flags(&found, &job.request));
     let format = job
         .format
         .or_else(|| Format::from_extension(&job.output))

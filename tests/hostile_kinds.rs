@@ -756,3 +756,29 @@ fn a_mask_the_resized_model_no_longer_has_is_left_out_of_every_container() {
         ]
     );
 }
+
+#[test]
+fn a_companion_named_alone_and_flags_no_table_follows_are_said_so() {
+    // The index buffer follows its table: naming it alone is answered with the table's name.
+    let input = Input::new(&window_block("layers.0.blocks.0", 7, 3, 1));
+    let index = "layers.0.blocks.0.attn.relative_position_index";
+    let r = input.resize(&["--grid", "16", "--window", "12", "--tensor", index]);
+    input.assert_refused(
+        &r,
+        4,
+        &[index, "layers.0.blocks.0.attn.relative_position_bias_table"],
+    );
+    // --window and --frames on a file with nothing that follows them: said, not silent.
+    let (cos, sin) = rotary(16, 16.0, 8, 10000.0);
+    let rope = Input::new(&[
+        floats("rope.freqs_cos", Dtype::F32, &[256, 16], &cos),
+        floats("rope.freqs_sin", Dtype::F32, &[256, 16], &sin),
+    ]);
+    let r = rope.resize(&["--grid", "24", "--window", "12", "--frames", "4"]);
+    assert_eq!(r.code, 0, "{}", r.stderr);
+    assert!(
+        r.stderr.contains("--window 12x12") && r.stderr.contains("4 frames"),
+        "{}",
+        r.stderr
+    );
+}

@@ -101,6 +101,24 @@ impl Encoding {
         }
     }
 
+    /// Buffers rebuilt with it (index buffers, masks, the other rotary buffer).
+    pub fn companions(&self) -> &[String] {
+        match self {
+            Encoding::Window(t) => &t.companions,
+            Encoding::Rotary(b) => &b.companions,
+            Encoding::Axial(_) | Encoding::Temporal(_) => &[],
+        }
+    }
+
+    /// Whether `--window` decides its target.
+    pub fn follows_window(&self) -> bool {
+        match self {
+            Encoding::Window(t) => t.follows == window::Follows::Window,
+            Encoding::Axial(t) => t.follows == axial::Span::Window,
+            Encoding::Rotary(_) | Encoding::Temporal(_) => false,
+        }
+    }
+
     pub fn kind(&self) -> Kind {
         match self {
             Encoding::Window(t) => t.kind,
