@@ -127,6 +127,7 @@ fn write_pth(input: &str, pth: &str) {
             .collect(),
         provenance: serde_json::json!({}),
         edits: Vec::new(),
+        left_out: Vec::new(),
     };
     let dest = Destination {
         path: std::path::Path::new(pth),

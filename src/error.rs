@@ -224,6 +224,11 @@ impl Error {
         }
     }
 
+    /// A request that does not fit this input: a usage error (exit 2) that names the file.
+    pub(crate) fn usage_in(path: &Path, message: impl std::fmt::Display) -> Self {
+        Error::Usage(format!("{}: {message}", path.display()))
+    }
+
     pub(crate) fn refused(path: &Path, message: impl Into<String>) -> Self {
         Error::Refused {
             path: path.to_path_buf(),

@@ -56,7 +56,7 @@ impl Target {
                     } else {
                         format!("{p}x{q}")
                     };
-                    return Err(Error::Usage(format!(
+                    return Err(Error::usage_in(path, format!(
                         "image {h}x{w} is not a whole number of {sides}-pixel patches (\"{name}\"); choose a multiple of {sides}"
                     )));
                 }
@@ -65,7 +65,7 @@ impl Target {
             Target::Scale(sy, sx) => {
                 let side = |n: usize, s: f64| {
                     crate::resample::try_scaled_side(n, s).map_err(|e| {
-                        Error::Usage(format!("\"{name}\": scale {s} of side {n}: {e}"))
+                        Error::usage_in(path, format!("\"{name}\": scale {s} of side {n}: {e}"))
                     })
                 };
                 Ok([side(old[0], sy)?, side(old[1], sx)?])
@@ -265,6 +265,35 @@ pub fn build(ckpt: &dyn TensorSource, found: &Discovery, request: &Request) -> R
     Ok(plan)
 }
 
+/// Warnings for flags no tensor of the file follows (`--window`, `--frames`): a typo in a
+/// script should not pass for a resize.
+pub fn unused_flags(found: &Discovery, request: &Request) -> Vec<String> {
+    let mut out = Vec::new();
+    if let Some((h, w)) = request.window {
+        if !found.encodings.iter().any(|e| e.follows_window()) {
+            out.push(format!(
+                "--window {h}x{w}: no table of this file follows a window (window-relative tables with class rows and per-axis tables of global blocks follow the grid); ignored"
+            ));
+        }
+    }
+    if let Some(frames) = request.frames {
+        let t = match frames {
+            Frames::Grid(t) | Frames::Input(t) => t,
+        };
+        let video = found.tables.iter().any(|t| t.frames.is_some());
+        let temporal = found
+            .encodings
+            .iter()
+            .any(|e| e.kind() == crate::kinds::Kind::Temporal);
+        if !video && !temporal {
+            out.push(format!(
+                "{t} frames asked for, but the file has no video grid or temporal table (a video table needs --source-grid TxHxW); ignored"
+            ));
+        }
+    }
+    out
+}
+
 fn no_table_message(found: &Discovery) -> String {
     let mut message = String::from("no position table on a 2-D patch grid found");
     if !found.skipped.is_empty() {
@@ -283,6 +312,19 @@ fn select<'a>(ckpt: &dyn TensorSource, found: &'a Discovery, name: &str) -> Resu
     let path = ckpt.source_path();
     if let Some(t) = found.table(name) {
         return Ok(t);
+    }
+    if let Some(owner) = found
+        .encodings
+        .iter()
+        .find(|e| e.companions().iter().any(|c| c == name))
+    {
+        return Err(Error::table(
+            path,
+            format!(
+                "\"{name}\" is rebuilt with \"{}\", not resized on its own; name that one with --tensor",
+                owner.name()
+            ),
+        ));
     }
     if let Some(a) = found.ambiguous.iter().find(|a| a.name == name) {
         return Err(Error::table(

@@ -35,7 +35,8 @@ impl ScanReport {
         }
     }
 
-    /// Whether a script should treat the scan as a failure: nothing found, or ambiguity.
+    /// Whether a script should treat the scan as a success: some grid-dependent tensor found
+    /// (of any kind), and nothing ambiguous.
     pub fn is_conclusive(&self) -> bool {
         let d = &self.discovery;
         !(d.tables.is_empty() && d.encodings.is_empty()) && d.ambiguous.is_empty()

@@ -91,6 +91,9 @@ pub fn run(job: &ResizeJob) -> Result<ResizeReport> {
     };
     let mut found = kinds::discover(&source, &hints)?;
     found.warnings.extend(source.notes());
+    found
+        .warnings
+        .extend(plan::unused_flags(&found, &job.request));
     let format = job
         .format
         .or_else(|| Format::from_extension(&job.output))
@@ -199,6 +202,7 @@ fn output_of<'a>(
             .collect(),
         provenance: provenance(plan),
         edits: Vec::new(),
+        left_out: drops.iter().map(|n| n.to_string()).collect(),
     }
 }
 

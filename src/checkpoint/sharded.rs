@@ -319,12 +319,17 @@ impl SetWriter {
             .enumerate()
             .map(|(i, (_, ckpt))| {
                 let part = out.restricted(ckpt, |e| set.shard_of(&e.origin.name) == Some(i));
-                let changed = part.changes_anything();
+                // A shard that loses a tensor the resized model no longer has changes too.
+                let loses = |name: &String| set.shard_of(name) == Some(i);
+                let changed = part.changes_anything() || out.left_out.iter().any(loses);
                 (part, changed)
             })
             .collect();
         let total_size: u64 = out.entries.iter().map(|e| e.byte_len()).sum();
         let mut index = set.index.clone();
+        if let Some(Value::Object(weight_map)) = index.get_mut("weight_map") {
+            weight_map.retain(|name, _| !out.left_out.contains(name));
+        }
         let metadata = index
             .entry("metadata")
             .or_insert_with(|| Value::Object(Default::default()));

@@ -44,6 +44,10 @@ pub struct Output<'a> {
     /// New contents for side files of a set or model directory (configuration files updated
     /// to the new size); the others are copied as they are.
     pub edits: Vec<(std::path::PathBuf, Vec<u8>)>,
+    /// Source tensors the output leaves out because the resized model no longer has them (a
+    /// mask of a block whose window now covers its map). A writer that keeps the source's
+    /// structure (archive members, shard index, object tree) must leave them out of it too.
+    pub left_out: Vec<String>,
 }
 
 impl<'a> Output<'a> {
@@ -54,6 +58,7 @@ impl<'a> Output<'a> {
             entries: self.entries.iter().filter(|e| keep(e)).cloned().collect(),
             provenance: self.provenance.clone(),
             edits: self.edits.clone(),
+            left_out: self.left_out.clone(),
         }
     }
 

@@ -199,8 +199,19 @@ pub fn plan(
     if to == table.span {
         return Ok(None);
     }
-    let rows = 2 * to - 1;
-    let needed = (rows as u64 * table.channels as u64).saturating_mul(32);
+    if to == 0 {
+        return Err(Error::usage_in(
+            path,
+            format!("\"{}\": a span must be at least 1", table.name),
+        ));
+    }
+    let rows = to
+        .checked_mul(2)
+        .map(|n| n - 1)
+        .ok_or_else(|| super::too_large(path, &table.name, &format!("span {to}")))?;
+    let needed = (rows as u64)
+        .saturating_mul(table.channels as u64)
+        .saturating_mul(32);
     if needed > request.memory_limit {
         return Err(Error::refused(
             path,
@@ -292,6 +303,8 @@ impl Change for AxialChange {
     }
 
     fn needed_bytes(&self) -> u64 {
-        (self.new_shape[0] as u64 * self.table.channels as u64).saturating_mul(32)
+        (self.new_shape[0] as u64)
+            .saturating_mul(self.table.channels as u64)
+            .saturating_mul(32)
     }
 }

@@ -110,6 +110,24 @@ impl Encoding {
         }
     }
 
+    /// Buffers rebuilt with it (index buffers, masks, the other rotary buffer).
+    pub fn companions(&self) -> &[String] {
+        match self {
+            Encoding::Window(t) => &t.companions,
+            Encoding::Rotary(b) => &b.companions,
+            Encoding::Axial(_) | Encoding::Temporal(_) | Encoding::Patch(_) => &[],
+        }
+    }
+
+    /// Whether `--window` decides its target.
+    pub fn follows_window(&self) -> bool {
+        match self {
+            Encoding::Window(t) => t.follows == window::Follows::Window,
+            Encoding::Axial(t) => t.follows == axial::Span::Window,
+            Encoding::Rotary(_) | Encoding::Temporal(_) | Encoding::Patch(_) => false,
+        }
+    }
+
     pub fn kind(&self) -> Kind {
         match self {
             Encoding::Window(t) => t.kind,
@@ -339,6 +357,15 @@ pub trait Change: std::fmt::Debug + Send + Sync {
     }
 }
 
+/// The refusal for a target whose size does not fit a 64-bit count: no machine could hold it,
+/// and a wrapped count would slip past every later check.
+pub(crate) fn too_large(path: &std::path::Path, name: &str, target: &str) -> crate::error::Error {
+    crate::error::Error::refused(
+        path,
+        format!("resizing \"{name}\" to {target}: too large (its size overflows a 64-bit count); choose a smaller target"),
+    )
+}
+
 /// Refuse a tensor holding NaN or infinity (`after`: where the values come from, for the
 /// message), unless the user allowed them.
 pub(crate) fn refuse_nonfinite(
@@ -370,8 +397,12 @@ pub(crate) fn stretch_rows(
     use crate::values;
     let what = format!("resizing \"{}\"", entry.name);
     let value_error = |e| values::value_error(path, &what, e);
-    let usage =
-        |e: crate::resample::ResampleError| crate::error::Error::Usage(format!("{what}: {e}"));
+    let oom = |e| values::out_of_memory(path, &what, e);
+    // The target decides how much the engine allocates: running out is a refusal (exit 6).
+    let usage = |e| match e {
+        crate::resample::ResampleError::OutOfMemory { bytes } => oom(values::OutOfMemory { bytes }),
+        other => crate::error::Error::usage_in(path, format!("{what}: {other}")),
+    };
     let c = *entry.shape.last().unwrap_or(&1);
     let from = entry.shape.iter().product::<usize>() / c.max(1);
     // One axis: a `[rows, 1]` grid of `c` channels.
@@ -380,8 +411,8 @@ pub(crate) fn stretch_rows(
         let v = values::decode_f64(entry.dtype, raw).map_err(value_error)?;
         let r = crate::resample::resample(&v, (from, 1), c, (to, 1), options).map_err(usage)?;
         let bytes = values::encode_f64(entry.dtype, &r).map_err(value_error)?;
-        let narrow = |x: &[f64]| x.iter().map(|v| *v as f32).collect::<Vec<f32>>();
-        (bytes, narrow(&v), narrow(&r))
+        let narrow = |x: &[f64]| values::try_collect(x.len(), x.iter().map(|v| *v as f32));
+        (bytes, narrow(&v).map_err(oom)?, narrow(&r).map_err(oom)?)
     } else {
         let v = values::decode_f32(entry.dtype, raw).map_err(value_error)?;
         let r = resample(&v).map_err(usage)?;

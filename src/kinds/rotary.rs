@@ -13,7 +13,7 @@ use super::{Encoding, Hints, Images, Kind, Skipped};
 use crate::checkpoint::{Dtype, TensorEntry, TensorSource};
 use crate::error::{Error, Result};
 use crate::plan::Request;
-use crate::rebuild::rotary::{self, RotaryParams, Which};
+use crate::rebuild::rotary::{self, RotaryParams, RoundParameters, Which};
 use crate::values;
 
 /// Buffers larger than this are not read (bounded memory).
@@ -155,10 +155,21 @@ fn examine(
             .map_err(|err| values::value_error(source.source_path(), &e.name, err))
     };
     let tol = value_tolerance(main.dtype);
+    // Half-precision values cannot pin the last digits of θ and L: round ones that fit win.
+    let round = match main.dtype {
+        Dtype::F16 | Dtype::BF16 => RoundParameters::WhenTheyFit,
+        _ => RoundParameters::IfEstimateFails,
+    };
     let params = match (cos, sin) {
-        (Some(c), Some(s)) => rotary::recognise_pair(&read(c)?, &read(s)?, rows, width, tol),
-        (Some(c), None) => rotary::recognise(&read(c)?, rows, width, Which::Cos, tol),
-        (None, Some(s)) => rotary::recognise(&read(s)?, rows, width, Which::Sin, tol),
+        (Some(c), Some(s)) => {
+            rotary::recognise_pair_rounding(&read(c)?, &read(s)?, rows, width, tol, round)
+        }
+        (Some(c), None) => {
+            rotary::recognise_rounding(&read(c)?, rows, width, Which::Cos, tol, round)
+        }
+        (None, Some(s)) => {
+            rotary::recognise_rounding(&read(s)?, rows, width, Which::Sin, tol, round)
+        }
         (None, None) => None,
     };
     Ok(params.ok_or_else(|| {
@@ -184,7 +195,7 @@ pub fn plan(
     let path = ckpt.source_path();
     let [h, w] = request.grid_for(path, &b.name, b.grid, b.patch)?;
     if h != w {
-        return Err(Error::Usage(format!(
+        return Err(Error::usage_in(path, format!(
             "\"{}\": rotary buffers of the 2-D construction hold a square grid; {h}x{w} is not square",
             b.name
         )));
@@ -192,8 +203,13 @@ pub fn plan(
     if [h, w] == b.grid {
         return Ok(None);
     }
-    let new_shape = vec![h * w, 2 * b.axis_dim];
-    let needed = (h as u64 * w as u64 * 2 * b.axis_dim as u64).saturating_mul(40);
+    let cells = h
+        .checked_mul(w)
+        .ok_or_else(|| super::too_large(path, &b.name, &format!("{h}x{w}")))?;
+    let new_shape = vec![cells, 2 * b.axis_dim];
+    let needed = (cells as u64)
+        .saturating_mul(2 * b.axis_dim as u64)
+        .saturating_mul(40);
     if needed > request.memory_limit {
         return Err(Error::refused(
             path,
@@ -263,9 +279,11 @@ impl Change for RotaryChange {
         } else {
             &sin
         };
+        let after = values::try_collect(after.len(), after.iter().map(|x| *x as f32))
+            .map_err(|e| values::out_of_memory(path, &format!("rebuilding \"{}\"", b.name), e))?;
         out.images = Some(Images {
             before,
-            after: after.iter().map(|x| *x as f32).collect(),
+            after,
             from: b.grid,
             to: self.to,
             width: 2 * b.axis_dim,
@@ -313,7 +331,9 @@ impl Change for RotaryChange {
     }
 
     fn needed_bytes(&self) -> u64 {
-        (self.new_shape[0] as u64 * self.new_shape[1] as u64).saturating_mul(40)
+        (self.new_shape[0] as u64)
+            .saturating_mul(self.new_shape[1] as u64)
+            .saturating_mul(40)
     }
 
     fn grid_change(&self) -> Option<([usize; 2], [usize; 2], usize)> {

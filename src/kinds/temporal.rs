@@ -88,6 +88,7 @@ pub fn plan(
     t: &TemporalTable,
     request: &Request,
 ) -> Result<Option<TemporalChange>> {
+    let path = ckpt.source_path();
     let Some(frames) = request.frames else {
         return Ok(None);
     };
@@ -96,11 +97,11 @@ pub fn plan(
         return Ok(None);
     }
     resample::validate((t.frames, 1), (to, 1), &request.options)
-        .map_err(|e| Error::Usage(format!("{}: {e}", t.name)))?;
-    let needed = (to as u64 * t.dim as u64).saturating_mul(32);
+        .map_err(|e| Error::usage_in(path, format!("{}: {e}", t.name)))?;
+    let needed = (to as u64).saturating_mul(t.dim as u64).saturating_mul(32);
     if needed > request.memory_limit {
         return Err(Error::refused(
-            ckpt.source_path(),
+            path,
             format!(
                 "resizing \"{}\" to {to} frames needs about {} MiB, over the {} MiB guard; raise it with --memory-limit",
                 t.name,
@@ -203,6 +204,8 @@ impl Change for TemporalChange {
     }
 
     fn needed_bytes(&self) -> u64 {
-        (self.to as u64 * self.table.dim as u64).saturating_mul(32)
+        (self.to as u64)
+            .saturating_mul(self.table.dim as u64)
+            .saturating_mul(32)
     }
 }

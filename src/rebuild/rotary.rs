@@ -9,8 +9,12 @@
 //! Recognising a buffer reads the angles of cell `(0, 1)` (whose column half holds `L/G·f_k`),
 //! fits `L/G` and `θ` to their logarithms (weighted by how precisely each angle can be read
 //! back), refines the fit with cell `(0, G−1)`, snaps both to integers when within 1e-6, and
-//! then checks every value. Angles of cell `(0, 1)` must be readable without ambiguity: at most
-//! π from a cosine buffer or from both buffers, at most π/2 from a sine buffer alone (that is,
+//! then checks every value. When the estimate does not fit (its last digits carry the values'
+//! noise), or the values are stored so coarsely (F16, BF16) that they cannot pin those digits,
+//! θ and L rounded to fewer significant digits (within 1% of the estimate, roundest first) are
+//! tried: parameters that fit are the construction within the tolerance.
+//!
+//! Angles of cell `(0, 1)` must be readable without ambiguity: at most π from a cosine buffer or from both buffers, at most π/2 from a sine buffer alone (that is,
 //! `L/G` within those bounds); past them a buffer is usually reported as not fitting. Only a
 //! buffer with very little structure — a 2×2 or 3×3 grid, or two frequencies per axis — can
 //! then match other parameters that reproduce it exactly at this grid (an alias); the sizes
@@ -141,7 +145,8 @@ pub fn fits(
         return false;
     }
     let angles = Angles::new(grid, params);
-    values.chunks_exact(width).enumerate().all(|(cell, row)| {
+    let cell_fits = |cell: usize| {
+        let row = &values[cell * width..][..width];
         row.iter().enumerate().all(|(col, &v)| {
             let a = angles.at(cell, col);
             let expected = match which {
@@ -150,7 +155,21 @@ pub fn fits(
             };
             (v - expected).abs() <= tol
         })
-    })
+    };
+    // The far cells first: their angles are the largest, so parameters that are slightly off
+    // fail there at once, and trying several candidates costs little.
+    let far = [grid - 1, grid * (grid - 1), rows - 1];
+    far.into_iter().all(cell_fits) && (0..rows).all(cell_fits)
+}
+
+/// When integer θ and L near the estimate are taken instead of it.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum RoundParameters {
+    /// Only when the estimate itself does not fit (its last digits carry the values' noise).
+    IfEstimateFails,
+    /// Whenever they fit: for values stored so coarsely (F16, BF16) that the estimate cannot
+    /// pin the last digits, and the model's own round parameters fit as well.
+    WhenTheyFit,
 }
 
 /// The parameters whose `which` buffer `values` (`[rows, width]`) is, within `tol` (the
@@ -162,13 +181,32 @@ pub fn recognise(
     which: Which,
     tol: f64,
 ) -> Option<RotaryParams> {
+    recognise_rounding(
+        values,
+        rows,
+        width,
+        which,
+        tol,
+        RoundParameters::IfEstimateFails,
+    )
+}
+
+/// As [`recognise`], choosing when round parameters are taken.
+pub fn recognise_rounding(
+    values: &[f64],
+    rows: usize,
+    width: usize,
+    which: Which,
+    tol: f64,
+    round: RoundParameters,
+) -> Option<RotaryParams> {
     let grid = grid_of(values.len(), rows, width)?;
     let read = |index: usize| match which {
         Which::Cos => Reading::Cos(values[index]),
         Which::Sin => Reading::Sin(values[index]),
     };
     let params = estimate(grid, width, read)?;
-    fits(values, rows, width, which, &params, tol).then_some(params)
+    settle(params, round, |p| fits(values, rows, width, which, p, tol))
 }
 
 /// As [`recognise`], with both buffers at hand (angles read back with `atan2`).
@@ -179,14 +217,92 @@ pub fn recognise_pair(
     width: usize,
     tol: f64,
 ) -> Option<RotaryParams> {
+    recognise_pair_rounding(cos, sin, rows, width, tol, RoundParameters::IfEstimateFails)
+}
+
+/// As [`recognise_pair`], choosing when round parameters are taken.
+pub fn recognise_pair_rounding(
+    cos: &[f64],
+    sin: &[f64],
+    rows: usize,
+    width: usize,
+    tol: f64,
+    round: RoundParameters,
+) -> Option<RotaryParams> {
     let grid = grid_of(cos.len(), rows, width)?;
     if sin.len() != cos.len() {
         return None;
     }
     let params = estimate(grid, width, |index| Reading::Both(cos[index], sin[index]))?;
-    let fits_both = fits(cos, rows, width, Which::Cos, &params, tol)
-        && fits(sin, rows, width, Which::Sin, &params, tol);
-    fits_both.then_some(params)
+    settle(params, round, |p| {
+        fits(cos, rows, width, Which::Cos, p, tol) && fits(sin, rows, width, Which::Sin, p, tol)
+    })
+}
+
+/// The estimate or, as `round` says, round θ and L near it — whichever fits the values.
+/// Round parameters that fit are the construction within the tolerance, so taking them is no
+/// guess; they are only sought within 1% of the estimate, the roundest first.
+fn settle(
+    estimate: RotaryParams,
+    round: RoundParameters,
+    fits: impl Fn(&RotaryParams) -> bool,
+) -> Option<RotaryParams> {
+    let estimate_fits = fits(&estimate);
+    if estimate_fits && round == RoundParameters::IfEstimateFails {
+        return Some(estimate);
+    }
+    let rounded = round_candidates(&estimate).into_iter().find(|p| fits(p));
+    rounded.or(estimate_fits.then_some(estimate))
+}
+
+/// θ and L rounded to 1 to 6 significant digits (each within 1% of the estimate, or kept as
+/// estimated), fewest digits first, the estimate itself left out.
+fn round_candidates(p: &RotaryParams) -> Vec<RotaryParams> {
+    let with_estimate = |v: f64| {
+        let mut list = round_values(v);
+        list.push((v, usize::MAX / 4));
+        list
+    };
+    let mut pairs = Vec::new();
+    for (theta, a) in with_estimate(p.theta) {
+        for &(side, b) in &with_estimate(p.pretrain_side) {
+            let candidate = RotaryParams {
+                theta,
+                pretrain_side: side,
+                axis_dim: p.axis_dim,
+            };
+            if candidate != *p {
+                pairs.push((a + b, candidate));
+            }
+        }
+    }
+    pairs.sort_by_key(|(digits, _)| *digits);
+    pairs.into_iter().map(|(_, c)| c).collect()
+}
+
+/// `v` rounded to 1 to 6 significant digits, within 1% of `v`, with the digits used.
+fn round_values(v: f64) -> Vec<(f64, usize)> {
+    let mut out: Vec<(f64, usize)> = Vec::new();
+    if !(v.is_finite() && v > 0.0) {
+        return out;
+    }
+    let magnitude = v.log10().floor() as i32;
+    for digits in 1..=6 {
+        // Scaled by an exact power of ten, so 16 comes back as 16, not 16.000000000000004.
+        let exponent = digits - 1 - magnitude;
+        let r = if exponent >= 0 {
+            let scale = 10f64.powi(exponent);
+            (v * scale).round() / scale
+        } else {
+            let step = 10f64.powi(-exponent);
+            (v / step).round() * step
+        };
+        let close = r > 0.0 && ((v - r) / v).abs() <= 0.01;
+        if close && !out.iter().any(|(x, _)| *x == r) {
+            out.push((r, digits as usize));
+        }
+    }
+    out
 }
 
 /// The grid side of a `[rows, width]` buffer of `len` values: rows must be a square of at

@@ -125,10 +125,21 @@ fn patch(src: &Npz, out: &Output, file: &mut AtomicFile) -> Result<()> {
             Some((src.members()[i].index, e))
         })
         .collect();
+    // Members of tensors the resized model no longer has are not copied.
+    let left_out: Vec<usize> = src
+        .entries()
+        .iter()
+        .zip(src.members())
+        .filter(|(t, _)| out.left_out.contains(&t.name))
+        .map(|(_, m)| m.index)
+        .collect();
     let mut zip = zip_writer(file)?;
     let mut archive = src.archive();
     for index in 0..archive.len() {
         check_interrupt(file.final_path())?;
+        if left_out.contains(&index) {
+            continue;
+        }
         match by_member.get(&index) {
             Some(entry) => {
                 let m = src

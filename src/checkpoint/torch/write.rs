@@ -68,7 +68,7 @@ impl Writer for TorchWriter {
         // A tree written back keeps every storage as it is; only a fresh dict needs a typed
         // storage class per tensor.
         if let Some(src) = out.source.as_any().downcast_ref::<TorchFile>() {
-            if same_tensors(src, out) {
+            if same_names(src, out) {
                 return Ok(());
             }
         }
@@ -118,15 +118,20 @@ fn notes(out: &Output) -> Vec<String> {
 /// The records of the output, in order.
 fn records<'a>(out: &'a Output<'a>) -> Result<Vec<RecordOut<'a>>> {
     match out.source.as_any().downcast_ref::<TorchFile>() {
-        Some(src) if same_tensors(src, out) => patched(src, out),
+        Some(src) if same_names(src, out) => patched(src, out),
         _ => fresh(out),
     }
 }
 
-/// Whether the output holds exactly the source's tensors, under the same names.
-fn same_tensors(src: &TorchFile, out: &Output) -> bool {
+/// Whether the output holds the source's tensors under their own names, but for those the
+/// resized model no longer has, so the source's tree can be written back.
+fn same_names(src: &TorchFile, out: &Output) -> bool {
     use crate::checkpoint::TensorSource;
-    src.entries().len() == out.entries.len() && out.entries.iter().all(|e| e.name == e.origin.name)
+    src.entries().len() == out.entries.len() + out.left_out.len()
+        && out
+            .entries
+            .iter()
+            .all(|e| e.name == e.origin.name && !out.left_out.contains(&e.name))
 }
 
 /// C-order strides of a shape.
@@ -173,10 +178,11 @@ fn patched<'a>(src: &'a TorchFile, out: &'a Output<'a>) -> Result<Vec<RecordOut<
         .iter()
         .filter_map(|r| r.name.strip_prefix(&storage_prefix).map(str::to_string))
         .collect();
+    leave_out(src, out, &mut tree)?;
     let mut new_storages: Vec<(String, &[u8])> = Vec::new();
     for entry in &out.entries {
         let Some(bytes) = entry.new else { continue };
-        let (_, tensor) = src.nodes_of(&entry.name).expect("checked by same_tensors");
+        let (_, tensor) = src.nodes_of(&entry.name).expect("checked by same_names");
         let key = fresh_key(&mut taken);
         let elem = (entry.dtype().bitsize() / 8).max(1) as u64;
         retarget(&mut tree, tensor, &key, &entry.shape, elem);
@@ -222,6 +228,33 @@ fn patched<'a>(src: &'a TorchFile, out: &'a Output<'a>) -> Result<Vec<RecordOut<
     });
     records.splice(at..at, new_records);
     Ok(records)
+}
+
+/// Remove the source tensors the output leaves out from every dict that holds them; their
+/// storages are then unused and not copied. A tensor also held elsewhere (a list, an object's
+/// arguments) cannot be removed without changing the rest of the tree: refused.
+fn leave_out(src: &TorchFile, out: &Output, tree: &mut Pickle) -> Result<()> {
+    let left: Vec<(&str, NodeId)> = out
+        .left_out
+        .iter()
+        .filter_map(|name| Some((name.as_str(), src.nodes_of(name)?.0)))
+        .collect();
+    if left.is_empty() {
+        return Ok(());
+    }
+    for node in &mut tree.nodes {
+        if let Node::Dict { items, .. } = node {
+            items.retain(|(_, value)| !left.iter().any(|(_, id)| id == value));
+        }
+    }
+    let reachable = tree.reachable();
+    match left.iter().find(|(_, id)| reachable[*id]) {
+        Some((name, _)) => Err(Error::table(
+            src.path(),
+            format!("\"{name}\" must be left out of the output, but it is held by something other than a dict; write a .safetensors output instead"),
+        )),
+        None => Ok(()),
+    }
 }
 
 /// Point a tensor node at a new storage `key` holding `shape` in C order.

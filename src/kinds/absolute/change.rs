@@ -67,15 +67,23 @@ pub fn plan(
         return Ok(None);
     }
     resample::validate((from[0], from[1]), (to[0], to[1]), &request.options)
-        .map_err(|e| Error::Usage(format!("{}: {e}", table.name)))?;
+        .map_err(|e| Error::usage_in(path, format!("{}: {e}", table.name)))?;
     let (t_from, t_to) = frames.unwrap_or((1, 1));
     if t_to == 0 {
-        return Err(Error::Usage(format!(
-            "{}: frames must be at least 1",
-            table.name
-        )));
+        return Err(Error::usage_in(
+            path,
+            format!("{}: frames must be at least 1", table.name),
+        ));
     }
-    let rows = table.slots + t_to * to[0] * to[1];
+    let target = match frames {
+        Some(_) => format!("{t_to}x{}x{}", to[0], to[1]),
+        None => format!("{}x{}", to[0], to[1]),
+    };
+    let rows = t_to
+        .checked_mul(to[0])
+        .and_then(|n| n.checked_mul(to[1]))
+        .and_then(|n| n.checked_add(table.slots))
+        .ok_or_else(|| crate::kinds::too_large(path, &table.name, &target))?;
     let new_shape = match table.layout {
         Layout::BatchRows => vec![1, rows, table.dim],
         Layout::Rows => vec![rows, table.dim],
@@ -87,10 +95,8 @@ pub fn plan(
         return Err(Error::refused(
             path,
             format!(
-                "resizing \"{}\" to {}x{} needs about {} MiB, over the {} MiB guard; raise it with --memory-limit",
+                "resizing \"{}\" to {target} needs about {} MiB, over the {} MiB guard; raise it with --memory-limit",
                 table.name,
-                to[0],
-                to[1],
                 needed >> 20,
                 request.memory_limit >> 20
             ),
@@ -377,7 +383,7 @@ fn resample_error(path: &Path, t: &Table, e: resample::ResampleError) -> Error {
             &format!("resizing \"{}\"", t.name),
             values::OutOfMemory { bytes },
         ),
-        other => Error::Usage(format!("{}: {other}", t.name)),
+        other => Error::usage_in(path, format!("{}: {other}", t.name)),
     }
 }
 

@@ -282,7 +282,12 @@ fn examine(
         }
         vec![(0, g)]
     } else if let (Some((h, w)), Some(t)) = (hints.source_grid, hints.source_frames) {
-        match rows.checked_sub(t * h * w) {
+        // A product past a 64-bit count explains no table (wrapped, it could seem to).
+        match t
+            .checked_mul(h)
+            .and_then(|n| n.checked_mul(w))
+            .and_then(|n| rows.checked_sub(n))
+        {
             Some(s) if s <= MAX_SLOTS && hints.slots.is_none_or(|hs| hs == s) => {
                 frames = Some(t);
                 vec![(s, (h, w))]
@@ -308,7 +313,7 @@ fn examine(
             }),
         });
     } else if let Some((h, w)) = hints.source_grid {
-        match rows.checked_sub(h * w) {
+        match h.checked_mul(w).and_then(|n| rows.checked_sub(n)) {
             Some(s) if s <= MAX_SLOTS && hints.slots.is_none_or(|hs| hs == s) => vec![(s, (h, w))],
             _ => {
                 return Ok(Verdict::Skip(format!(

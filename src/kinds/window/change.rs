@@ -11,6 +11,7 @@ use crate::kinds::{refuse_nonfinite, Change, ChangeReport, Computed, Images};
 use crate::plan::{Relative, Request};
 use crate::rebuild::relative_index::{self, IndexLayout};
 use crate::rebuild::shift_mask::{self, MaskLayout};
+use crate::rebuild::HARD_ELEMENT_LIMIT;
 use crate::resample::{self, geometric, Options};
 use crate::values;
 
@@ -54,6 +55,15 @@ pub fn plan(
 ) -> Result<Option<WindowChange>> {
     let path = ckpt.source_path();
     let to = target_window(path, table, request)?;
+    if let (true, Some(m)) = (to != table.window, table.unusable_masks.first()) {
+        return Err(Error::refused(
+            path,
+            format!(
+                "\"{}\" cannot change window: the mask \"{}\" of its block cannot be rebuilt ({}), and kept as it is it would not fit the new window",
+                table.name, m.name, m.reason
+            ),
+        ));
+    }
     let masks = table
         .masks
         .iter()
@@ -66,27 +76,44 @@ pub fn plan(
     if to == table.window && !masks_change {
         return Ok(None);
     }
-    let side = |w: [usize; 2]| [2 * w[0] - 1, 2 * w[1] - 1];
-    let (from_side, to_side) = (side(table.window), side(to));
+    let target = format!("window {}x{}", to[0], to[1]);
+    let too_large = || crate::kinds::too_large(path, &table.name, &target);
+    let (from_side, to_side) = (
+        offsets_side(table.window).ok_or_else(too_large)?,
+        offsets_side(to).ok_or_else(too_large)?,
+    );
     let geometric = request.relative == Relative::Geometric && to != table.window;
     if geometric && (from_side[0] != from_side[1] || to_side[0] != to_side[1]) {
-        return Err(Error::Usage(format!(
-            "{}: --relative geometric needs square windows ({}x{} -> {}x{})",
-            table.name, table.window[0], table.window[1], to[0], to[1]
-        )));
+        return Err(Error::usage_in(
+            path,
+            format!(
+                "{}: --relative geometric needs square windows ({}x{} -> {}x{})",
+                table.name, table.window[0], table.window[1], to[0], to[1]
+            ),
+        ));
     }
     resample::validate(
         (from_side[0], from_side[1]),
         (to_side[0], to_side[1]),
         &request.options,
     )
-    .map_err(|e| Error::Usage(format!("{}: {e}", table.name)))?;
+    .map_err(|e| Error::usage_in(path, format!("{}: {e}", table.name)))?;
     let class = if table.class_rows { CLASS_ROWS } else { 0 };
-    let rows = to_side[0] * to_side[1] + class;
-    let index_shape = table.index.as_ref().map(|_| {
-        let n = to[0] * to[1] + usize::from(table.class_rows);
-        vec![n, n]
-    });
+    let rows = to_side[0]
+        .checked_mul(to_side[1])
+        .and_then(|n| n.checked_add(class))
+        .ok_or_else(too_large)?;
+    let index_shape = match table.index {
+        Some(_) => {
+            let n = to[0]
+                .checked_mul(to[1])
+                .and_then(|n| n.checked_add(usize::from(table.class_rows)))
+                .ok_or_else(too_large)?;
+            Some(vec![n, n])
+        }
+        None => None,
+    };
+    refuse_narrow_index(ckpt, table, rows, to)?;
     let needed = needed_bytes(table, rows, &index_shape, &masks);
     if needed > request.memory_limit {
         return Err(Error::refused(
@@ -141,7 +168,14 @@ fn mask_change(
     let mut map = [0; 2];
     for axis in 0..2 {
         let (g, g2, side) = (grid[axis], new_grid[axis], m.map[axis]);
-        if g % side != 0 || (g2 * side) % g != 0 {
+        let Some(scaled) = g2.checked_mul(side) else {
+            return Err(crate::kinds::too_large(
+                path,
+                &m.name,
+                &format!("patch grid {}x{}", new_grid[0], new_grid[1]),
+            ));
+        };
+        if g % side != 0 || scaled % g != 0 {
             return Err(Error::table(
                 path,
                 format!(
@@ -150,25 +184,65 @@ fn mask_change(
                 ),
             ));
         }
-        map[axis] = g2 * side / g;
+        map[axis] = scaled / g;
     }
     if map[0] % window[0] != 0 || map[1] % window[1] != 0 {
-        return Err(Error::Usage(format!(
+        return Err(Error::usage_in(path, format!(
             "\"{}\": the new {}x{} feature map does not split into {}x{} windows; choose a window that divides it",
             m.name, map[0], map[1], window[0], window[1]
         )));
     }
     let layout = mask_layout(map, window);
     let shifted = layout.effective_shift() != (0, 0);
+    let new_shape = match shifted {
+        true => Some(mask_shape(map, window).ok_or_else(|| {
+            crate::kinds::too_large(path, &m.name, &format!("feature map {}x{}", map[0], map[1]))
+        })?),
+        false => None,
+    };
     Ok(MaskChange {
         name: m.name.clone(),
         map,
         layout: shifted.then_some(layout),
-        new_shape: shifted.then(|| {
-            let cells = window[0] * window[1];
-            vec![(map[0] / window[0]) * (map[1] / window[1]), cells, cells]
-        }),
+        new_shape,
     })
+}
+
+/// The rebuilt index keeps its buffer's dtype, which must hold every row number of the new
+/// table (a U8 index of window 7 cannot index the 529 rows of window 12).
+fn refuse_narrow_index(
+    ckpt: &dyn TensorSource,
+    table: &WindowTable,
+    rows: usize,
+    to: [usize; 2],
+) -> Result<()> {
+    let Some(index) = table.index.as_deref().and_then(|name| ckpt.find(name)) else {
+        return Ok(());
+    };
+    if values::range_fits(index.dtype, rows) {
+        return Ok(());
+    }
+    Err(Error::refused(
+        ckpt.source_path(),
+        format!(
+            "index buffer \"{}\" ({}) cannot hold the row numbers of \"{}\" at window {}x{} ({rows} rows); choose a smaller window",
+            index.name, index.dtype, table.name, to[0], to[1]
+        ),
+    ))
+}
+
+/// The sides `[2Wh−1, 2Ww−1]` of a window's grid of offsets (`None` past a 64-bit count).
+fn offsets_side(w: [usize; 2]) -> Option<[usize; 2]> {
+    let side = |n: usize| n.checked_mul(2)?.checked_sub(1);
+    Some([side(w[0])?, side(w[1])?])
+}
+
+/// `[nW, N, N]` of a mask of `window` over `map` (`None` past a 64-bit count).
+fn mask_shape(map: [usize; 2], window: [usize; 2]) -> Option<Vec<usize>> {
+    let windows = (map[0] / window[0]).checked_mul(map[1] / window[1])?;
+    let cells = window[0].checked_mul(window[1])?;
+    cells.checked_mul(cells)?.checked_mul(windows)?;
+    Some(vec![windows, cells, cells])
 }
 
 /// The table's working copies (f32/f64) and output, the index buffer and masks.
@@ -180,7 +254,9 @@ fn needed_bytes(
 ) -> u64 {
     let elem = t.dtype.bitsize() as u64 / 8;
     let cells = |shape: &[usize]| shape.iter().fold(1u64, |a, &n| a.saturating_mul(n as u64));
-    let table = (rows as u64 * t.heads as u64).saturating_mul(elem + 24);
+    let table = (rows as u64)
+        .saturating_mul(t.heads as u64)
+        .saturating_mul(elem + 24);
     let source = cells(&t.shape).saturating_mul(elem + 16);
     let index = index_shape
         .as_deref()
@@ -210,58 +286,89 @@ impl WindowChange {
         }
     }
 
-    /// The offset grid resampled, in f64 for F64 tables and for the geometric method.
-    fn new_offsets(&self, path: &std::path::Path, grid: &[u8]) -> Result<(Vec<u8>, Images)> {
+    /// The offset grid resampled (in f64 for F64 tables and for the geometric method, else in
+    /// f32), followed by the class rows as they are. Every buffer is allocated fallibly: the
+    /// window, not the file, decides their size.
+    fn new_offsets(
+        &self,
+        path: &std::path::Path,
+        grid: &[u8],
+        class: &[u8],
+    ) -> Result<(Vec<u8>, Images)> {
         let (from, to) = self.sides();
-        let heads = self.table.heads;
         let dtype = self.table.dtype;
         let what = format!("resizing \"{}\"", self.table.name);
         let value_error = |e| values::value_error(path, &what, e);
-        let limit = crate::rebuild::HARD_ELEMENT_LIMIT;
-        let (before, after): (Vec<f64>, Vec<f64>) = {
+        let oom = |e| values::out_of_memory(path, &what, e);
+        let engine_error = |e| match e {
+            resample::ResampleError::OutOfMemory { bytes } => oom(values::OutOfMemory { bytes }),
+            other => Error::usage_in(path, format!("{what}: {other}")),
+        };
+        let narrow = |v: &[f64]| values::try_collect(v.len(), v.iter().map(|x| *x as f32));
+        let (bytes, before, after) = if self.geometric || dtype == Dtype::F64 {
             let v = values::decode_f64(dtype, grid).map_err(value_error)?;
             let r = if self.geometric {
-                geometric::resample(&v, from[0], heads, to[0], limit)
+                geometric::resample(&v, from[0], self.table.heads, to[0], HARD_ELEMENT_LIMIT)
                     .map_err(|e| Error::refused(path, format!("{what}: {e}")))?
-            } else if dtype == Dtype::F64 {
-                resample::resample(&v, (from[0], from[1]), heads, (to[0], to[1]), &self.options)
-                    .map_err(|e| Error::Usage(format!("{what}: {e}")))?
             } else {
-                // f32 arithmetic, as for every other table of a narrower dtype.
-                let narrow: Vec<f32> = v.iter().map(|x| *x as f32).collect();
-                resample::resample(
-                    &narrow,
-                    (from[0], from[1]),
-                    heads,
-                    (to[0], to[1]),
-                    &self.options,
-                )
-                .map_err(|e| Error::Usage(format!("{what}: {e}")))?
-                .into_iter()
-                .map(f64::from)
-                .collect()
+                self.engine(&v, from, to).map_err(engine_error)?
             };
-            (v, r)
-        };
-        let mut bytes = Vec::new();
-        if dtype == Dtype::F64 {
-            values::encode_f64_into(dtype, &after, &mut bytes).map_err(value_error)?;
+            let (before, after) = (narrow(&v).map_err(oom)?, narrow(&r).map_err(oom)?);
+            let bytes = match dtype {
+                Dtype::F64 => encode_with(dtype, &r, class, values::encode_f64_into),
+                // Narrower dtypes round from f32, as every other table of theirs does.
+                _ => encode_with(dtype, &after, class, values::encode_f32_into),
+            };
+            (bytes.map_err(value_error)?, before, after)
         } else {
-            let narrow: Vec<f32> = after.iter().map(|x| *x as f32).collect();
-            values::encode_f32_into(dtype, &narrow, &mut bytes).map_err(value_error)?;
-        }
-        let images = Images {
-            before: before.iter().map(|x| *x as f32).collect(),
-            after: after.iter().map(|x| *x as f32).collect(),
+            let v = values::decode_f32(dtype, grid).map_err(value_error)?;
+            let r = self.engine(&v, from, to).map_err(engine_error)?;
+            let bytes = encode_with(dtype, &r, class, values::encode_f32_into);
+            (bytes.map_err(value_error)?, v, r)
+        };
+        Ok((bytes, self.images((before, after))))
+    }
+
+    fn engine<T: resample::Sample>(
+        &self,
+        v: &[T],
+        from: [usize; 2],
+        to: [usize; 2],
+    ) -> std::result::Result<Vec<T>, resample::ResampleError> {
+        let heads = self.table.heads;
+        resample::resample(v, (from[0], from[1]), heads, (to[0], to[1]), &self.options)
+    }
+
+    fn images(&self, (before, after): (Vec<f32>, Vec<f32>)) -> Images {
+        let (from, to) = self.sides();
+        Images {
+            before,
+            after,
             from,
             to,
-            width: heads,
+            width: self.table.heads,
             unscored: self.geometric.then_some(
                 "the geometric method spaces the offsets unevenly, so an even stretch is no reference",
             ),
-        };
-        Ok((bytes, images))
+        }
     }
+}
+
+/// Appends values to a buffer as elements of a dtype (`values::encode_f32_into`, `…f64_into`).
+type Encoder<T> = fn(Dtype, &[T], &mut Vec<u8>) -> std::result::Result<(), values::ValueError>;
+
+/// `values` encoded in `dtype` and the class rows after them, in one buffer allocated fallibly.
+fn encode_with<T>(
+    dtype: Dtype,
+    values: &[T],
+    class: &[u8],
+    encode: Encoder<T>,
+) -> std::result::Result<Vec<u8>, values::ValueError> {
+    let elem = dtype.bitsize() / 8;
+    let mut bytes = values::try_with_capacity(values.len().saturating_mul(elem) + class.len())?;
+    encode(dtype, values, &mut bytes)?;
+    bytes.extend_from_slice(class);
+    Ok(bytes)
 }
 
 impl Change for WindowChange {
@@ -309,16 +416,15 @@ impl Change for WindowChange {
         let elem = entry.dtype.bitsize() / 8;
         let (from, _) = self.sides();
         let (grid, class) = raw.split_at(from[0] * from[1] * self.table.heads * elem);
-        let (mut bytes, images) = self.new_offsets(path, grid)?;
+        let (bytes, images) = self.new_offsets(path, grid, class)?;
         if !allow_nonfinite {
             refuse_nonfinite(path, &self.table.name, entry.dtype, &bytes, " after resampling (the kernel overshoots; use --kernel bilinear or pass --allow-nonfinite)")?;
         }
-        bytes.extend_from_slice(class);
         let mut out = Computed {
             bytes: vec![(entry.name.clone(), bytes)],
             images: Some(images),
         };
-        let limit = crate::rebuild::HARD_ELEMENT_LIMIT;
+        let limit = HARD_ELEMENT_LIMIT;
         let rebuild_error = |name: &str, e: crate::rebuild::RebuildError| {
             Error::refused(path, format!("rebuilding \"{name}\": {e}"))
         };

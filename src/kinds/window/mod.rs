@@ -62,6 +62,9 @@ pub struct WindowTable {
     pub index: Option<String>,
     /// The attention masks of its block, rebuilt for the new feature map.
     pub masks: Vec<Mask>,
+    /// Tensors named like masks in its block that cannot be read back to a map and shift, with
+    /// the reason: the table cannot change window without them.
+    pub unusable_masks: Vec<super::Skipped>,
     /// Buffers rewritten with it (index and masks), for the report.
     pub companions: Vec<String>,
     pub notes: Vec<String>,
@@ -126,6 +129,12 @@ pub(super) fn find(source: &dyn TensorSource, hints: &Hints, found: &mut Discove
         match examine(source, entry, patch.clone())? {
             Ok(mut table) => {
                 attach_masks(source, &mut table)?;
+                found.warnings.extend(table.unusable_masks.iter().map(|m| {
+                    format!(
+                        "{}: in the block of {} but not a mask posgrid can rebuild ({}); a resize that changes the table's window is refused",
+                        m.name, table.name, m.reason
+                    )
+                }));
                 table.companions = table.index.iter().cloned().collect();
                 table
                     .companions
@@ -243,6 +252,7 @@ fn examine(
         model_grid: None,
         index: index.map(|e| e.name.clone()),
         masks: Vec::new(),
+        unusable_masks: Vec::new(),
         companions: Vec::new(),
         notes,
     }))
@@ -290,57 +300,87 @@ fn index_layout(
 }
 
 /// Masks in the table's block: `[nW, N, N]` with N the window's cells, read back to their
-/// feature map and shift by their values.
+/// feature map and shift by their values. A tensor named like a mask in the block that is no
+/// such mask is kept in `unusable_masks` with the reason.
 fn attach_masks(source: &dyn TensorSource, table: &mut WindowTable) -> Result<()> {
     if table.class_rows {
         return Ok(());
     }
-    let cells = table.window[0] * table.window[1];
     for entry in source.entries() {
-        if !is_mask_name(&entry.name) || !values::is_float(entry.dtype) {
+        if !is_mask_name(&entry.name) || !in_block_of(&entry.name, &table.name) {
             continue;
         }
-        // The mask sits in the block that holds the table: `B.attn_mask` beside `B.….table`.
-        let block = parent(&entry.name);
-        let inside = table.name.len() > block.len()
-            && table.name.starts_with(block)
-            && matches!(table.name.as_bytes()[block.len()], b'.' | b'/');
-        if !inside {
-            continue;
-        }
-        let [windows, a, b] = entry.shape[..] else {
-            continue;
-        };
-        if a != cells || b != cells {
-            continue;
-        }
-        if entry.byte_len() > MAX_BUFFER_READ {
-            table
-                .notes
-                .push(format!("{}: too large to read; left unchanged", entry.name));
-            continue;
-        }
-        let v = values::decode_f32(entry.dtype, &source.bytes(entry)?)
-            .map_err(|e| values::value_error(source.source_path(), &entry.name, e))?;
-        let window = (table.window[0], table.window[1]);
-        let layout = shift_mask::layouts_of(&v, windows, cells)
-            .into_iter()
-            .find(|l| l.window == window);
-        match layout {
-            Some(l) => table.masks.push(Mask {
+        match read_mask(source, entry, table.window)? {
+            Ok(mask) => table.masks.push(mask),
+            Err(reason) => table.unusable_masks.push(super::Skipped {
                 name: entry.name.clone(),
-                dtype: entry.dtype,
-                shape: entry.shape.clone(),
-                map: [l.map.0, l.map.1],
-                shift: [l.shift.0, l.shift.1],
+                reason,
             }),
-            None => table.notes.push(format!(
-                "{}: not a shifted-window mask for window {}x{}; left unchanged",
-                entry.name, window.0, window.1
-            )),
         }
     }
     Ok(())
+}
+
+/// Whether `mask` sits in the block that holds `table`: `B.attn_mask` beside `B.….table`, and
+/// not beside a block whose name only starts the same (`blocks.1` is not `blocks.10`).
+fn in_block_of(mask: &str, table: &str) -> bool {
+    let block = parent(mask);
+    table.len() > block.len()
+        && table.starts_with(block)
+        && matches!(table.as_bytes()[block.len()], b'.' | b'/')
+}
+
+/// The map and shift of a mask for `window`, or why it is none.
+fn read_mask(
+    source: &dyn TensorSource,
+    entry: &TensorEntry,
+    window: [usize; 2],
+) -> Result<std::result::Result<Mask, String>> {
+    let cells = window[0] * window[1];
+    if !values::is_float(entry.dtype) {
+        return Ok(Err(format!(
+            "dtype {} does not hold a float mask",
+            entry.dtype
+        )));
+    }
+    let [windows, a, b] = entry.shape[..] else {
+        return Ok(Err(format!(
+            "shape {:?} is not [windows, cells, cells]",
+            entry.shape
+        )));
+    };
+    if a != cells || b != cells {
+        return Ok(Err(format!(
+            "its windows hold {a}x{b} pairs of cells; window {}x{} holds {cells} cells",
+            window[0], window[1]
+        )));
+    }
+    if entry.byte_len() > MAX_BUFFER_READ {
+        return Ok(Err("too large to read".into()));
+    }
+    let bytes = source.bytes(entry)?;
+    let bad = values::count_nonfinite(entry.dtype, &bytes);
+    if bad > 0 {
+        return Ok(Err(format!("it holds {bad} NaN or infinite value(s)")));
+    }
+    let v = values::decode_f32(entry.dtype, &bytes)
+        .map_err(|e| values::value_error(source.source_path(), &entry.name, e))?;
+    let layout = shift_mask::layouts_of(&v, windows, cells)
+        .into_iter()
+        .find(|l| l.window == (window[0], window[1]));
+    Ok(match layout {
+        Some(l) => Ok(Mask {
+            name: entry.name.clone(),
+            dtype: entry.dtype,
+            shape: entry.shape.clone(),
+            map: [l.map.0, l.map.1],
+            shift: [l.shift.0, l.shift.1],
+        }),
+        None => Err(format!(
+            "its values are not a shifted-window mask of window {}x{}",
+            window[0], window[1]
+        )),
+    })
 }
 
 /// The mask layout a map and window give: shift half the window (common practice), none
