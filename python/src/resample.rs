@@ -2,10 +2,9 @@
 //! GIL released while it computes.
 
 use numpy::{Element, PyReadonlyArrayDyn};
-use pyo3::exceptions::PyMemoryError;
 use pyo3::prelude::*;
 
-use posgrid::resample::{resample_grid, Options, Sample};
+use posgrid::resample::{resample_grid_after, Options, Sample};
 
 use crate::args::{self, OptionTexts};
 use crate::errors::{from_engine, refused, usage};
@@ -91,27 +90,13 @@ fn resample_as<'py, T: Sample + Element>(
 ) -> PyResult<Bound<'py, PyAny>> {
     check_memory(py, layout, to, std::mem::size_of::<T>(), limit)?;
     let values = row_major(array);
+    // The class rows go first in the engine's own output buffer: no copy of the result.
     let (slot_rows, grid_rows) = values.split_at(layout.slots * layout.d);
-    let resampled = py
-        .detach(|| resample_grid(grid_rows, &layout.grid, layout.d, to, options))
+    let out = py
+        .detach(|| resample_grid_after(slot_rows, grid_rows, &layout.grid, layout.d, to, options))
         .map_err(|e| from_engine(py, e))?;
-    let out = if slot_rows.is_empty() {
-        resampled
-    } else {
-        with_slots(slot_rows, resampled)?
-    };
     drop(values);
     to_numpy(py, out, &layout.shape_on(to))
-}
-
-/// The class rows, copied exactly, followed by the resampled grid.
-fn with_slots<T: Copy>(slots: &[T], grid: Vec<T>) -> PyResult<Vec<T>> {
-    let mut out = Vec::new();
-    out.try_reserve_exact(slots.len() + grid.len())
-        .map_err(|_| PyMemoryError::new_err("cannot allocate the output table"))?;
-    out.extend_from_slice(slots);
-    out.extend_from_slice(&grid);
-    Ok(out)
 }
 
 /// Refuse before any allocation an output whose buffers would pass `limit`: the output and
