@@ -2,7 +2,7 @@
 //! printed once, by `main`, with their exit code.
 
 use std::io::IsTerminal;
-use std::path::PathBuf;
+use std::path::{Path, PathBuf};
 
 use clap::{Args, Parser, Subcommand};
 
@@ -460,16 +460,25 @@ fn ckpt_path(ckpt: &Source) -> PathBuf {
     ckpt.source_path().to_path_buf()
 }
 
-fn scan(args: ScanArgs) -> Result<i32> {
-    let ckpt = Source::open(&args.checkpoint)?;
-    check_named_tensors(&ckpt, &args.discovery.tensors)?;
+/// What `scan --json` prints, as a library call: open, check the named tensors, discover
+/// (with the grid a configuration file beside the checkpoint records, unless `hints` has one).
+pub fn scan_report(checkpoint: &Path, hints: &Hints) -> Result<ScanReport> {
+    let ckpt = Source::open(checkpoint)?;
+    check_named_tensors(&ckpt, &hints.tensors)?;
     let hints = Hints {
-        recorded_grid: crate::config_files::grid_beside(&ckpt, &args.checkpoint),
-        ..args.discovery.hints()
+        recorded_grid: hints
+            .recorded_grid
+            .clone()
+            .or_else(|| crate::config_files::grid_beside(&ckpt, checkpoint)),
+        ..hints.clone()
     };
     let mut found = kinds::discover(&ckpt, &hints)?;
     found.warnings.extend(ckpt.notes());
-    let report = ScanReport::new(&args.checkpoint, &ckpt, found);
+    Ok(ScanReport::new(checkpoint, &ckpt, found))
+}
+
+fn scan(args: ScanArgs) -> Result<i32> {
+    let report = scan_report(&args.checkpoint, &args.discovery.hints())?;
     if args.json {
         print_json(&report);
     } else {
@@ -483,7 +492,9 @@ fn scan(args: ScanArgs) -> Result<i32> {
     })
 }
 
-fn resize_cmd(args: ResizeArgs) -> Result<i32> {
+/// The job a `resize` command line asks for, with its usage checks (exit 2). A progress bar
+/// is drawn only for a terminal, without `--quiet` and `--json`.
+pub fn resize_job(args: &ResizeArgs) -> Result<ResizeJob> {
     if !args.cubic_a.is_finite() {
         return Err(Error::Usage("--cubic-a must be a finite number".into()));
     }
@@ -508,7 +519,7 @@ fn resize_cmd(args: ResizeArgs) -> Result<i32> {
         (Some(t), None) => Some(Frames::Grid(t)),
         (None, f) => f.map(|f| Frames::Input(f as usize)),
     };
-    let job = ResizeJob {
+    Ok(ResizeJob {
         input: args.checkpoint.clone(),
         output: args.output.clone(),
         hints: Hints {
@@ -546,8 +557,11 @@ fn resize_cmd(args: ResizeArgs) -> Result<i32> {
             model_only: args.model_only,
         },
         keep_config: args.keep_config,
-    };
-    let report = resize::run(&job)?;
+    })
+}
+
+fn resize_cmd(args: ResizeArgs) -> Result<i32> {
+    let report = resize::run(&resize_job(&args)?)?;
     if args.json {
         print_json(&report);
     } else if !args.quiet {

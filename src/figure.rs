@@ -168,22 +168,46 @@ pub fn figure(
     budget: Budget,
 ) -> Result<Drawn> {
     let t = &before.table;
-    let sets = similarity::map_sets(before.grid(), after.map(GridRows::grid), refs, budget)
-        .map_err(|e| maps_error(path, &t.name, e))?;
+    let caption = Caption {
+        name: &t.name,
+        dtype: &t.dtype.to_string(),
+    };
+    let grids = (before.grid(), after.map(GridRows::grid));
+    figure_of_grids(path, &caption, grids, refs, budget)
+}
+
+/// What a figure's title names: the table and its dtype.
+pub struct Caption<'a> {
+    pub name: &'a str,
+    pub dtype: &'a str,
+}
+
+/// Draw the grid `before` (and `after`, if given) within the memory and time `budget`: the
+/// figure of [`figure`], for rows that come from no file (`path` is the file errors name).
+pub fn figure_of_grids(
+    path: &Path,
+    caption: &Caption,
+    (before, after): (Grid, Option<Grid>),
+    refs: usize,
+    budget: Budget,
+) -> Result<Drawn> {
+    let name = caption.name;
+    let sets =
+        similarity::map_sets(before, after, refs, budget).map_err(|e| maps_error(path, name, e))?;
     let b = sets.before;
     let a = sets.after;
     let mut notes: Vec<String> = sets
         .note
-        .map(|n| format!("\"{}\": maps drawn at {n}", t.name))
+        .map(|n| format!("\"{name}\": maps drawn at {n}"))
         .into_iter()
         .collect();
-    notes.extend(a.as_ref().and_then(|(_, f)| f.note(&t.name)));
+    notes.extend(a.as_ref().and_then(|(_, f)| f.note(name)));
     let title = match after {
-        Some(a) => format!(
-            "{}  |  {}x{} -> {}x{}  |  {}",
-            t.name, t.grid[0], t.grid[1], a.table.grid[0], a.table.grid[1], t.dtype
+        Some(g) => format!(
+            "{name}  |  {}x{} -> {}x{}  |  {}",
+            before.h, before.w, g.h, g.w, caption.dtype
         ),
-        None => format!("{}  |  {}x{}  |  {}", t.name, t.grid[0], t.grid[1], t.dtype),
+        None => format!("{name}  |  {}x{}  |  {}", before.h, before.w, caption.dtype),
     };
     let mut subtitle = format!(
         "cosine similarity of {}x{} reference positions (outlined) to every position",
@@ -195,15 +219,12 @@ pub fn figure(
     }
     let prefix = if after.is_some() { "before: " } else { "" };
     let mut panels = vec![Panel {
-        label: format!("{prefix}{}x{} grid", t.grid[0], t.grid[1]),
+        label: format!("{prefix}{}x{} grid", before.h, before.w),
         set: &b,
     }];
-    if let (Some((set, _)), Some(after)) = (&a, after) {
+    if let (Some((set, _)), Some(g)) = (&a, after) {
         panels.push(Panel {
-            label: format!(
-                "after: {}x{} grid",
-                after.table.grid[0], after.table.grid[1]
-            ),
+            label: format!("after: {}x{} grid", g.h, g.w),
             set,
         });
     }
@@ -237,6 +258,20 @@ pub fn fidelity_text(f: &Fidelity) -> String {
 pub fn write_png(path: &Path, png: &[u8], force: bool, input: &Path) -> Result<()> {
     write::check_destination(input, path, force)?;
     let mut out = AtomicFile::create_with(path, &write::OutputRules::like(input, true, force))?;
+    out.write(png, &mut write::Silent)?;
+    out.commit()
+}
+
+/// Write a figure made from no input file to `path` atomically, replacing an existing file
+/// only with `force` (permission bits: read and write, less the umask).
+pub fn write_png_alone(path: &Path, png: &[u8], force: bool) -> Result<()> {
+    write::check_output(path, force)?;
+    let rules = write::OutputRules {
+        sync: true,
+        replace: force,
+        mode_limit: 0o666,
+    };
+    let mut out = AtomicFile::create_with(path, &rules)?;
     out.write(png, &mut write::Silent)?;
     out.commit()
 }

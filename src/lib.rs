@@ -41,3 +41,6 @@ pub mod visible;
 pub mod write;
 
 pub use error::{Error, Result};
+
+/// The crate's version; the Python package carries the same one.
+pub const VERSION: &str = env!("CARGO_PKG_VERSION");

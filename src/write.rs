@@ -70,13 +70,7 @@ fn kind_name(m: &Metadata) -> &'static str {
 /// `force`, or that is anything but a regular file or a symbolic link; check that its
 /// directory exists.
 pub fn check_destination(input: &Path, output: &Path, force: bool) -> Result<()> {
-    if output.as_os_str().as_bytes().ends_with(b"/") {
-        return Err(Error::write(
-            output,
-            "ends with a slash, so it names a directory; give a file path for the output",
-        ));
-    }
-    check_parent(output)?;
+    check_file_path(output)?;
     if same_file(input, output) {
         return Err(Error::write(
             output,
@@ -86,6 +80,29 @@ pub fn check_destination(input: &Path, output: &Path, force: bool) -> Result<()>
             ),
         ));
     }
+    check_replaceable(output, force)
+}
+
+/// [`check_destination`] for an output made from no input file (a figure of values held in
+/// memory).
+pub fn check_output(output: &Path, force: bool) -> Result<()> {
+    check_file_path(output)?;
+    check_replaceable(output, force)
+}
+
+/// The path names a file in a directory that exists.
+fn check_file_path(output: &Path) -> Result<()> {
+    if output.as_os_str().as_bytes().ends_with(b"/") {
+        return Err(Error::write(
+            output,
+            "ends with a slash, so it names a directory; give a file path for the output",
+        ));
+    }
+    check_parent(output)
+}
+
+/// Nothing is there, or a regular file (or a link to one) that `force` allows to replace.
+fn check_replaceable(output: &Path, force: bool) -> Result<()> {
     let Ok(here) = fs::symlink_metadata(output) else {
         return Ok(());
     };

@@ -180,9 +180,22 @@ pub fn resample_grid<T: Sample>(
     to: &[usize],
     opts: &Options,
 ) -> Result<Vec<T>, ResampleError> {
+    resample_grid_after(&[], src, from, d, to, opts)
+}
+
+/// [`resample_grid`], its output preceded by `head` (a table's class rows, copied as they are)
+/// in the same buffer, so that the resampled grid is not copied again to join them.
+pub fn resample_grid_after<T: Sample>(
+    head: &[T],
+    src: &[T],
+    from: &[usize],
+    d: usize,
+    to: &[usize],
+    opts: &Options,
+) -> Result<Vec<T>, ResampleError> {
     validate_grid(from, to, d, opts)?;
     check_grid_length(src.len(), from, d)?;
-    separable(src, from, d, to, |axis| {
+    separable(head, src, from, d, to, |axis| {
         Ok(Cow::Owned(try_axis_weights(from[axis], to[axis], opts)?))
     })
 }
@@ -203,6 +216,7 @@ pub fn resample_grid_scaled<T: Sample>(
     validate_grid(from, &to, d, opts)?;
     check_grid_length(src.len(), from, d)?;
     let out = separable_mapped(
+        &[],
         src,
         from,
         d,
@@ -307,8 +321,10 @@ fn check_length(found: usize, (h, w): (usize, usize), d: usize) -> Result<(), Re
     }
 }
 
-fn copied<T: Sample>(src: &[T]) -> Result<Vec<T>, ResampleError> {
-    let mut v = crate::values::try_with_capacity(src.len())?;
+/// `head` followed by `src`, in a new buffer.
+fn joined<T: Sample>(head: &[T], src: &[T]) -> Result<Vec<T>, ResampleError> {
+    let mut v = crate::values::try_with_capacity(head.len().saturating_add(src.len()))?;
+    v.extend_from_slice(head);
     v.extend_from_slice(src);
     Ok(v)
 }
@@ -349,27 +365,39 @@ pub fn apply<T: Sample>(
     let to = [down.output, across.output];
     validate_grid(&[h, w], &to, d, &Options::default())?;
     check_length(src.len(), (h, w), d)?;
-    separable(src, &[h, w], d, &to, |axis| {
+    separable(&[], src, &[h, w], d, &to, |axis| {
         Ok(Cow::Borrowed(if axis == 0 { down } else { across }))
     })
 }
 
 /// One pass per axis whose size changes, innermost axis first (for `[H, W, D]`: along rows,
-/// then down columns); `weights_of(axis)` gives that axis's table. Buffers are allocated
-/// fallibly: their size comes from the input. The caller has validated the sizes.
+/// then down columns); `weights_of(axis)` gives that axis's table. The output starts with
+/// `head`. Buffers are allocated fallibly: their size comes from the input. The caller has
+/// validated the sizes.
 fn separable<'w, T: Sample>(
+    head: &[T],
     src: &[T],
     from: &[usize],
     d: usize,
     to: &[usize],
     weights_of: impl FnMut(usize) -> Result<Cow<'w, AxisWeights>, ResampleError>,
 ) -> Result<Vec<T>, ResampleError> {
-    separable_mapped(src, from, d, to, |axis| from[axis] != to[axis], weights_of)
+    separable_mapped(
+        head,
+        src,
+        from,
+        d,
+        to,
+        |axis| from[axis] != to[axis],
+        weights_of,
+    )
 }
 
 /// [`separable`], resampling exactly the axes for which `moves(axis)` holds (with a scale, a
-/// side can stay while its coordinates move).
+/// side can stay while its coordinates move). Only the last pass writes `head` ahead of its
+/// values.
 fn separable_mapped<'w, T: Sample>(
+    head: &[T],
     src: &[T],
     from: &[usize],
     d: usize,
@@ -377,20 +405,50 @@ fn separable_mapped<'w, T: Sample>(
     moves: impl Fn(usize) -> bool,
     mut weights_of: impl FnMut(usize) -> Result<Cow<'w, AxisWeights>, ResampleError>,
 ) -> Result<Vec<T>, ResampleError> {
+    let passes: Vec<usize> = (0..from.len())
+        .rev()
+        .filter(|&axis| moves(axis) && d > 0)
+        .collect();
     let mut shape = from.to_vec();
     let mut current: Option<Vec<T>> = None;
-    for axis in (0..from.len()).rev() {
-        if !moves(axis) || d == 0 {
-            continue;
-        }
+    for (k, &axis) in passes.iter().enumerate() {
         let weights = weights_of(axis)?;
         let input = current.as_deref().unwrap_or(src);
-        let next = pass_along_axis(input, AxisLayout::of(&shape, axis, d), &weights)?;
+        let prefix = if k + 1 == passes.len() { head } else { &[] };
+        let next = pass_along_axis(input, AxisLayout::of(&shape, axis, d), &weights, prefix)?;
         shape[axis] = to[axis];
         current = Some(next);
     }
     match current {
         Some(v) => Ok(v),
-        None => copied(src),
+        None => joined(head, src),
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// Property: the head comes first, unchanged, and the rest is exactly resample_grid's.
+    #[test]
+    fn a_head_precedes_the_resampled_grid_unchanged() {
+        let head = [7.5f32, -1.0, 0.25];
+        let cases: [(&[usize], &[usize]); 5] = [
+            (&[5], &[9]),
+            (&[4, 3], &[6, 7]),
+            (&[4, 3], &[4, 5]),
+            (&[2, 3, 4], &[3, 3, 2]),
+            (&[3, 3], &[3, 3]),
+        ];
+        for (from, to) in cases {
+            let d = 3;
+            let n: usize = from.iter().product::<usize>() * d;
+            let src: Vec<f32> = (0..n).map(|i| (i as f32 * 0.37).sin()).collect();
+            let opts = Options::default();
+            let plain = resample_grid(&src, from, d, to, &opts).unwrap();
+            let after = resample_grid_after(&head, &src, from, d, to, &opts).unwrap();
+            assert_eq!(&after[..head.len()], &head, "{from:?} -> {to:?}");
+            assert_eq!(&after[head.len()..], &plain[..], "{from:?} -> {to:?}");
+        }
     }
 }

@@ -31,20 +31,25 @@ impl AxisLayout {
 }
 
 /// Resample `input` (laid out as `layout`) along its axis with `weights`, whose input size is
-/// `layout.along`. The output buffer is allocated fallibly: its size comes from the request.
+/// `layout.along`, into a new buffer that starts with `head` (copied as it is). The buffer is
+/// allocated fallibly: its size comes from the request.
 pub fn pass_along_axis<T: Sample>(
     input: &[T],
     layout: AxisLayout,
     weights: &AxisWeights,
+    head: &[T],
 ) -> Result<Vec<T>, ResampleError> {
     let AxisLayout { along, slab, .. } = layout;
     let out_len = layout
         .outer
         .saturating_mul(weights.output)
         .saturating_mul(slab);
-    let mut out = crate::values::try_filled(out_len, T::default())?;
+    let mut buffer = crate::values::try_with_capacity(head.len().saturating_add(out_len))?;
+    buffer.extend_from_slice(head);
+    buffer.resize(head.len() + out_len, T::default());
+    let out = &mut buffer[head.len()..];
     if out_len == 0 {
-        return Ok(out);
+        return Ok(buffer);
     }
     let wt: Vec<T> = crate::values::try_collect(
         weights.weight.len(),
@@ -66,7 +71,7 @@ pub fn pass_along_axis<T: Sample>(
                     .map(|(&i, &w)| (&block[i * slab..(i + 1) * slab], w)),
             );
         });
-    Ok(out)
+    Ok(buffer)
 }
 
 /// `dst = Σ weight · source` over the taps, element-wise; the loops vectorise over the slab.
