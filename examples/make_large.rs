@@ -113,9 +113,9 @@ fn write_pth(input: &str, pth: &str) {
     use posgrid::checkpoint::writer::{self, Destination, OutEntry, Output};
     use posgrid::checkpoint::{Format, Source, TensorSource};
     let source = Source::open(input).expect("open the safetensors file");
-    let output = Output {
-        source: source.reader(),
-        entries: source
+    let output = Output::new(
+        source.reader(),
+        source
             .entries()
             .iter()
             .map(|t| OutEntry {
@@ -125,8 +125,8 @@ fn write_pth(input: &str, pth: &str) {
                 new: None,
             })
             .collect(),
-        provenance: serde_json::json!({}),
-    };
+        serde_json::json!({}),
+    );
     let dest = Destination {
         path: std::path::Path::new(pth),
         sync: false,

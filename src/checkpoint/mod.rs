@@ -8,6 +8,7 @@ pub mod directory;
 pub mod json;
 pub mod npz;
 pub mod pickle;
+pub mod placement;
 pub mod safetensors;
 pub mod sharded;
 pub mod torch;

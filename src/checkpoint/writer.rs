@@ -41,15 +41,33 @@ pub struct Output<'a> {
     /// posgrid's provenance (a JSON object); a writer adds a record already in its source
     /// under `previous`.
     pub provenance: serde_json::Value,
+    /// The block size of the destination's file system: untouched bytes laid out at their
+    /// source offset modulo it can share blocks with the source (see `crate::write::share`).
+    pub block: u64,
 }
 
 impl<'a> Output<'a> {
+    /// An output laid out for the usual 4 KiB blocks.
+    pub fn new(
+        source: &'a dyn Reader,
+        entries: Vec<OutEntry<'a>>,
+        provenance: serde_json::Value,
+    ) -> Self {
+        Output {
+            source,
+            entries,
+            provenance,
+            block: crate::write::share::DEFAULT_BLOCK,
+        }
+    }
+
     /// The same output over another source (one shard of a set): the entries that come from it.
     pub fn restricted(&self, source: &'a dyn Reader, keep: impl Fn(&OutEntry) -> bool) -> Self {
         Output {
             source,
             entries: self.entries.iter().filter(|e| keep(e)).cloned().collect(),
             provenance: self.provenance.clone(),
+            block: self.block,
         }
     }
 
