@@ -13,6 +13,7 @@ pub mod safetensors;
 pub mod sharded;
 pub mod torch;
 pub mod writer;
+pub mod zipout;
 
 use std::fs::{File, FileType, Metadata, OpenOptions};
 use std::io::Read;
