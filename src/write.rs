@@ -25,6 +25,8 @@ pub use signals::{exit_process, install_interrupt_handler, interrupted};
 
 /// Copy chunk between progress updates and interruption checks.
 const CHUNK: u64 = 64 << 20;
+/// Bytes written between starts of their writeback, for a durable output.
+const WRITEBACK_STEP: u64 = 8 << 20;
 /// Largest index file of an existing output set that is read to recognise it.
 const INDEX_LIMIT: u64 = 100 << 20;
 
@@ -270,6 +272,8 @@ pub struct AtomicFile {
     rules: OutputRules,
     /// Bytes written so far.
     position: u64,
+    /// Where the bytes whose writeback has not been started begin.
+    writeback_from: u64,
     /// The file system's block size: runs copied at the same offset modulo it can be shared.
     block: u64,
     /// The kernel copies between the input and this file (false after it refused once).
@@ -306,6 +310,7 @@ impl AtomicFile {
             file: Some(file),
             rules: *rules,
             position: 0,
+            writeback_from: 0,
             kernel_copy: true,
         };
         if let Some(mode) = kept_mode(final_path, rules, false) {
@@ -520,26 +525,31 @@ impl AtomicFile {
         Ok(())
     }
 
-    /// Account for bytes written; for a durable write, start their writeback to disk now
-    /// (sync_file_range), so the final sync overlaps with the copy instead of following it.
+    /// Account for bytes written; for a durable write, start the writeback of every further
+    /// `WRITEBACK_STEP` bytes now (sync_file_range), so the final sync overlaps with the copy
+    /// instead of following it. Steps rather than every write: a file of many small records
+    /// would otherwise send the disk one small write per record (cloned ranges have nothing
+    /// to write back).
     fn written(&mut self, len: u64) {
-        let start = self.position;
         self.position += len;
-        if self.rules.sync {
-            if let Some(f) = &self.file {
-                use std::os::fd::AsRawFd;
-                // SAFETY: a plain system call on an open descriptor; failure only loses the
-                // head start, the final fsync still makes the data durable.
-                unsafe {
-                    libc::sync_file_range(
-                        f.as_raw_fd(),
-                        start as i64,
-                        len as i64,
-                        libc::SYNC_FILE_RANGE_WRITE,
-                    );
-                }
+        let pending = self.position - self.writeback_from;
+        if !self.rules.sync || pending < WRITEBACK_STEP {
+            return;
+        }
+        if let Some(f) = &self.file {
+            use std::os::fd::AsRawFd;
+            // SAFETY: a plain system call on an open descriptor; failure only loses the
+            // head start, the final fsync still makes the data durable.
+            unsafe {
+                libc::sync_file_range(
+                    f.as_raw_fd(),
+                    self.writeback_from as i64,
+                    pending as i64,
+                    libc::SYNC_FILE_RANGE_WRITE,
+                );
             }
         }
+        self.writeback_from = self.position;
     }
 }
 
