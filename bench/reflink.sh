@@ -2,13 +2,14 @@
 # `posgrid resize` on a file system that shares extents (XFS with reflink on, loop-mounted),
 # against cp on the same file system, in one run.
 #
-#   sudo bash bench/reflink.sh [RUNS]        (default 7 runs)
+#   sudo bash bench/reflink.sh [RUNS] [safetensors|pth|npz]   (default 7 runs, safetensors)
 #
 # Needs root, mkfs.xfs (Debian: apt-get install xfsprogs) and a free loop device; without them
 # it says which is missing and exits 0 having measured nothing. Makes a sparse 4 GiB image
 # under $BENCH_DIR (default target/bench), formats it with `mkfs.xfs -m reflink=1`, mounts it
 # through a loop device with direct I/O (so syncs reach the disk),
-# writes the ~1.2 GB large-ViT checkpoint (examples/make_large.rs) into it, then times,
+# writes the ~1.2 GB large-ViT checkpoint (examples/make_large.rs; as a PyTorch file or an npz
+# archive written by posgrid's own writers, when asked) into it, then times,
 # alternating, with the destination removed (and the file system synced) before every run:
 #   posgrid resize --grid 24            durable (synced before the rename), the default
 #   posgrid resize --grid 24 --no-sync  the same without the sync: the difference is its cost
@@ -22,6 +23,7 @@
 set -euo pipefail
 cd "$(dirname "$0")/.."
 runs=${1:-7}
+ext=${2:-safetensors}
 skip() { echo "bench/reflink.sh skipped: $*"; exit 0; }
 [ "$(id -u)" = 0 ] || skip "not running as root (loop-mounting an image needs root)"
 command -v mkfs.xfs >/dev/null || skip "mkfs.xfs is not installed (Debian: apt-get install xfsprogs)"
@@ -46,9 +48,16 @@ mount "$dev" "$mnt" || { losetup -d "$dev"; skip "the image could not be mounted
 trap 'cd /; umount "$mnt"; losetup -d "$dev" 2>/dev/null; rm -f "$img"' EXIT
 dio=$(losetup -n -O DIO "$dev" | tr -d ' ')
 
-src="$mnt/vit-large-224.safetensors"
-dst="$mnt/out.safetensors"
-target/release/examples/make_large "$src" >/dev/null
+base="$mnt/vit-large-224.safetensors"
+case $ext in
+  safetensors) target/release/examples/make_large "$base" >/dev/null ;;
+  pth) target/release/examples/make_large "$base" "$mnt/vit-large-224.pth" >/dev/null ;;
+  npz) target/release/examples/make_large "$base" "$mnt/vit-large-224.npz" >/dev/null ;;
+  *) echo "unknown container $ext (safetensors, pth or npz)"; exit 2 ;;
+esac
+src="$mnt/vit-large-224.$ext"
+dst="$mnt/out.$ext"
+[ "$ext" = safetensors ] || rm -f "$base"
 sync
 
 times="$work/reflink-times"
@@ -86,9 +95,9 @@ disk() { # label, then the command; prints "label new_bytes"
 }
 rm -f "$dst"
 disk_lines=$(
-  disk posgrid-durable "$bin" resize "$src" -o "$mnt/disk-1" --grid 24 --quiet
-  disk cp-never cp --reflink=never "$src" "$mnt/disk-2"
-  disk cp-reflink cp --reflink=always "$src" "$mnt/disk-3"
+  disk posgrid-durable "$bin" resize "$src" -o "$mnt/disk-1.$ext" --grid 24 --quiet
+  disk cp-never cp --reflink=never "$src" "$mnt/disk-2.$ext"
+  disk cp-reflink cp --reflink=always "$src" "$mnt/disk-3.$ext"
 )
 rm -f "$mnt"/disk-*
 
@@ -102,7 +111,7 @@ fi
 shared=$("$bin" resize "$src" -o "$dst" --grid 24 --force --json | python3 -c 'import json,sys; r=json.load(sys.stdin); print(r["bytes_shared"], r["bytes_copied"])')
 rm -f "$dst"
 
-python3 - "$times" "$(stat -c %s "$src")" "$disk_lines" "$shared" "$dio" "$sync_ms" <<'PY'
+python3 - "$times" "$(stat -c %s "$src")" "$disk_lines" "$shared" "$dio" "$sync_ms" "$ext" <<'PY'
 import statistics, sys
 t = {}
 for line in open(sys.argv[1]):
@@ -113,7 +122,7 @@ size = int(sys.argv[2])
 disk = dict((l.split()[0], int(l.split()[1])) for l in sys.argv[3].splitlines())
 shared, copied = map(int, sys.argv[4].split())
 io = "direct I/O" if sys.argv[5] == "1" else "buffered"
-print(f"XFS (reflink=1) on a loop device ({io}), input {size / 1e9:.2f} GB, {len(t['cp-never'])} runs each, medians:")
+print(f"XFS (reflink=1) on a loop device ({io}), {sys.argv[7]} input {size / 1e9:.2f} GB, {len(t['cp-never'])} runs each, medians:")
 for k in ["posgrid-durable", "posgrid-nosync", "posgrid-dryrun", "cp-never", "cp-never-sync", "cp-reflink", "cp-reflink-sync"]:
     print(f"  {k:16} {med[k] * 1000:9.1f} ms   (runs: {', '.join(f'{x * 1000:.1f}' for x in t[k])})")
 d, n, tables = med["posgrid-durable"], med["posgrid-nosync"], med["posgrid-dryrun"]
