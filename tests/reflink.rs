@@ -36,7 +36,12 @@ struct Xfs {
 
 impl Drop for Xfs {
     fn drop(&mut self) {
-        let _ = Command::new("umount").arg(&self.mount).status();
+        let umount = program("umount").unwrap_or_else(|| PathBuf::from("umount"));
+        let done = Command::new(&umount).arg(&self.mount).status();
+        if !done.is_ok_and(|s| s.success()) {
+            // Still busy: detach it now, the kernel frees it when the last user is gone.
+            let _ = Command::new(&umount).arg("-l").arg(&self.mount).status();
+        }
     }
 }
 
@@ -75,6 +80,9 @@ fn xfs() -> Option<Xfs> {
     let (Some(mkfs), Some(mount)) = (program("mkfs.xfs"), program("mount")) else {
         return skip("mkfs.xfs or mount is not installed");
     };
+    if program("umount").is_none() {
+        return skip("umount is not installed");
+    }
     if program("xfs_io").is_none() {
         return skip("xfs_io is not installed");
     }
