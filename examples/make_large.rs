@@ -2,10 +2,11 @@
 //! transformer (a 14x14 table with one class slot; about 1.2 GB of random weights), for the
 //! performance benchmark (bench/resize.sh). Streams the data, so it needs little memory.
 //!
-//!     cargo run --release --example make_large -- OUT.safetensors [OUT.pth]
+//!     cargo run --release --example make_large -- OUT.safetensors [OUT.pth | OUT.npz]
 //!
 //! With a second path, the same checkpoint is also written as a PyTorch file (one ordered dict
-//! of tensors, as the framework saves a state dict) by posgrid's own PyTorch writer.
+//! of tensors, as the framework saves a state dict) by posgrid's own PyTorch writer, or, when
+//! that path ends in `.npz`, as an npz archive of stored `.npy` members by posgrid's npz writer.
 
 use std::io::{BufWriter, Write};
 
@@ -102,20 +103,20 @@ fn main() {
         "wrote {out} ({:.2} GB)",
         (header.len() as u64 + offset) as f64 / 1e9
     );
-    if let Some(pth) = std::env::args().nth(2) {
-        write_pth(&out, &pth);
-        println!("wrote {pth}");
+    if let Some(other) = std::env::args().nth(2) {
+        write_converted(&out, &other);
+        println!("wrote {other}");
     }
 }
 
-/// The same tensors as a PyTorch file, through posgrid's writer interface.
-fn write_pth(input: &str, pth: &str) {
+/// The same tensors as a PyTorch file (or an npz archive), through posgrid's writer interface.
+fn write_converted(input: &str, pth: &str) {
     use posgrid::checkpoint::writer::{self, Destination, OutEntry, Output};
     use posgrid::checkpoint::{Format, Source, TensorSource};
     let source = Source::open(input).expect("open the safetensors file");
-    let output = Output {
-        source: source.reader(),
-        entries: source
+    let output = Output::new(
+        source.reader(),
+        source
             .entries()
             .iter()
             .map(|t| OutEntry {
@@ -125,18 +126,21 @@ fn write_pth(input: &str, pth: &str) {
                 new: None,
             })
             .collect(),
-        provenance: serde_json::json!({}),
-        edits: Vec::new(),
-        left_out: Vec::new(),
-    };
+        serde_json::json!({}),
+    );
     let dest = Destination {
         path: std::path::Path::new(pth),
         sync: false,
         force: true,
         like: std::path::Path::new(input),
     };
-    let written = writer::for_format(Format::PyTorch)
+    let format = if pth.ends_with(".npz") {
+        Format::Npz
+    } else {
+        Format::PyTorch
+    };
+    let written = writer::for_format(format)
         .write(&output, &dest, &mut posgrid::write::Silent)
-        .expect("write the PyTorch file");
+        .expect("write the converted file");
     posgrid::write::commit_all(vec![written.pending]).expect("commit");
 }

@@ -326,6 +326,16 @@ pub fn resize_text(r: &ResizeReport) -> String {
             format!("{}: {} {} -> {}", c.file, c.path.join("."), c.old, c.new),
         );
     }
+    if r.bytes_shared > 0 {
+        push_line(
+            &mut s,
+            format!(
+                "{:.1} MiB cloned (blocks shared on disk with the input), {:.1} MiB in new blocks",
+                r.bytes_shared as f64 / (1 << 20) as f64,
+                r.bytes_copied as f64 / (1 << 20) as f64
+            ),
+        );
+    }
     if let Some(m) = &r.map {
         push_line(&mut s, format!("similarity maps: {}", m.display()));
     }

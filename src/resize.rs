@@ -66,6 +66,12 @@ pub struct ResizeReport {
     pub copied: Vec<String>,
     pub bytes_written: u64,
     pub output_size: u64,
+    /// Bytes of the output whose blocks the file system shares with other files (the input):
+    /// measured from the output's extent map after the write, 0 where nothing is shared.
+    pub bytes_shared: u64,
+    /// Bytes of the output in blocks of its own (written or copied): `output_size` less
+    /// `bytes_shared`.
+    pub bytes_copied: u64,
     /// For a sharded set: the shards rewritten and the shards copied unchanged.
     #[serde(skip_serializing_if = "Option::is_none")]
     pub shards_rewritten: Option<Vec<String>>,
@@ -119,6 +125,8 @@ pub fn run(job: &ResizeJob) -> Result<ResizeReport> {
             .collect(),
         bytes_written: 0,
         output_size: 0,
+        bytes_shared: 0,
+        bytes_copied: 0,
         shards_rewritten: None,
         shards_copied: None,
         map: None,
@@ -157,7 +165,7 @@ pub fn run(job: &ResizeJob) -> Result<ResizeReport> {
             None => {}
         }
     }
-    let mut output = output_of(&source, &plan, &selection, &new_data);
+    let mut output = output_of(&job.output, &source, &plan, &selection, &new_data);
     output.edits = update_configs(&source, job, format, &plan, &mut report)?;
     account_for(&mut report, &source, &output, &plan)?;
     writer.check(&output)?;
@@ -179,6 +187,7 @@ pub fn run(job: &ResizeJob) -> Result<ResizeReport> {
 /// The output entries: every tensor the selection keeps, under its output name, with its new
 /// shape and bytes where it changed.
 fn output_of<'a>(
+    output_path: &Path,
     source: &'a Source,
     plan: &Plan,
     selection: &selection::Selection,
@@ -203,6 +212,7 @@ fn output_of<'a>(
         provenance: provenance(plan),
         edits: Vec::new(),
         left_out: drops.iter().map(|n| n.to_string()).collect(),
+        block: write::share::block_size_at(output_path),
     }
 }
 
@@ -307,6 +317,9 @@ fn write_and_commit(
         figure.as_deref(),
     )?);
     progress.finish();
+    // What the kernel did, read back from the output's extent map.
+    report.bytes_shared = write::share::shared_bytes_at(&job.output).min(written.size);
+    report.bytes_copied = written.size - report.bytes_shared;
     if figure.is_some() {
         report.map = job.map.clone();
     }

@@ -8,6 +8,7 @@
 //! permission bits are never wider than the input's.
 
 mod rename;
+pub mod share;
 mod signals;
 mod temp;
 
@@ -24,6 +25,8 @@ pub use signals::{exit_process, install_interrupt_handler, interrupted};
 
 /// Copy chunk between progress updates and interruption checks.
 const CHUNK: u64 = 64 << 20;
+/// Bytes written between starts of their writeback, for a durable output.
+const WRITEBACK_STEP: u64 = 8 << 20;
 /// Largest index file of an existing output set that is read to recognise it.
 const INDEX_LIMIT: u64 = 100 << 20;
 
@@ -286,6 +289,12 @@ pub struct AtomicFile {
     rules: OutputRules,
     /// Bytes written so far.
     position: u64,
+    /// Where the bytes whose writeback has not been started begin.
+    writeback_from: u64,
+    /// The file system's block size: runs copied at the same offset modulo it can be shared.
+    block: u64,
+    /// The kernel copies between the input and this file (false after it refused once).
+    kernel_copy: bool,
 }
 
 impl AtomicFile {
@@ -314,9 +323,12 @@ impl AtomicFile {
         let mut made = AtomicFile {
             final_path: final_path.to_path_buf(),
             temp_path,
+            block: share::block_size_of(&file),
             file: Some(file),
             rules: *rules,
             position: 0,
+            writeback_from: 0,
+            kernel_copy: true,
         };
         if let Some(mode) = kept_mode(final_path, rules, false) {
             made.file()
@@ -421,9 +433,21 @@ impl Progress for Bar {
 }
 
 impl AtomicFile {
+    /// Bytes written so far: the output offset the next write or copy lands at.
+    pub fn position(&self) -> u64 {
+        self.position
+    }
+
+    /// The block size of the output's file system (see [`share::block_size_of`]).
+    pub fn block(&self) -> u64 {
+        self.block
+    }
+
     /// Copy `len` bytes starting at `offset` of `input` (read from `input_path`) to the end
-    /// of the output. File to file, std uses copy_file_range on Linux, so the bytes stay in
-    /// the kernel. An input that ends early is an input problem, reported against it.
+    /// of the output, in the kernel. When the source and output offsets agree modulo the
+    /// block size, the run is copied in pieces cut at block boundaries, so a file system that
+    /// shares extents clones its whole blocks instead of copying them. An input that ends
+    /// early is an input problem, reported against it.
     pub fn copy_from(
         &mut self,
         input: &File,
@@ -432,33 +456,67 @@ impl AtomicFile {
         len: u64,
         progress: &mut dyn Progress,
     ) -> Result<()> {
-        let mut reader = input;
-        reader
-            .seek(SeekFrom::Start(offset))
-            .map_err(|e| Error::read(input_path, e))?;
-        let mut left = len;
-        while left > 0 {
-            self.check_interrupt()?;
-            let step = left.min(CHUNK);
-            let copied = io::copy(&mut Read::take(reader, step), self.file())
-                .map_err(|e| write_error(&self.final_path, "cannot write", e))?;
-            if copied != step {
-                return Err(Error::read(
-                    input_path,
-                    io::Error::new(
-                        io::ErrorKind::UnexpectedEof,
-                        format!(
-                            "the file shrank while it was being copied; {} was not written",
-                            self.final_path.display()
-                        ),
-                    ),
-                ));
+        let source_len = input
+            .metadata()
+            .map_err(|e| Error::read(input_path, e))?
+            .len();
+        let mut at = offset;
+        for piece in share::pieces(offset, self.position, len, self.block, source_len) {
+            let mut left = piece;
+            while left > 0 {
+                self.check_interrupt()?;
+                // CHUNK is a multiple of every block size, so chunks keep the alignment.
+                let step = left.min(CHUNK);
+                self.copy_step(input, input_path, at, step)?;
+                self.written(step);
+                progress.advance(step);
+                at += step;
+                left -= step;
             }
-            self.written(step);
-            left -= step;
-            progress.advance(step);
         }
         Ok(())
+    }
+
+    /// Copy one chunk: in the kernel while it will, else through user space.
+    fn copy_step(&mut self, input: &File, input_path: &Path, at: u64, len: u64) -> Result<()> {
+        let mut done = 0;
+        if self.kernel_copy {
+            let out = self.file.as_ref().expect("file is open until commit");
+            match share::kernel_copy(input, at, out, len)
+                .map_err(|e| write_error(&self.final_path, "cannot write", e))?
+            {
+                share::Copied::All => return Ok(()),
+                share::Copied::SourceEnded(_) => return Err(self.shrank(input_path)),
+                share::Copied::Unsupported(n) => {
+                    self.kernel_copy = false;
+                    done = n;
+                }
+            }
+        }
+        let mut reader = input;
+        reader
+            .seek(SeekFrom::Start(at + done))
+            .map_err(|e| Error::read(input_path, e))?;
+        let want = len - done;
+        let copied = io::copy(&mut Read::take(reader, want), self.file())
+            .map_err(|e| write_error(&self.final_path, "cannot write", e))?;
+        if copied != want {
+            return Err(self.shrank(input_path));
+        }
+        Ok(())
+    }
+
+    fn shrank(&self, input_path: &Path) -> Error {
+        Error::read(
+            input_path,
+            io::Error::new(
+                io::ErrorKind::UnexpectedEof,
+                format!(
+                    "the file shrank while it was being copied; {} was not written",
+                    self.final_path.display()
+                ),
+            ),
+        )
     }
 
     /// Write `bytes` to the end of the output.
@@ -484,26 +542,31 @@ impl AtomicFile {
         Ok(())
     }
 
-    /// Account for bytes written; for a durable write, start their writeback to disk now
-    /// (sync_file_range), so the final sync overlaps with the copy instead of following it.
+    /// Account for bytes written; for a durable write, start the writeback of every further
+    /// `WRITEBACK_STEP` bytes now (sync_file_range), so the final sync overlaps with the copy
+    /// instead of following it. Steps rather than every write: a file of many small records
+    /// would otherwise send the disk one small write per record (cloned ranges have nothing
+    /// to write back).
     fn written(&mut self, len: u64) {
-        let start = self.position;
         self.position += len;
-        if self.rules.sync {
-            if let Some(f) = &self.file {
-                use std::os::fd::AsRawFd;
-                // SAFETY: a plain system call on an open descriptor; failure only loses the
-                // head start, the final fsync still makes the data durable.
-                unsafe {
-                    libc::sync_file_range(
-                        f.as_raw_fd(),
-                        start as i64,
-                        len as i64,
-                        libc::SYNC_FILE_RANGE_WRITE,
-                    );
-                }
+        let pending = self.position - self.writeback_from;
+        if !self.rules.sync || pending < WRITEBACK_STEP {
+            return;
+        }
+        if let Some(f) = &self.file {
+            use std::os::fd::AsRawFd;
+            // SAFETY: a plain system call on an open descriptor; failure only loses the
+            // head start, the final fsync still makes the data durable.
+            unsafe {
+                libc::sync_file_range(
+                    f.as_raw_fd(),
+                    self.writeback_from as i64,
+                    pending as i64,
+                    libc::SYNC_FILE_RANGE_WRITE,
+                );
             }
         }
+        self.writeback_from = self.position;
     }
 }
 

@@ -8,10 +8,12 @@ pub mod directory;
 pub mod json;
 pub mod npz;
 pub mod pickle;
+pub mod placement;
 pub mod safetensors;
 pub mod sharded;
 pub mod torch;
 pub mod writer;
+pub mod zipout;
 
 use std::fs::{File, FileType, Metadata, OpenOptions};
 use std::io::Read;

@@ -11,6 +11,7 @@ use serde::de::{Deserializer, MapAccess, Visitor};
 use serde::Deserialize;
 use serde_json::Value;
 
+use super::placement::{self, Piece};
 use super::writer::{copy_entries, write_file, Destination, Output, Preview, Writer, Written};
 use super::{Checkpoint, Dtype, Format, TensorEntry};
 use crate::error::FormatProblem;
@@ -377,15 +378,28 @@ impl<'de> Deserialize<'de> for TopLevel {
     }
 }
 
-/// Serialise a header: `entries` are (name, dtype, shape, relative begin, relative end) in the
-/// order to write them; metadata goes at `metadata_position` among the keys. The result
-/// includes the 8-byte length prefix and is padded with spaces to a multiple of 8 bytes, so
-/// the data area stays 8-byte aligned.
+/// One header entry: (name, dtype, shape, relative begin, relative end).
+pub type HeaderEntry = (String, Dtype, Vec<usize>, u64, u64);
+
+/// Serialise a header: `entries` in the order to write them; metadata goes at
+/// `metadata_position` among the keys. The result includes the 8-byte length prefix and is
+/// padded with spaces to a multiple of 8 bytes, so the data area stays 8-byte aligned.
 pub fn encode_header(
-    entries: &[(String, Dtype, Vec<usize>, u64, u64)],
+    entries: &[HeaderEntry],
     metadata: Option<&[(String, String)]>,
     metadata_position: usize,
 ) -> Vec<u8> {
+    let json = header_json(entries, metadata, metadata_position);
+    let start = placement::start_offset(8 + json.len() as u64, None, 8);
+    with_prefix(json, start)
+}
+
+/// The header as JSON text, unpadded.
+fn header_json(
+    entries: &[HeaderEntry],
+    metadata: Option<&[(String, String)]>,
+    metadata_position: usize,
+) -> String {
     let mut out = String::from("{");
     let mut first = true;
     let mut push_key = |out: &mut String, key: &str| {
@@ -423,25 +437,39 @@ pub fn encode_header(
         write_metadata(&mut out, &mut push_key);
     }
     out.push('}');
-    while (out.len() + 8) % 8 != 0 {
-        out.push(' ');
-    }
-    let mut bytes = Vec::with_capacity(8 + out.len());
-    bytes.extend_from_slice(&(out.len() as u64).to_le_bytes());
-    bytes.extend_from_slice(out.as_bytes());
+    out
+}
+
+/// The length prefix and `json`, padded with trailing spaces (JSON whitespace, which the
+/// format allows) so that the data area starts at `data_start`.
+fn with_prefix(mut json: String, data_start: u64) -> Vec<u8> {
+    let spaces = data_start.saturating_sub(8 + json.len() as u64) as usize;
+    json.extend(std::iter::repeat_n(' ', spaces));
+    let mut bytes = Vec::with_capacity(8 + json.len());
+    bytes.extend_from_slice(&(json.len() as u64).to_le_bytes());
+    bytes.extend_from_slice(json.as_bytes());
     bytes
 }
 /// The metadata key posgrid adds, holding its provenance as a JSON string.
 pub const PROVENANCE_KEY: &str = "posgrid";
 
-/// Writes a safetensors file: header keys in output order, data in the source's data order
-/// when the source is one safetensors file (so untouched runs stay back to back and are
-/// copied in one step), the source's metadata kept with the provenance key added.
+/// Writes a safetensors file: header keys in output order, the source's metadata kept with
+/// the provenance key added. The data area follows the source's data order when the source
+/// is one safetensors file (so untouched runs stay back to back and are copied in one step),
+/// with resized tables kept in place or moved to the end and the header padded, whichever
+/// keeps the most untouched bytes at their source offset modulo the block size: on a file
+/// system that shares extents, those blocks are then cloned rather than copied.
 pub struct SafetensorsWriter;
 
+/// The output's layout: entry indices in data order, and the header that goes before them.
+struct Layout {
+    order: Vec<usize>,
+    header: Vec<u8>,
+}
+
 impl SafetensorsWriter {
-    /// Output entry indices in the order their data is laid out.
-    fn data_order(out: &Output) -> Vec<usize> {
+    /// Output entry indices in the source's data order.
+    fn source_order(out: &Output) -> Vec<usize> {
         let mut order: Vec<usize> = (0..out.entries.len()).collect();
         if out.source.as_any().is::<Checkpoint>() {
             order.sort_by_key(|&i| (out.entries[i].origin.begin, out.entries[i].origin.end));
@@ -449,7 +477,60 @@ impl SafetensorsWriter {
         order
     }
 
-    fn header(out: &Output, order: &[usize]) -> Vec<u8> {
+    /// The data area as pieces: runs of copied entries that lie back to back in one source
+    /// file, and entries written anew (or streamed), each with the entries it holds.
+    fn pieces(out: &Output, order: &[usize]) -> (Vec<Piece>, Vec<Vec<usize>>) {
+        let mut pieces: Vec<Piece> = Vec::new();
+        let mut members: Vec<Vec<usize>> = Vec::new();
+        let mut last_file: Option<&std::fs::File> = None;
+        for &i in order {
+            let entry = &out.entries[i];
+            let span = match entry.new {
+                None => out.source.span(entry.origin),
+                Some(_) => None,
+            };
+            let Some(span) = span else {
+                pieces.push(Piece::New {
+                    len: entry.byte_len(),
+                });
+                members.push(vec![i]);
+                last_file = None;
+                continue;
+            };
+            if let (Some(Piece::Kept { at, len }), Some(f)) = (pieces.last_mut(), last_file) {
+                if std::ptr::eq(f, span.file) && *at + *len == span.offset {
+                    *len += span.len;
+                    members.last_mut().expect("a member per piece").push(i);
+                    continue;
+                }
+            }
+            pieces.push(Piece::Kept {
+                at: span.offset,
+                len: span.len,
+            });
+            members.push(vec![i]);
+            last_file = Some(span.file);
+        }
+        (pieces, members)
+    }
+
+    fn layout(out: &Output) -> Layout {
+        let (pieces, members) = Self::pieces(out, &Self::source_order(out));
+        let placed = placement::place(&pieces, out.block);
+        let order: Vec<usize> = placed
+            .order
+            .iter()
+            .flat_map(|&p| members[p].iter().copied())
+            .collect();
+        let json = Self::header_json(out, &order);
+        let start = placement::start_offset(8 + json.len() as u64, placed.start_residue, out.block);
+        Layout {
+            order,
+            header: with_prefix(json, start),
+        }
+    }
+
+    fn header_json(out: &Output, order: &[usize]) -> String {
         let mut offsets = vec![(0u64, 0u64); out.entries.len()];
         let mut cursor = 0u64;
         for &i in order {
@@ -478,13 +559,12 @@ impl SafetensorsWriter {
             Some(c) if c.metadata().is_some() => c.header().metadata_position,
             _ => 0,
         };
-        encode_header(&entries, Some(&metadata), position)
+        header_json(&entries, Some(&metadata), position)
     }
 
     /// The size of the file this writer makes.
     pub(crate) fn size(out: &Output) -> u64 {
-        let order = Self::data_order(out);
-        Self::header(out, &order).len() as u64
+        Self::layout(out).header.len() as u64
             + out.entries.iter().map(|e| e.byte_len()).sum::<u64>()
     }
 
@@ -494,9 +574,9 @@ impl SafetensorsWriter {
         file: &mut AtomicFile,
         progress: &mut dyn Progress,
     ) -> crate::error::Result<()> {
-        let order = Self::data_order(out);
-        file.write(&Self::header(out, &order), progress)?;
-        copy_entries(out, &order, file, progress)
+        let layout = Self::layout(out);
+        file.write(&layout.header, progress)?;
+        copy_entries(out, &layout.order, file, progress)
     }
 }
 

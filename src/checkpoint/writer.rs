@@ -48,9 +48,28 @@ pub struct Output<'a> {
     /// mask of a block whose window now covers its map). A writer that keeps the source's
     /// structure (archive members, shard index, object tree) must leave them out of it too.
     pub left_out: Vec<String>,
+    /// The block size of the destination's file system: untouched bytes laid out at their
+    /// source offset modulo it can share blocks with the source (see `crate::write::share`).
+    pub block: u64,
 }
 
 impl<'a> Output<'a> {
+    /// An output laid out for the usual 4 KiB blocks.
+    pub fn new(
+        source: &'a dyn Reader,
+        entries: Vec<OutEntry<'a>>,
+        provenance: serde_json::Value,
+    ) -> Self {
+        Output {
+            source,
+            entries,
+            provenance,
+            edits: Vec::new(),
+            left_out: Vec::new(),
+            block: crate::write::share::DEFAULT_BLOCK,
+        }
+    }
+
     /// The same output over another source (one shard of a set): the entries that come from it.
     pub fn restricted(&self, source: &'a dyn Reader, keep: impl Fn(&OutEntry) -> bool) -> Self {
         Output {
@@ -59,6 +78,7 @@ impl<'a> Output<'a> {
             provenance: self.provenance.clone(),
             edits: self.edits.clone(),
             left_out: self.left_out.clone(),
+            block: self.block,
         }
     }
 

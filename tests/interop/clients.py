@@ -45,6 +45,9 @@ def tensors(dtype):
         "encoder.cls_token": rng.standard_normal((1, 1, D)).astype(dtype),
         "encoder.blocks.0.mlp.fc1.weight": rng.standard_normal((4 * D, D)).astype(dtype),
         "step": np.array([1234], dtype=np.int64),
+        # Large enough to hold whole 4 KiB blocks: posgrid then pads its header so that this
+        # tensor keeps its offset modulo the block, which the reference loader must accept.
+        "encoder.blocks.1.mlp.fc2.weight": rng.standard_normal((64, 1000)).astype(dtype),
     }
 
 
@@ -111,6 +114,8 @@ def jax_arrays():
         "Transformer/encoderblock_0/MlpBlock_3/Dense_0/kernel": rng.standard_normal((D, 4 * D)).astype(np.float32),
         "cls": rng.standard_normal((1, 1, D)).astype(np.float32),
         "head/kernel": rng.standard_normal((D, 10)).astype(">f4"),
+        # Whole 4 KiB blocks: posgrid pads the member's local header to keep its offset.
+        "Transformer/encoderblock_1/MlpBlock_3/Dense_1/kernel": rng.standard_normal((1000, 64)).astype(np.float32),
     }
 
 

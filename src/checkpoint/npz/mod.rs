@@ -38,6 +38,8 @@ pub struct Member {
 /// An opened, validated npz archive.
 pub struct Npz {
     path: PathBuf,
+    /// The archive file, for copying members' stored bytes file to file.
+    file: File,
     archive: RefCell<zip::ZipArchive<File>>,
     entries: Vec<TensorEntry>,
     members: Vec<Member>,
@@ -236,7 +238,8 @@ impl Npz {
         if file_len == 0 {
             return Err(invalid(path, "is empty, not an npz archive".into()));
         }
-        let mut archive = zip::ZipArchive::new(file)
+        let handle = file.try_clone().map_err(|e| Error::read(path, e))?;
+        let mut archive = zip::ZipArchive::new(handle)
             .map_err(|e| invalid(path, format!("not a valid npz (ZIP) archive: {e}")))?;
         check_member_names(&archive).map_err(|m| invalid(path, m))?;
         let mut entries = Vec::new();
@@ -309,6 +312,7 @@ impl Npz {
         }
         Ok(Npz {
             path: path.to_path_buf(),
+            file,
             archive: RefCell::new(archive),
             entries,
             members,
@@ -322,6 +326,11 @@ impl Npz {
 
     pub fn file_len(&self) -> u64 {
         self.file_len
+    }
+
+    /// The archive file.
+    pub fn file(&self) -> &File {
+        &self.file
     }
 
     pub fn entries(&self) -> &[TensorEntry] {

@@ -1,10 +1,14 @@
 //! Writing npz archives. From an npz source the archive is patched: changed arrays rewritten
 //! (little-endian, same dtype and member compression), every other member copied as its
-//! compressed bytes. From any other source each tensor becomes a stored `.npy` member. Copied
-//! tensors are streamed through a fixed buffer, so memory does not grow with the input (an npz
-//! member may inflate to far more than the archive's size).
+//! stored bytes, file to file, at its source offset modulo the block size (so a file system
+//! that shares extents clones it); names, times and attributes are kept. From any other
+//! source each tensor becomes a stored `.npy` member. Copied tensors are streamed through a
+//! fixed buffer, so memory does not grow with the input (an npz member may inflate to far more
+//! than the archive's size).
 
+use std::borrow::Cow;
 use std::collections::HashMap;
+use std::io::Write as _;
 
 use zip::write::SimpleFileOptions;
 use zip::{CompressionMethod, ZipWriter};
@@ -13,7 +17,8 @@ use super::{descr_of, npy_header, Npz};
 use crate::checkpoint::writer::{
     check_interrupt, write_file, Destination, OutEntry, Output, Preview, Writer, Written,
 };
-use crate::checkpoint::Format;
+use crate::checkpoint::zipout::{self, Alignment, Body, Record};
+use crate::checkpoint::{Format, Span};
 use crate::error::{Error, FormatProblem, Result};
 use crate::write::{self, AtomicFile, Progress};
 
@@ -51,11 +56,18 @@ impl Writer for NpzWriter {
         &self,
         out: &Output,
         dest: &Destination,
-        _progress: &mut dyn Progress,
+        progress: &mut dyn Progress,
     ) -> Result<Written> {
         write_file(dest, |file| {
             match out.source.as_any().downcast_ref::<Npz>() {
-                Some(npz) => patch(npz, out, file),
+                Some(npz) => {
+                    // npz readers ask no alignment: only copied members are placed.
+                    let align = Alignment {
+                        base: 1,
+                        block: out.block,
+                    };
+                    zipout::write_archive(&patch(npz, out)?, &align, file, progress)
+                }
                 None => fresh(out, file),
             }
         })
@@ -114,8 +126,9 @@ fn zip_writer(file: &mut AtomicFile) -> Result<ZipWriter<std::fs::File>> {
     Ok(ZipWriter::new(f))
 }
 
-/// An archive like `src`, member by member: changed arrays rewritten, the rest copied raw.
-fn patch(src: &Npz, out: &Output, file: &mut AtomicFile) -> Result<()> {
+/// An archive like `src`, member by member: changed arrays rewritten, the rest copied as
+/// they are stored.
+fn patch<'a>(src: &'a Npz, out: &'a Output<'a>) -> Result<Vec<Record<'a>>> {
     let by_member: HashMap<usize, &OutEntry> = out
         .entries
         .iter()
@@ -133,40 +146,113 @@ fn patch(src: &Npz, out: &Output, file: &mut AtomicFile) -> Result<()> {
         .filter(|(t, _)| out.left_out.contains(&t.name))
         .map(|(_, m)| m.index)
         .collect();
-    let mut zip = zip_writer(file)?;
     let mut archive = src.archive();
+    let mut records = Vec::with_capacity(archive.len());
     for index in 0..archive.len() {
-        check_interrupt(file.final_path())?;
         if left_out.contains(&index) {
             continue;
         }
-        match by_member.get(&index) {
-            Some(entry) => {
-                let m = src
-                    .members()
-                    .iter()
-                    .find(|m| m.index == index)
-                    .expect("mapped from the members");
-                let method = if m.stored {
-                    CompressionMethod::Stored
-                } else {
-                    CompressionMethod::Deflated
-                };
-                write_member(&mut zip, file, out, entry, m.file_name.clone(), method)?;
-            }
-            None => {
-                let member = archive.by_index_raw(index).map_err(|e| {
-                    Error::invalid(
-                        src.path(),
-                        FormatProblem::Other(format!("ZIP member {index}: {e}")),
-                    )
-                })?;
-                zip.raw_copy_file(member).map_err(|e| zip_error(file, e))?;
-            }
-        }
+        let member = archive.by_index_raw(index).map_err(|e| {
+            Error::invalid(
+                src.path(),
+                FormatProblem::Other(format!("ZIP member {index}: {e}")),
+            )
+        })?;
+        let stored = stored_member(src, index, &member)?;
+        let body = match by_member.get(&index) {
+            Some(entry) => new_member(entry, stored.deflated),
+            None => Body::Copy {
+                span: Span {
+                    file: src.file(),
+                    path: src.path(),
+                    offset: stored.data_start,
+                    len: member.compressed_size(),
+                },
+                crc32: Some(member.crc32()),
+                size: member.size(),
+                deflated: stored.deflated,
+            },
+        };
+        records.push(Record {
+            name: stored.name,
+            body,
+            stamp: member
+                .last_modified()
+                .map_or((0, zipout::DOS_DATE), |t| (t.timepart(), t.datepart())),
+            made_by: ((member.system() as u16) << 8) | 45,
+            attributes: member.external_attributes(),
+        });
     }
-    zip.finish().map_err(|e| zip_error(file, e))?;
-    Ok(())
+    Ok(records)
+}
+
+/// What a member's copy needs, checked: its name, where its stored bytes start (inside the
+/// file), and whether they are deflated (the only compressions numpy writes).
+struct StoredMember {
+    name: String,
+    data_start: u64,
+    deflated: bool,
+}
+
+fn stored_member(
+    src: &Npz,
+    index: usize,
+    member: &zip::read::ZipFile<'_, std::fs::File>,
+) -> Result<StoredMember> {
+    let refuse = |why: String| {
+        Err(Error::invalid(
+            src.path(),
+            FormatProblem::Other(format!("ZIP member {index} {why}")),
+        ))
+    };
+    let name = match member.name() {
+        Ok(n) => n.into_owned(),
+        Err(e) => return refuse(format!("has a name that cannot be read: {e}")),
+    };
+    if member.encrypted() {
+        return refuse(format!("({name}) is encrypted and cannot be copied"));
+    }
+    let deflated = match member.compression() {
+        CompressionMethod::Stored => false,
+        CompressionMethod::Deflated => true,
+        other => {
+            return refuse(format!(
+                "({name}) is compressed with {other}, which posgrid does not copy"
+            ))
+        }
+    };
+    let inside = member.data_start().filter(|&at| {
+        at.checked_add(member.compressed_size())
+            .is_some_and(|end| end <= src.file_len())
+    });
+    match inside {
+        Some(data_start) => Ok(StoredMember {
+            name,
+            data_start,
+            deflated,
+        }),
+        None => refuse(format!("({name}) runs past the end of the file")),
+    }
+}
+
+/// A rewritten array's member: its `.npy` header and new bytes, deflated when the member was.
+fn new_member<'a>(entry: &OutEntry, deflated: bool) -> Body<'a> {
+    let descr = descr_of(entry.dtype()).expect("checked before writing");
+    let mut bytes = npy_header(descr, &entry.shape);
+    bytes.extend_from_slice(entry.new.expect("a changed entry has new bytes"));
+    if !deflated {
+        return Body::Bytes(Cow::Owned(bytes));
+    }
+    let mut encoder =
+        flate2::write::DeflateEncoder::new(Vec::new(), flate2::Compression::default());
+    encoder
+        .write_all(&bytes)
+        .expect("deflating into memory cannot fail");
+    Body::Deflated {
+        crc32: crc32fast::hash(&bytes),
+        size: bytes.len() as u64,
+        data: encoder.finish().expect("deflating into memory cannot fail"),
+    }
 }
 
 /// Every entry as a stored `.npy` member, in output order.
