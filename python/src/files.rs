@@ -53,6 +53,8 @@ impl Discovery {
             patch: self.patch,
             tensors: self.tensors.clone(),
             channels: self.channels,
+            new_patch: None,
+            recorded_grid: None,
         }
     }
 
@@ -144,9 +146,9 @@ pub fn scan<'py>(
 /// (4), posgrid.WriteError (5) or posgrid.RefusedError (6), with the command line's message.
 #[pyfunction]
 #[pyo3(
-    text_signature = "(path, out, *, grid=None, image=None, frames=None, window=None, source_grid=None, slots=None, patch=None, tensors=None, channels=None, kernel=\"bicubic\", coords=\"half-pixel\", edges=\"clamp\", antialias=\"auto\", cubic_a=-0.75, relative=\"kernel\", rebuild_sincos=False, allow_nonfinite=False, dry_run=False, force=False, sync=True, format=None, state_dict=None, strip_prefix=None, model_only=False, map=None, refs=16, memory_limit=\"4G\")"
+    text_signature = "(path, out, *, grid=None, image=None, scale=None, frames=None, window=None, new_patch=None, source_grid=None, slots=None, patch=None, tensors=None, channels=None, kernel=\"bicubic\", coords=\"half-pixel\", edges=\"clamp\", antialias=\"auto\", cubic_a=-0.75, relative=\"kernel\", rebuild_sincos=False, allow_nonfinite=False, dry_run=False, force=False, sync=True, format=None, state_dict=None, strip_prefix=None, model_only=False, keep_config=False, map=None, refs=16, memory_limit=\"4G\")"
 )]
-#[pyo3(signature = (path, out, *, grid=None, image=None, frames=None, window=None, source_grid=None, slots=None, patch=None, tensors=None, channels=None, kernel="bicubic", coords="half-pixel", edges="clamp", antialias="auto", cubic_a=posgrid::resample::DEFAULT_CUBIC_A, relative="kernel", rebuild_sincos=false, allow_nonfinite=false, dry_run=false, force=false, sync=true, format=None, state_dict=None, strip_prefix=None, model_only=false, map=None, refs=None, memory_limit=None))]
+#[pyo3(signature = (path, out, *, grid=None, image=None, scale=None, frames=None, window=None, new_patch=None, source_grid=None, slots=None, patch=None, tensors=None, channels=None, kernel="bicubic", coords="half-pixel", edges="clamp", antialias="auto", cubic_a=posgrid::resample::DEFAULT_CUBIC_A, relative="kernel", rebuild_sincos=false, allow_nonfinite=false, dry_run=false, force=false, sync=true, format=None, state_dict=None, strip_prefix=None, model_only=false, keep_config=false, map=None, refs=None, memory_limit=None))]
 #[allow(clippy::too_many_arguments)]
 pub fn resize<'py>(
     py: Python<'py>,
@@ -154,8 +156,10 @@ pub fn resize<'py>(
     out: &Bound<'py, PyAny>,
     grid: Option<&Bound<'py, PyAny>>,
     image: Option<&Bound<'py, PyAny>>,
+    scale: Option<&Bound<'py, PyAny>>,
     frames: Option<&Bound<'py, PyAny>>,
     window: Option<&Bound<'py, PyAny>>,
+    new_patch: Option<&Bound<'py, PyAny>>,
     source_grid: Option<&Bound<'py, PyAny>>,
     slots: Option<&Bound<'py, PyAny>>,
     patch: Option<&Bound<'py, PyAny>>,
@@ -176,6 +180,7 @@ pub fn resize<'py>(
     state_dict: Option<String>,
     strip_prefix: Option<String>,
     model_only: bool,
+    keep_config: bool,
     map: Option<&Bound<'py, PyAny>>,
     refs: Option<&Bound<'py, PyAny>>,
     memory_limit: Option<&Bound<'py, PyAny>>,
@@ -189,6 +194,9 @@ pub fn resize<'py>(
         output: args::path(out, "out")?,
         grid: grid_arg(py, grid, "grid")?,
         image: args::optional_plane(image, "image")?,
+        scale: scale_arg(scale)?,
+        new_patch: args::optional_plane(new_patch, "new_patch")?,
+        keep_config,
         frames,
         discovery: discovery.into_args(py)?,
         kernel: choice::<Kernel>(py, kernel, "kernel")?,
@@ -218,4 +226,33 @@ pub fn resize<'py>(
         .detach(|| posgrid::resize::run(&job))
         .map_err(|e| from_library(py, e))?;
     to_python(py, &report)
+}
+
+/// A scale as the command line spells it (`"24.1/14"`, `"2x1.5"`), one number for both axes, or
+/// a pair of numbers (rows, columns).
+fn scale_arg(value: Option<&Bound<'_, PyAny>>) -> PyResult<Option<(f64, f64)>> {
+    use pyo3::exceptions::PyValueError;
+    let Some(v) = value.filter(|v| !v.is_none()) else {
+        return Ok(None);
+    };
+    let checked = |s: f64| {
+        (s.is_finite() && s > 0.0).then_some(s).ok_or_else(|| {
+            PyValueError::new_err(format!("scale must be finite and above 0, not {s}"))
+        })
+    };
+    if let Ok(text) = v.extract::<String>() {
+        return cli::parse_scale(&text)
+            .map(Some)
+            .map_err(PyValueError::new_err);
+    }
+    if let Ok(s) = v.extract::<f64>() {
+        let s = checked(s)?;
+        return Ok(Some((s, s)));
+    }
+    let (sy, sx): (f64, f64) = v.extract().map_err(|_| {
+        pyo3::exceptions::PyTypeError::new_err(
+            "scale must be a number, a (rows, columns) pair of numbers, or text such as \"24.1/14\"",
+        )
+    })?;
+    Ok(Some((checked(sy)?, checked(sx)?)))
 }
