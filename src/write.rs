@@ -291,6 +291,10 @@ pub struct AtomicFile {
     position: u64,
     /// Where the bytes whose writeback has not been started begin.
     writeback_from: u64,
+    /// Bytes written through the page cache since then.
+    dirty: u64,
+    /// Whether the kernel clones whole blocks into this file (known after the first try).
+    clones: Option<bool>,
     /// The file system's block size: runs copied at the same offset modulo it can be shared.
     block: u64,
     /// The kernel copies between the input and this file (false after it refused once).
@@ -328,6 +332,8 @@ impl AtomicFile {
             rules: *rules,
             position: 0,
             writeback_from: 0,
+            dirty: 0,
+            clones: None,
             kernel_copy: true,
         };
         if let Some(mode) = kept_mode(final_path, rules, false) {
@@ -467,14 +473,31 @@ impl AtomicFile {
                 self.check_interrupt()?;
                 // CHUNK is a multiple of every block size, so chunks keep the alignment.
                 let step = left.min(CHUNK);
+                let start = self.position;
                 self.copy_step(input, input_path, at, step)?;
-                self.written(step);
+                let whole_blocks = start % self.block == 0
+                    && at % self.block == 0
+                    && (step >= self.block || at + step == source_len);
+                let cloned = whole_blocks && self.kernel_copy && self.clones(start, step);
+                self.written(step, !cloned);
                 progress.advance(step);
                 at += step;
                 left -= step;
             }
         }
         Ok(())
+    }
+
+    /// Whether the kernel clones whole blocks into this file, read once from the extent map
+    /// of the first range of whole blocks it copied (at `start`, `len` bytes).
+    fn clones(&mut self, start: u64, len: u64) -> bool {
+        if let Some(known) = self.clones {
+            return known;
+        }
+        let out = self.file.as_ref().expect("file is open until commit");
+        let shared = share::shared_bytes_in(out, start, start + len).unwrap_or(0) > 0;
+        self.clones = Some(shared);
+        shared
     }
 
     /// Copy one chunk: in the kernel while it will, else through user space.
@@ -527,7 +550,7 @@ impl AtomicFile {
             self.file()
                 .write_all(chunk)
                 .map_err(|e| write_error(&path, "cannot write", e))?;
-            self.written(chunk.len() as u64);
+            self.written(chunk.len() as u64, true);
             progress.advance(chunk.len() as u64);
         }
         Ok(())
@@ -542,15 +565,17 @@ impl AtomicFile {
         Ok(())
     }
 
-    /// Account for bytes written; for a durable write, start the writeback of every further
-    /// `WRITEBACK_STEP` bytes now (sync_file_range), so the final sync overlaps with the copy
-    /// instead of following it. Steps rather than every write: a file of many small records
-    /// would otherwise send the disk one small write per record (cloned ranges have nothing
-    /// to write back).
-    fn written(&mut self, len: u64) {
+    /// Account for bytes written (`dirty`: through the page cache, not cloned); for a durable
+    /// write, start the writeback of the output so far whenever another `WRITEBACK_STEP` dirty
+    /// bytes have accumulated (sync_file_range), so the final sync overlaps with the copy
+    /// instead of following it. Cloned blocks have nothing to write back, and starting the
+    /// writeback of a few small records at a time would only send the disk small writes.
+    fn written(&mut self, len: u64, dirty: bool) {
         self.position += len;
-        let pending = self.position - self.writeback_from;
-        if !self.rules.sync || pending < WRITEBACK_STEP {
+        if dirty {
+            self.dirty += len;
+        }
+        if !self.rules.sync || self.dirty < WRITEBACK_STEP {
             return;
         }
         if let Some(f) = &self.file {
@@ -561,12 +586,13 @@ impl AtomicFile {
                 libc::sync_file_range(
                     f.as_raw_fd(),
                     self.writeback_from as i64,
-                    pending as i64,
+                    (self.position - self.writeback_from) as i64,
                     libc::SYNC_FILE_RANGE_WRITE,
                 );
             }
         }
         self.writeback_from = self.position;
+        self.dirty = 0;
     }
 }
 

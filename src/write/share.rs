@@ -164,7 +164,11 @@ const FIEMAP_EXTENT_SHARED: u32 = 0x2000;
 /// Bytes of `file` whose blocks the file system reports as shared with another file (the
 /// extent map's shared flag). Errors where the file system has no extent map (tmpfs).
 pub fn shared_bytes(file: &File) -> io::Result<u64> {
-    let size = file.metadata()?.len();
+    shared_bytes_in(file, 0, file.metadata()?.len())
+}
+
+/// As [`shared_bytes`], for the bytes `[from, size)` of `file` only.
+pub fn shared_bytes_in(file: &File, from: u64, size: u64) -> io::Result<u64> {
     let mut request: Box<FiemapRequest> = Box::new(FiemapRequest {
         start: 0,
         length: 0,
@@ -181,7 +185,7 @@ pub fn shared_bytes(file: &File) -> io::Result<u64> {
             reserved: [0; 3],
         }; EXTENTS_PER_CALL],
     });
-    let mut at = 0u64;
+    let mut at = from;
     let mut shared = 0u64;
     while at < size {
         request.start = at;
