@@ -126,7 +126,7 @@ fn write_pth(input: &str, pth: &str) {
             })
             .collect(),
         provenance: serde_json::json!({}),
-        left_out: Vec::new(),
+        left_out: Default::default(),
     };
     let dest = Destination {
         path: std::path::Path::new(pth),

@@ -3,6 +3,7 @@
 //! out in its container, in a temporary file or directory beside OUT, ready to be committed
 //! atomically. A conversion is only a different writer.
 
+use std::collections::HashSet;
 use std::path::Path;
 
 use super::{Dtype, Format, Reader, Span, TensorEntry};
@@ -44,7 +45,7 @@ pub struct Output<'a> {
     /// Source tensors the output leaves out because the resized model no longer has them (a
     /// mask of a block whose window now covers its map). A writer that keeps the source's
     /// structure (archive members, shard index, object tree) must leave them out of it too.
-    pub left_out: Vec<String>,
+    pub left_out: HashSet<String>,
 }
 
 impl<'a> Output<'a> {

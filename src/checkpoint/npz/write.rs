@@ -126,7 +126,7 @@ fn patch(src: &Npz, out: &Output, file: &mut AtomicFile) -> Result<()> {
         })
         .collect();
     // Members of tensors the resized model no longer has are not copied.
-    let left_out: Vec<usize> = src
+    let left_out: std::collections::HashSet<usize> = src
         .entries()
         .iter()
         .zip(src.members())
