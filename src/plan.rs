@@ -2,6 +2,7 @@
 //! each kind plans its own tensors and the companions that follow them — checked before any
 //! value is computed or any byte is written.
 
+use std::collections::HashMap;
 use std::path::Path;
 
 use crate::checkpoint::TensorSource;
@@ -200,6 +201,17 @@ impl Plan {
     /// Tensors the output leaves out.
     pub fn drops(&self) -> Vec<&str> {
         self.changes.iter().flat_map(|c| c.drops()).collect()
+    }
+
+    /// The new shape of every rewritten tensor, by name (the first change that rewrites it
+    /// decides, as in [`Plan::new_shape`]): one lookup per tensor of the file, however many
+    /// changes the plan holds.
+    pub fn new_shapes(&self) -> HashMap<&str, &[usize]> {
+        let mut shapes = HashMap::new();
+        for (name, shape) in self.changes.iter().flat_map(|c| c.rewrites()) {
+            shapes.entry(name).or_insert(shape);
+        }
+        shapes
     }
 
     /// Whether the tensor with this name is rewritten by the plan.

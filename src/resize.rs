@@ -117,12 +117,15 @@ pub fn run(job: &ResizeJob) -> Result<ResizeReport> {
         tables: plan.changes.iter().map(|c| c.report()).collect(),
         already_at_target: plan.already_at_target.clone(),
         companions: plan.companions(),
-        copied: source
-            .entries()
-            .iter()
-            .filter(|t| !plan.changes(&t.name))
-            .map(|t| t.name.clone())
-            .collect(),
+        copied: {
+            let rewritten = plan.new_shapes();
+            source
+                .entries()
+                .iter()
+                .filter(|t| !rewritten.contains_key(t.name.as_str()))
+                .map(|t| t.name.clone())
+                .collect()
+        },
         bytes_written: 0,
         output_size: 0,
         bytes_shared: 0,
@@ -193,17 +196,22 @@ fn output_of<'a>(
     selection: &selection::Selection,
     new_data: &'a HashMap<String, Vec<u8>>,
 ) -> Output<'a> {
-    let drops = plan.drops();
+    let drops: HashSet<&str> = plan.drops().into_iter().collect();
+    let shapes = plan.new_shapes();
     Output {
         source: source.reader(),
         entries: source
             .entries()
             .iter()
-            .filter(|t| !drops.contains(&t.name.as_str()))
+            .filter(|t| !drops.contains(t.name.as_str()))
             .filter_map(|t| {
                 Some(OutEntry {
                     name: selection::out_name(&t.name, selection)?,
-                    shape: plan.new_shape(&t.name).unwrap_or(&t.shape).to_vec(),
+                    shape: shapes
+                        .get(t.name.as_str())
+                        .copied()
+                        .unwrap_or(&t.shape)
+                        .to_vec(),
                     origin: t,
                     new: new_data.get(&t.name).map(Vec::as_slice),
                 })

@@ -453,6 +453,10 @@ pub struct Source {
     reader: Box<dyn Reader>,
     /// The model directory the weights were found in, when a directory was given.
     directory: Option<directory::ModelDir>,
+    /// Each name's place in `entries`, so that finding a tensor costs the same in a file of
+    /// a hundred thousand tensors as in one of ten (discovery and planning look up companions
+    /// by name for every table).
+    by_name: std::collections::HashMap<String, usize>,
 }
 
 impl Source {
@@ -463,22 +467,29 @@ impl Source {
         let path = path.as_ref();
         let is_index = path.extension().is_some_and(|e| e == "json");
         if is_index || (path.is_dir() && directory::has_shard_index(path)) {
-            return Ok(Source {
-                reader: Box::new(sharded::ShardedSet::open(path)?),
-                directory: None,
-            });
+            return Ok(Source::new(
+                Box::new(sharded::ShardedSet::open(path)?),
+                None,
+            ));
         }
         if path.is_dir() {
             let dir = directory::ModelDir::find(path)?;
-            return Ok(Source {
-                reader: open_file(&dir.weights)?,
-                directory: Some(dir),
-            });
+            return Ok(Source::new(open_file(&dir.weights)?, Some(dir)));
         }
-        Ok(Source {
-            reader: open_file(path)?,
-            directory: None,
-        })
+        Ok(Source::new(open_file(path)?, None))
+    }
+
+    /// A source over `reader`, with its name index built once.
+    fn new(reader: Box<dyn Reader>, directory: Option<directory::ModelDir>) -> Self {
+        let mut by_name = std::collections::HashMap::new();
+        for (i, t) in reader.entries().iter().enumerate() {
+            by_name.entry(t.name.clone()).or_insert(i);
+        }
+        Source {
+            reader,
+            directory,
+            by_name,
+        }
     }
 
     /// The model directory the weights come from, if a directory was opened.
@@ -543,6 +554,9 @@ impl TensorSource for Source {
     }
     fn source_path(&self) -> &Path {
         self.reader.source_path()
+    }
+    fn find(&self, name: &str) -> Option<&TensorEntry> {
+        self.by_name.get(name).map(|&i| &self.entries()[i])
     }
 }
 

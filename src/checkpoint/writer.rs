@@ -3,6 +3,7 @@
 //! out in its container, in a temporary file or directory beside OUT, ready to be committed
 //! atomically. A conversion is only a different writer.
 
+use std::collections::HashSet;
 use std::path::Path;
 
 use super::{Dtype, Format, Reader, Span, TensorEntry};
@@ -47,7 +48,7 @@ pub struct Output<'a> {
     /// Source tensors the output leaves out because the resized model no longer has them (a
     /// mask of a block whose window now covers its map). A writer that keeps the source's
     /// structure (archive members, shard index, object tree) must leave them out of it too.
-    pub left_out: Vec<String>,
+    pub left_out: HashSet<String>,
     /// The block size of the destination's file system: untouched bytes laid out at their
     /// source offset modulo it can share blocks with the source (see `crate::write::share`).
     pub block: u64,
@@ -65,7 +66,7 @@ impl<'a> Output<'a> {
             entries,
             provenance,
             edits: Vec::new(),
-            left_out: Vec::new(),
+            left_out: Default::default(),
             block: crate::write::share::DEFAULT_BLOCK,
         }
     }

@@ -139,7 +139,7 @@ fn patch<'a>(src: &'a Npz, out: &'a Output<'a>) -> Result<Vec<Record<'a>>> {
         })
         .collect();
     // Members of tensors the resized model no longer has are not copied.
-    let left_out: Vec<usize> = src
+    let left_out: std::collections::HashSet<usize> = src
         .entries()
         .iter()
         .zip(src.members())

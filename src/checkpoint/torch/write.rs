@@ -220,9 +220,10 @@ fn leave_out(src: &TorchFile, out: &Output, tree: &mut Pickle) -> Result<()> {
     if left.is_empty() {
         return Ok(());
     }
+    let ids: HashSet<NodeId> = left.iter().map(|(_, id)| *id).collect();
     for node in &mut tree.nodes {
         if let Node::Dict { items, .. } = node {
-            items.retain(|(_, value)| !left.iter().any(|(_, id)| id == value));
+            items.retain(|(_, value)| !ids.contains(value));
         }
     }
     let reachable = tree.reachable();

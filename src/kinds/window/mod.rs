@@ -10,6 +10,8 @@
 //! class rows spans the whole patch grid and follows `--grid`/`--image`; one without follows
 //! `--window`.
 
+use std::collections::HashMap;
+
 use serde::Serialize;
 
 use super::names::{integer_sqrt, normalized, parent};
@@ -120,15 +122,16 @@ fn square_readings(rows: usize) -> Vec<(usize, bool)> {
 pub(super) fn find(source: &dyn TensorSource, hints: &Hints, found: &mut Discovery) -> Result<()> {
     let entries = source.entries();
     let patch = super::absolute::model_patch(entries, hints);
+    let buffers = Buffers::of(entries);
     let mut tables = Vec::new();
     for entry in entries {
         let forced = hints.tensors.contains(&entry.name);
         if !is_table_name(&entry.name) {
             continue;
         }
-        match examine(source, entry, patch.clone())? {
+        match examine(source, &buffers, entry, patch.clone())? {
             Ok(mut table) => {
-                attach_masks(source, &mut table)?;
+                attach_masks(source, &buffers, &mut table)?;
                 found.warnings.extend(table.unusable_masks.iter().map(|m| {
                     format!(
                         "{}: in the block of {} but not a mask posgrid can rebuild ({}); a resize that changes the table's window is refused",
@@ -177,9 +180,60 @@ pub(super) fn find(source: &dyn TensorSource, hints: &Hints, found: &mut Discove
     Ok(())
 }
 
+/// The index buffers and masks of the file by the module that holds them, gathered in one
+/// pass, so that each table finds its own without a pass over every tensor (a hostile file
+/// may hold many thousands of tables).
+struct Buffers<'a> {
+    /// Index buffers by their module, in file order.
+    indexes: HashMap<&'a str, Vec<&'a TensorEntry>>,
+    /// Masks by their block (module), with their place in the file.
+    masks: HashMap<&'a str, Vec<(usize, &'a TensorEntry)>>,
+}
+
+impl<'a> Buffers<'a> {
+    fn of(entries: &'a [TensorEntry]) -> Self {
+        let mut buffers = Buffers {
+            indexes: HashMap::new(),
+            masks: HashMap::new(),
+        };
+        for (at, e) in entries.iter().enumerate() {
+            if is_index_name(&e.name) {
+                buffers.indexes.entry(parent(&e.name)).or_default().push(e);
+            } else if is_mask_name(&e.name) {
+                buffers
+                    .masks
+                    .entry(parent(&e.name))
+                    .or_default()
+                    .push((at, e));
+            }
+        }
+        buffers
+    }
+
+    /// The first index buffer beside `table` (`a.b.relative_position_index` for
+    /// `a.b.relative_position_bias_table`).
+    fn index_of(&self, table: &str) -> Option<&'a TensorEntry> {
+        self.indexes.get(parent(table))?.first().copied()
+    }
+
+    /// Masks of the blocks that hold `table` — `B.attn_mask` beside `B.….table`, not beside
+    /// a block whose name only starts the same (`blocks.1` is not `blocks.10`) — in file order.
+    fn masks_of(&self, table: &str) -> Vec<&'a TensorEntry> {
+        let mut found: Vec<(usize, &TensorEntry)> = table
+            .match_indices(['.', '/'])
+            .filter_map(|(i, _)| self.masks.get(&table[..i]))
+            .flatten()
+            .copied()
+            .collect();
+        found.sort_by_key(|(at, _)| *at);
+        found.into_iter().map(|(_, e)| e).collect()
+    }
+}
+
 /// Read a table's window (cross-checked against its index buffer when there is one).
 fn examine(
     source: &dyn TensorSource,
+    buffers: &Buffers,
     entry: &TensorEntry,
     patch: Option<(usize, String)>,
 ) -> Result<std::result::Result<WindowTable, String>> {
@@ -201,14 +255,7 @@ fn examine(
         )));
     }
     let mut notes = Vec::new();
-    let index_name = format!(
-        "{}{}",
-        sibling_prefix(&entry.name),
-        "relative_position_index"
-    );
-    let index = source.entries().iter().find(|e| {
-        e.name == index_name || (parent(&e.name) == parent(&entry.name) && is_index_name(&e.name))
-    });
+    let index = buffers.index_of(&entry.name);
     let reading = match index {
         Some(ix) => match index_layout(source, ix, rows)? {
             Ok(layout) => {
@@ -258,16 +305,6 @@ fn examine(
     }))
 }
 
-/// `a.b.relative_position_bias_table` → `a.b.` (the separator kept).
-fn sibling_prefix(name: &str) -> &str {
-    let p = parent(name);
-    if p.is_empty() {
-        ""
-    } else {
-        &name[..p.len() + 1]
-    }
-}
-
 /// The window of an index buffer that indexes a table of `rows` rows, checked value by value.
 fn index_layout(
     source: &dyn TensorSource,
@@ -302,14 +339,15 @@ fn index_layout(
 /// Masks in the table's block: `[nW, N, N]` with N the window's cells, read back to their
 /// feature map and shift by their values. A tensor named like a mask in the block that is no
 /// such mask is kept in `unusable_masks` with the reason.
-fn attach_masks(source: &dyn TensorSource, table: &mut WindowTable) -> Result<()> {
+fn attach_masks(
+    source: &dyn TensorSource,
+    buffers: &Buffers,
+    table: &mut WindowTable,
+) -> Result<()> {
     if table.class_rows {
         return Ok(());
     }
-    for entry in source.entries() {
-        if !is_mask_name(&entry.name) || !in_block_of(&entry.name, &table.name) {
-            continue;
-        }
+    for entry in buffers.masks_of(&table.name) {
         match read_mask(source, entry, table.window)? {
             Ok(mask) => table.masks.push(mask),
             Err(reason) => table.unusable_masks.push(super::Skipped {
@@ -319,15 +357,6 @@ fn attach_masks(source: &dyn TensorSource, table: &mut WindowTable) -> Result<()
         }
     }
     Ok(())
-}
-
-/// Whether `mask` sits in the block that holds `table`: `B.attn_mask` beside `B.….table`, and
-/// not beside a block whose name only starts the same (`blocks.1` is not `blocks.10`).
-fn in_block_of(mask: &str, table: &str) -> bool {
-    let block = parent(mask);
-    table.len() > block.len()
-        && table.starts_with(block)
-        && matches!(table.as_bytes()[block.len()], b'.' | b'/')
 }
 
 /// The map and shift of a mask for `window`, or why it is none.
