@@ -621,6 +621,383 @@ fn rotary_buffers_stored_in_half_precision_rebuild_with_their_round_parameters()
     assert_eq!(json(&r)["tables"][0]["theta"], 10000.0);
 }
 
+#[test]
+fn a_mask_belongs_to_its_own_block_not_to_one_whose_name_it_prefixes() {
+    // `layers.0.blocks.1.attn_mask` sits in block 1; block 10's name starts with block 1's.
+    let mut tensors = shifted_stage();
+    tensors.extend(window_block("layers.0.blocks.10", 7, 3, 2));
+    let input = Input::new(&tensors);
+    let r = input.resize(&["--grid", "24", "--window", "12"]);
+    assert_eq!(r.code, 0, "{}", r.stderr);
+    let bytes = std::fs::read(input.out()).unwrap();
+    let out = safetensors::SafeTensors::deserialize(&bytes).unwrap();
+    let mask = out.tensor("layers.0.blocks.1.attn_mask").unwrap();
+    assert_eq!(mask.shape(), [4, 144, 144]);
+    let want = floats("m", Dtype::F32, &[4, 144, 144], &shifted_mask(24, 12, 6));
+    assert!(
+        mask.data() == want.bytes.as_slice(),
+        "the mask of a 24x24 map"
+    );
+    for block in [1, 10] {
+        let index = out
+            .tensor(&format!(
+                "layers.0.blocks.{block}.attn.relative_position_index"
+            ))
+            .unwrap();
+        let want = ints("i", Dtype::I64, &[144, 144], &relative_index(12, 12));
+        assert!(index.data() == want.bytes.as_slice(), "block {block}");
+    }
+    assert_eq!(out.len(), tensors.len(), "no mask invented for block 10");
+    assert_eq!(std::fs::read(&input.path).unwrap(), input.bytes);
+}
+
+/// One hostile file and request, and the exit code it must end with.
+struct Case {
+    what: &'static str,
+    tensors: Vec<T>,
+    args: &'static [&'static str],
+    code: i32,
+}
+
+fn case(what: &'static str, tensors: Vec<T>, args: &'static [&'static str], code: i32) -> Case {
+    Case {
+        what,
+        tensors,
+        args,
+        code,
+    }
+}
+
+/// A window-7 table with `table` in place of its values, and its index.
+fn window_with(table: T) -> Vec<T> {
+    let mut t = window_block("b", 7, 3, 1);
+    t[0] = table;
+    t
+}
+
+/// A window-7 table with `index` in place of its index buffer.
+fn index_with(index: T) -> Vec<T> {
+    let mut t = window_block("b", 7, 3, 1);
+    t[1] = index;
+    t
+}
+
+fn hostile_cases() -> Vec<Case> {
+    let table = "b.attn.relative_position_bias_table";
+    let index = "b.attn.relative_position_index";
+    let good_index = relative_index(7, 7);
+    let mut negative = good_index.clone();
+    negative[3 * 49 + 4] = -5;
+    let mut past = good_index.clone();
+    past[3 * 49 + 4] = 1 << 40;
+    let mut nan_table = noise(169 * 3, 1, 1.0);
+    nan_table[16] = f64::NAN;
+    let mut near_max = noise(169 * 3, 1, 1.0);
+    near_max[16] = 3.3e38;
+    let (cos, sin) = rotary(16, 16.0, 8, 10000.0);
+    let mut nan_cos = cos.clone();
+    nan_cos[17 * 16 + 3] = f64::NAN;
+    let mut inf_axis = noise(27 * 4, 0, 1.0);
+    inf_axis[0] = f64::INFINITY;
+    let mut axial_inf = axial_pairs();
+    axial_inf[0] = floats("blocks.0.attn.rel_pos_h", Dtype::F32, &[27, 4], &inf_axis);
+    let mut nan_frames = noise(8 * 24, 5, 1.0);
+    nan_frames[50] = f64::NAN;
+    let video = || {
+        vec![
+            floats("pos_embed", Dtype::F32, &[1, 19, 4], &noise(76, 4, 1.0)),
+            floats(
+                "patch_embed.proj.weight",
+                Dtype::F32,
+                &[4, 3, 2, 2, 2],
+                &noise(96, 5, 1.0),
+            ),
+        ]
+    };
+    let ints_table = |dtype| ints(table, dtype, &[169, 3], &vec![1; 169 * 3]);
+    let floats_table = |dtype| floats(table, dtype, &[169, 3], &noise(169 * 3, 1, 1.0));
+    let w12: &[&str] = &["--grid", "16", "--window", "12"];
+    vec![
+        case(
+            "no heads",
+            window_with(floats(table, Dtype::F32, &[169, 0], &[])),
+            w12,
+            4,
+        ),
+        case(
+            "100000 heads",
+            vec![floats(table, Dtype::F32, &[1, 100000], &vec![0.0; 100000])],
+            w12,
+            4,
+        ),
+        case(
+            "float index",
+            index_with(floats(
+                index,
+                Dtype::F32,
+                &[49, 49],
+                &good_index.iter().map(|v| *v as f64).collect::<Vec<_>>(),
+            )),
+            w12,
+            4,
+        ),
+        case(
+            "index not square",
+            index_with(ints(index, Dtype::I64, &[49, 48], &good_index[..49 * 48])),
+            w12,
+            4,
+        ),
+        case(
+            "index of 3 axes",
+            index_with(ints(index, Dtype::I64, &[1, 49, 49], &good_index)),
+            w12,
+            4,
+        ),
+        case(
+            "negative index",
+            index_with(ints(index, Dtype::I64, &[49, 49], &negative)),
+            w12,
+            4,
+        ),
+        case(
+            "index past the table",
+            index_with(ints(index, Dtype::I64, &[49, 49], &past)),
+            w12,
+            4,
+        ),
+        case(
+            "boolean index",
+            index_with(T {
+                name: index.into(),
+                dtype: Dtype::BOOL,
+                shape: vec![49, 49],
+                bytes: vec![1; 49 * 49],
+            }),
+            w12,
+            4,
+        ),
+        case(
+            "empty index",
+            index_with(ints(index, Dtype::I64, &[0, 0], &[])),
+            w12,
+            4,
+        ),
+        case("F16 table", window_with(floats_table(Dtype::F16)), w12, 0),
+        case("BF16 table", window_with(floats_table(Dtype::BF16)), w12, 0),
+        case("F64 table", window_with(floats_table(Dtype::F64)), w12, 0),
+        case("I32 table", window_with(ints_table(Dtype::I32)), w12, 4),
+        case("I64 table", window_with(ints_table(Dtype::I64)), w12, 4),
+        case("U8 table", window_with(ints_table(Dtype::U8)), w12, 4),
+        case("I8 table", window_with(ints_table(Dtype::I8)), w12, 4),
+        case(
+            "NaN in the table",
+            window_with(floats(table, Dtype::F32, &[169, 3], &nan_table)),
+            w12,
+            6,
+        ),
+        case(
+            "NaN allowed",
+            window_with(floats(table, Dtype::F32, &[169, 3], &nan_table)),
+            &["--grid", "16", "--window", "12", "--allow-nonfinite"],
+            0,
+        ),
+        case(
+            "values near the F32 largest",
+            window_with(floats(table, Dtype::F32, &[169, 3], &near_max)),
+            w12,
+            6,
+        ),
+        case(
+            "window 1",
+            window_block("b", 7, 3, 1),
+            &["--grid", "16", "--window", "1"],
+            0,
+        ),
+        case(
+            "geometric to window 1",
+            window_block("b", 7, 3, 1),
+            &["--grid", "16", "--window", "1", "--relative", "geometric"],
+            6,
+        ),
+        case(
+            "rotary rows not a square",
+            vec![floats(
+                "rope.freqs_cos",
+                Dtype::F32,
+                &[255, 16],
+                &cos[..255 * 16],
+            )],
+            &["--grid", "24"],
+            4,
+        ),
+        case(
+            "rotary width 6",
+            vec![floats(
+                "rope.freqs_cos",
+                Dtype::F32,
+                &[256, 6],
+                &vec![1.0; 256 * 6],
+            )],
+            &["--grid", "24"],
+            4,
+        ),
+        case(
+            "rotary width 10",
+            vec![floats(
+                "rope.freqs_cos",
+                Dtype::F32,
+                &[256, 10],
+                &vec![1.0; 2560],
+            )],
+            &["--grid", "24"],
+            4,
+        ),
+        case(
+            "rotary NaN",
+            vec![
+                floats("rope.freqs_cos", Dtype::F32, &[256, 16], &nan_cos),
+                floats("rope.freqs_sin", Dtype::F32, &[256, 16], &sin),
+            ],
+            &["--grid", "24"],
+            4,
+        ),
+        case(
+            "rotary integers",
+            vec![ints(
+                "rope.freqs_cos",
+                Dtype::I32,
+                &[256, 16],
+                &vec![1; 4096],
+            )],
+            &["--grid", "24"],
+            4,
+        ),
+        case(
+            "axial even rows",
+            vec![floats(
+                "blocks.0.attn.rel_pos_h",
+                Dtype::F32,
+                &[26, 4],
+                &noise(104, 1, 1.0),
+            )],
+            &["--grid", "24", "--window", "12"],
+            4,
+        ),
+        case(
+            "axial one row",
+            vec![floats(
+                "blocks.0.attn.rel_pos_h",
+                Dtype::F32,
+                &[1, 4],
+                &noise(4, 1, 1.0),
+            )],
+            &["--grid", "24", "--window", "12"],
+            4,
+        ),
+        case(
+            "axial no channels",
+            vec![floats("blocks.0.attn.rel_pos_h", Dtype::F32, &[27, 0], &[])],
+            &["--grid", "24", "--window", "12"],
+            4,
+        ),
+        case(
+            "axial infinity",
+            axial_inf,
+            &["--grid", "64", "--window", "12"],
+            6,
+        ),
+        case(
+            "axial to window 1",
+            axial_pairs(),
+            &["--grid", "64", "--window", "1"],
+            0,
+        ),
+        case(
+            "temporal of no frames",
+            vec![floats("time_embed", Dtype::F32, &[1, 0, 8], &[])],
+            &["--grid", "16", "--frames", "4"],
+            4,
+        ),
+        case(
+            "temporal of no width",
+            vec![floats("time_embed", Dtype::F32, &[1, 8, 0], &[])],
+            &["--grid", "16", "--frames", "4"],
+            4,
+        ),
+        case(
+            "temporal NaN",
+            vec![floats("time_embed", Dtype::F32, &[1, 8, 24], &nan_frames)],
+            &["--grid", "16", "--frames", "4"],
+            6,
+        ),
+        case(
+            "temporal to 4294967295 frames",
+            temporal(),
+            &["--grid", "16", "--frames", "4294967295"],
+            6,
+        ),
+        case(
+            "video source grid that does not fit",
+            video(),
+            &["--source-grid", "7x3x3", "--grid", "2x4x4"],
+            4,
+        ),
+        case(
+            "video source grid that fits",
+            video(),
+            &["--source-grid", "2x3x3", "--grid", "4x4x4"],
+            0,
+        ),
+    ]
+}
+
+#[test]
+fn hostile_tensors_end_in_a_documented_code_or_a_correct_file() {
+    for c in hostile_cases() {
+        let input = Input::new(&c.tensors);
+        let r = input.resize(c.args);
+        assert_eq!(r.code, c.code, "{}: {}", c.what, r.stderr);
+        if c.code == 0 {
+            let bytes = std::fs::read(input.out()).unwrap();
+            safetensors::SafeTensors::deserialize(&bytes).unwrap();
+            assert_eq!(
+                std::fs::read(&input.path).unwrap(),
+                input.bytes,
+                "{}",
+                c.what
+            );
+        } else {
+            input.assert_refused(&r, c.code, &[]);
+        }
+    }
+}
+
+#[test]
+fn names_with_escape_codes_reach_the_terminal_escaped() {
+    let mut nan_table = noise(169 * 3, 1, 1.0);
+    nan_table[0] = f64::NAN;
+    let name = "blocks.0.\x1b[31mattn\x1b]0;title\x07.relative_position_bias_table";
+    let input = Input::new(&[
+        floats(name, Dtype::F32, &[169, 3], &nan_table),
+        floats(
+            "x\u{202e}.rel_pos_h",
+            Dtype::F32,
+            &[26, 4],
+            &noise(104, 2, 1.0),
+        ),
+        floats("\x1b[2J.freqs_cos", Dtype::F32, &[16, 8], &vec![1.0; 128]),
+    ]);
+    for r in [
+        input.scan(&[]),
+        input.resize(&["--grid", "16", "--window", "12"]),
+    ] {
+        let all = format!("{}{}", r.stdout, r.stderr);
+        assert!(!all.contains('\x1b') && !all.contains('\u{202e}'), "{all}");
+        assert!(all.contains("\\x1b[31mattn"), "{all}");
+    }
+    input.assert_untouched();
+}
+
 /// A `.npy` array (format 1.0: magic, header length, a Python dict literal padded with spaces
 /// and a newline to a multiple of 64 bytes, then the data; the numpy format's own rules).
 fn npy(t: &T) -> Vec<u8> {
