@@ -8,6 +8,9 @@
     python clients.py check-npz IN OUT GRID
     python clients.py write-sharded DIR   a two-shard set (shards by the reference library)
     python clients.py check-sharded IN OUT GRID
+    python clients.py write-moving DIR    two one-block tables between large tensors, which
+                                          posgrid moves to the end of the data area
+    python clients.py check-moving IN OUT GRID
 """
 
 import json
@@ -184,6 +187,42 @@ def check_sharded(inp, out, grid):
     print(f"ok {out}")
 
 
+MOVING_TABLES = ("decoder_pos_embed", "pos_embed")
+
+
+def write_moving(folder):
+    rng = np.random.default_rng(13)
+    width = 64
+    tables = {name: (smooth_table()[:, 1 : 1 + 16, :1] * np.ones(width)).astype(np.float32) for name in MOVING_TABLES}
+    save_file(
+        {
+            "blocks.0.mlp.weight": rng.standard_normal((width, 300)).astype(np.float32),
+            "head.weight": rng.standard_normal((width, 200)).astype(np.float32),
+            "proj.weight": rng.standard_normal((width, 100)).astype(np.float32),
+            **tables,
+        },
+        f"{folder}/moving.safetensors",
+    )
+
+
+def check_moving(inp, out, grid):
+    grid = int(grid)
+    a, b = load_file(inp), load_file(out)
+    assert sorted(a) == sorted(b), (sorted(a), sorted(b))
+    for k, v in b.items():
+        if k in MOVING_TABLES:
+            assert v.shape == (1, grid * grid, 64), (k, v.shape)
+        else:
+            assert np.array_equal(a[k], v) and a[k].dtype == v.dtype, k
+    # The header as the format defines it: an 8-byte little-endian length, then JSON.
+    with open(out, "rb") as f:
+        header = json.loads(f.read(int.from_bytes(f.read(8), "little")))
+    spans = {k: t["data_offsets"] for k, t in header.items() if k != "__metadata__"}
+    last = sorted(spans, key=lambda k: spans[k])[-2:]
+    assert sorted(last) == sorted(MOVING_TABLES), spans
+    print(f"ok {out}")
+
+
 if __name__ == "__main__":
     {
         "write": write,
@@ -192,4 +231,6 @@ if __name__ == "__main__":
         "check-npz": check_npz,
         "write-sharded": write_sharded,
         "check-sharded": check_sharded,
+        "write-moving": write_moving,
+        "check-moving": check_moving,
     }[sys.argv[1]](*sys.argv[2:])
