@@ -3,6 +3,7 @@
 
 mod common;
 
+use std::collections::HashMap;
 use std::path::{Path, PathBuf};
 
 use common::*;
@@ -665,4 +666,92 @@ fn sine_cosine_tables_can_be_built_anew_on_the_target_grid() {
     let scan: serde_json::Value =
         serde_json::from_slice(&posgrid(&["scan", s(&out), "--json"]).stdout).unwrap();
     assert_eq!(scan["tables"][0]["kind"], "sincos");
+}
+
+/// Each tensor's absolute file offset and data, by name.
+type Placed = HashMap<String, (usize, Vec<u8>)>;
+
+/// Absolute file offset and data of every tensor, by the reference crate's reading of the
+/// header (offsets sorted by the crate, so `offset_keys` is the data order).
+fn placed(bytes: &[u8]) -> (Vec<String>, Placed) {
+    let (n, meta) = SafeTensors::read_metadata(bytes).unwrap();
+    let st = SafeTensors::deserialize(bytes).unwrap();
+    let at = meta
+        .tensors()
+        .into_iter()
+        .map(|(name, info)| {
+            let data = st.tensor(&name).unwrap().data().to_vec();
+            (name, (8 + n + info.data_offsets.0, data))
+        })
+        .collect();
+    (meta.offset_keys(), at)
+}
+
+#[test]
+fn untouched_tensors_keep_their_offset_modulo_4096_when_resized_tables_move_to_the_end() {
+    // Two tables of exactly one 4 KiB block each (16 rows of 64 F32: a 4x4 grid, no class
+    // slot) between large tensors, resized to 5x5 (6400 bytes, not a whole number of blocks):
+    // left in place they would shift the tensors after them off their blocks; moved to the end
+    // of the data area, every untouched tensor keeps its offset modulo 4096, as a file system
+    // that shares extents needs (tests/reflink.rs checks the sharing itself on XFS).
+    let dir = tempfile::tempdir().unwrap();
+    let d = 64;
+    let input = write(
+        dir.path(),
+        "mae.safetensors",
+        &[
+            floats(
+                "blocks.0.mlp.weight",
+                Dtype::F32,
+                &[d, 300],
+                &noise(d * 300, 1, 0.1),
+            ),
+            floats(
+                "decoder_pos_embed",
+                Dtype::F32,
+                &[1, 16, d],
+                &smooth_table(0, 4, 4, d, 2),
+            ),
+            floats(
+                "head.weight",
+                Dtype::F32,
+                &[d, 200],
+                &noise(d * 200, 3, 0.1),
+            ),
+            floats(
+                "pos_embed",
+                Dtype::F32,
+                &[1, 16, d],
+                &smooth_table(0, 4, 4, d, 4),
+            ),
+            floats(
+                "proj.weight",
+                Dtype::F32,
+                &[d, 100],
+                &noise(d * 100, 5, 0.1),
+            ),
+        ],
+        None,
+    );
+    let out = dir.path().join("mae-5.safetensors");
+    let o = posgrid(&["resize", s(&input), "-o", s(&out), "--grid", "5", "--quiet"]);
+    assert_eq!(code(&o), 0, "{}", String::from_utf8_lossy(&o.stderr));
+    let (before, after) = (load(&input), load(&out));
+    assert_eq!(
+        header_names(&after),
+        header_names(&before),
+        "header order kept"
+    );
+    let (_, old) = placed(&before);
+    let (order, new) = placed(&after);
+    assert_eq!(
+        &order[order.len() - 2..],
+        ["decoder_pos_embed", "pos_embed"]
+    );
+    for name in ["blocks.0.mlp.weight", "head.weight", "proj.weight"] {
+        let ((a, x), (b, y)) = (&old[name], &new[name]);
+        assert_eq!(x, y, "{name} unchanged");
+        assert_eq!(a % 4096, b % 4096, "{name} at {b}, was at {a}");
+    }
+    assert_eq!(new["pos_embed"].1.len(), 25 * d * 4);
 }

@@ -12,6 +12,9 @@
                                           config.json and preprocessor_config.json by json
     python clients.py check-model-dir IN OUT GRID   json reads OUT's configurations at the new
                                           size, the reference library reads the weights
+    python clients.py write-moving DIR    two one-block tables between large tensors, which
+                                          posgrid moves to the end of the data area
+    python clients.py check-moving IN OUT GRID
 """
 
 import json
@@ -213,6 +216,40 @@ PREPROCESSOR = {
 SIDE_FILES = {".gitattributes": "*.safetensors filter=lfs diff=lfs merge=lfs -text\n", "README.md": "# model\n"}
 
 
+def write_moving(folder):
+    rng = np.random.default_rng(13)
+    width = 64
+    tables = {name: (smooth_table()[:, 1 : 1 + 16, :1] * np.ones(width)).astype(np.float32) for name in MOVING_TABLES}
+    save_file(
+        {
+            "blocks.0.mlp.weight": rng.standard_normal((width, 300)).astype(np.float32),
+            "head.weight": rng.standard_normal((width, 200)).astype(np.float32),
+            "proj.weight": rng.standard_normal((width, 100)).astype(np.float32),
+            **tables,
+        },
+        f"{folder}/moving.safetensors",
+    )
+
+
+def check_moving(inp, out, grid):
+    grid = int(grid)
+    a, b = load_file(inp), load_file(out)
+    assert sorted(a) == sorted(b), (sorted(a), sorted(b))
+    for k, v in b.items():
+        if k in MOVING_TABLES:
+            assert v.shape == (1, grid * grid, 64), (k, v.shape)
+        else:
+            assert np.array_equal(a[k], v) and a[k].dtype == v.dtype, k
+    # The header as the format defines it: an 8-byte little-endian length, then JSON.
+    with open(out, "rb") as f:
+        header = json.loads(f.read(int.from_bytes(f.read(8), "little")))
+    spans = {k: t["data_offsets"] for k, t in header.items() if k != "__metadata__"}
+    last = sorted(spans, key=lambda k: spans[k])[-2:]
+    assert sorted(last) == sorted(MOVING_TABLES), spans
+    print(f"ok {out}")
+
+
+
 def write_model_dir(folder):
     save_file(tensors(np.float32), f"{folder}/model.safetensors", metadata={"format": "pt"})
     for name, value in [("config.json", MODEL_CONFIG), ("preprocessor_config.json", PREPROCESSOR)]:
@@ -255,5 +292,7 @@ if __name__ == "__main__":
         "write-sharded": write_sharded,
         "check-sharded": check_sharded,
         "write-model-dir": write_model_dir,
+        "write-moving": write_moving,
+        "check-moving": check_moving,
         "check-model-dir": check_model_dir,
     }[sys.argv[1]](*sys.argv[2:])
