@@ -54,9 +54,16 @@ pub fn place(pieces: &[Piece], block: u64) -> Placement {
     best
 }
 
+/// Beyond this many new pieces only the two extremes are weighed (all in place, all at the
+/// end): the greedy pass costs a layout per piece, and a hostile file may hold thousands.
+const GREEDY_LIMIT: usize = 64;
+
 /// One greedy pass from `moved`: each new piece's place is flipped when that shares more.
 fn improve(pieces: &[Piece], block: u64, news: &[usize], mut moved: Vec<bool>) -> Placement {
     let mut best = evaluate(pieces, block, news, &moved);
+    if news.len() > GREEDY_LIMIT {
+        return best;
+    }
     for i in 0..news.len() {
         moved[i] = !moved[i];
         let tried = evaluate(pieces, block, news, &moved);
@@ -77,8 +84,12 @@ fn evaluate(pieces: &[Piece], block: u64, news: &[usize], moved: &[bool]) -> Pla
         .filter(|(_, &m)| m)
         .map(|(&i, _)| i)
         .collect();
+    let mut is_at_end = vec![false; pieces.len()];
+    for &i in &at_end {
+        is_at_end[i] = true;
+    }
     let order: Vec<usize> = (0..pieces.len())
-        .filter(|i| !at_end.contains(i))
+        .filter(|&i| !is_at_end[i])
         .chain(at_end.iter().copied())
         .collect();
     // Per residue of the data area's start: the whole-block bytes it lets keep their offset.
