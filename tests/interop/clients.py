@@ -216,6 +216,9 @@ PREPROCESSOR = {
 SIDE_FILES = {".gitattributes": "*.safetensors filter=lfs diff=lfs merge=lfs -text\n", "README.md": "# model\n"}
 
 
+MOVING_TABLES = ("decoder_pos_embed", "pos_embed")
+
+
 def write_moving(folder):
     rng = np.random.default_rng(13)
     width = 64
