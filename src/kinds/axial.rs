@@ -7,8 +7,8 @@
 use serde::Serialize;
 
 use super::names::normalized;
-use super::{refuse_nonfinite, serialize_dtype, Change, ChangeReport, Computed, Discovery};
-use super::{Encoding, Hints, Images, Kind};
+use super::{serialize_dtype, Change, ChangeReport, Computed, Discovery};
+use super::{Encoding, Hints, Kind};
 use crate::checkpoint::{Dtype, TensorSource};
 use crate::error::{Error, Result};
 use crate::plan::Request;
@@ -244,25 +244,8 @@ impl Change for AxialChange {
     }
 
     fn compute(&self, ckpt: &dyn TensorSource, allow_nonfinite: bool) -> Result<Computed> {
-        let path = ckpt.source_path();
-        let entry = ckpt.find(&self.table.name).expect("planned tables exist");
-        let raw = ckpt.bytes(entry)?;
-        if !allow_nonfinite {
-            refuse_nonfinite(path, &self.table.name, entry.dtype, &raw, "")?;
-        }
-        let (from, to, c) = (self.table.shape[0], self.new_shape[0], self.table.channels);
-        let (bytes, before, after) = super::stretch_rows(path, entry, &raw, to, &AXIAL_OPTIONS)?;
-        Ok(Computed {
-            bytes: vec![(entry.name.clone(), bytes)],
-            images: Some(Images {
-                before,
-                after,
-                from: [from, 1],
-                to: [to, 1],
-                width: c,
-                unscored: None,
-            }),
-        })
+        let to = self.new_shape[0];
+        super::stretched(ckpt, &self.table.name, to, &AXIAL_OPTIONS, allow_nonfinite)
     }
 
     fn report(&self) -> ChangeReport {

@@ -429,3 +429,36 @@ pub(crate) fn other_kind_name(name: &str) -> bool {
         || rotary::claims(name)
         || temporal::is_temporal_name(name)
 }
+
+/// The change of a one-axis table (per-axis and temporal tables): read, checked for
+/// non-finite values, stretched along its rows to `to` rows with `options`, checked again.
+pub(crate) fn stretched(
+    ckpt: &dyn TensorSource,
+    name: &str,
+    to: usize,
+    options: &crate::resample::Options,
+    allow_nonfinite: bool,
+) -> Result<Computed> {
+    let path = ckpt.source_path();
+    let entry = ckpt.find(name).expect("planned tables exist");
+    let raw = ckpt.bytes(entry)?;
+    if !allow_nonfinite {
+        refuse_nonfinite(path, name, entry.dtype, &raw, "")?;
+    }
+    let (bytes, before, after) = stretch_rows(path, entry, &raw, to, options)?;
+    if !allow_nonfinite {
+        refuse_nonfinite(path, name, entry.dtype, &bytes, " after resampling (the kernel overshoots; use --kernel bilinear or pass --allow-nonfinite)")?;
+    }
+    let width = *entry.shape.last().unwrap_or(&1);
+    Ok(Computed {
+        bytes: vec![(entry.name.clone(), bytes)],
+        images: Some(Images {
+            from: [before.len() / width.max(1), 1],
+            to: [to, 1],
+            before,
+            after,
+            width,
+            unscored: None,
+        }),
+    })
+}

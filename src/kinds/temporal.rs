@@ -6,8 +6,8 @@
 use serde::Serialize;
 
 use super::names::normalized;
-use super::{refuse_nonfinite, serialize_dtype, stretch_rows, Change, ChangeReport, Computed};
-use super::{Discovery, Encoding, Images, Kind, Skipped};
+use super::{serialize_dtype, Change, ChangeReport, Computed};
+use super::{Discovery, Encoding, Kind, Skipped};
 use crate::checkpoint::{Dtype, TensorSource};
 use crate::error::{Error, Result};
 use crate::plan::Request;
@@ -140,27 +140,13 @@ impl Change for TemporalChange {
     }
 
     fn compute(&self, ckpt: &dyn TensorSource, allow_nonfinite: bool) -> Result<Computed> {
-        let path = ckpt.source_path();
-        let entry = ckpt.find(&self.table.name).expect("planned tables exist");
-        let raw = ckpt.bytes(entry)?;
-        if !allow_nonfinite {
-            refuse_nonfinite(path, &self.table.name, entry.dtype, &raw, "")?;
-        }
-        let (bytes, before, after) = stretch_rows(path, entry, &raw, self.to, &self.options)?;
-        if !allow_nonfinite {
-            refuse_nonfinite(path, &self.table.name, entry.dtype, &bytes, " after resampling (the kernel overshoots; use --kernel bilinear or pass --allow-nonfinite)")?;
-        }
-        Ok(Computed {
-            bytes: vec![(entry.name.clone(), bytes)],
-            images: Some(Images {
-                before,
-                after,
-                from: [self.table.frames, 1],
-                to: [self.to, 1],
-                width: self.table.dim,
-                unscored: None,
-            }),
-        })
+        super::stretched(
+            ckpt,
+            &self.table.name,
+            self.to,
+            &self.options,
+            allow_nonfinite,
+        )
     }
 
     fn report(&self) -> ChangeReport {
