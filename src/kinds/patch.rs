@@ -141,18 +141,50 @@ pub fn plan(
     }))
 }
 
-/// `[p, q, C, D]` ↔ `[D, C, p, q]`: the same values with the axes reversed.
-fn reverse_axes(
+/// One axis of a stored kernel.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+enum Axis {
+    Out,
+    In,
+    Rows,
+    Cols,
+}
+
+/// The order the resize works in: `D·C` consecutive row-major patches.
+const CANONICAL: [Axis; 4] = [Axis::Out, Axis::In, Axis::Rows, Axis::Cols];
+
+impl KernelLayout {
+    /// The kernel's axes in storage order.
+    fn axes(self) -> [Axis; 4] {
+        match self {
+            KernelLayout::ChannelsFirst => CANONICAL,
+            KernelLayout::ChannelsLast => [Axis::Rows, Axis::Cols, Axis::In, Axis::Out],
+        }
+    }
+}
+
+/// `v`, stored with its axes in `from` order, rewritten with them in `to` order; `size` gives
+/// each axis's length.
+fn rearrange(
     v: &[f64],
-    shape: [usize; 4],
+    from: [Axis; 4],
+    to: [Axis; 4],
+    size: impl Fn(Axis) -> usize,
 ) -> std::result::Result<Vec<f64>, values::OutOfMemory> {
-    let [a, b, c, d] = shape;
+    let stride = |axis: Axis| -> usize {
+        let at = from.iter().position(|a| *a == axis).expect("every axis");
+        from[at + 1..].iter().map(|a| size(*a)).product()
+    };
+    let [n0, n1, n2, n3] = to.map(&size);
+    let [s0, s1, s2, s3] = to.map(stride);
     let mut out = values::try_filled(v.len(), 0.0)?;
-    for i in 0..a {
-        for j in 0..b {
-            for k in 0..c {
-                for l in 0..d {
-                    out[((l * c + k) * b + j) * a + i] = v[((i * b + j) * c + k) * d + l];
+    let mut at = 0;
+    for i in 0..n0 {
+        for j in 0..n1 {
+            for k in 0..n2 {
+                for l in 0..n3 {
+                    out[at] = v[i * s0 + j * s1 + k * s2 + l * s3];
+                    at += 1;
                 }
             }
         }
@@ -187,12 +219,15 @@ impl Change for PatchChange {
             .map_err(|e| values::value_error(path, &what, e))?;
         let [p, q] = k.patch;
         let [p2, q2] = self.to;
-        let first = match k.layout {
-            KernelLayout::ChannelsFirst => v,
-            KernelLayout::ChannelsLast => {
-                reverse_axes(&v, [p, q, k.channels, k.dim]).map_err(oom)?
+        let sides = |[rows, cols]: [usize; 2]| {
+            move |axis| match axis {
+                Axis::Out => k.dim,
+                Axis::In => k.channels,
+                Axis::Rows => rows,
+                Axis::Cols => cols,
             }
         };
+        let first = rearrange(&v, k.layout.axes(), CANONICAL, sides(k.patch)).map_err(oom)?;
         let resized = patch_kernel::resize_kernels(
             &first,
             k.dim * k.channels,
@@ -201,12 +236,8 @@ impl Change for PatchChange {
             &patch_kernel::default_options(),
         )
         .map_err(|e| Error::refused(path, format!("{what}: {e}")))?;
-        let stored = match k.layout {
-            KernelLayout::ChannelsFirst => resized,
-            KernelLayout::ChannelsLast => {
-                reverse_axes(&resized, [k.dim, k.channels, p2, q2]).map_err(oom)?
-            }
-        };
+        let stored =
+            rearrange(&resized, CANONICAL, k.layout.axes(), sides(self.to)).map_err(oom)?;
         let bytes = values::encode_f64(entry.dtype, &stored)
             .map_err(|e| values::value_error(path, &what, e))?;
         if !allow_nonfinite {
