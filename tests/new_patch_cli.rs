@@ -67,3 +67,28 @@ fn channels_last_kernels_take_non_square_patches_the_right_way_round() {
         .fold(0f64, |m, (a, b)| m.max((a - b).abs()));
     assert!(worst <= 1e-12, "{worst}");
 }
+
+/// Shrinking patches: the CLI's default resize is the framework's antialiased bilinear
+/// interpolate (fixtures/golden/patch_cases.safetensors, case bilinear_aa_8_6: B from torch's
+/// interpolate with antialias=True, ŵ by numpy's pinv).
+#[test]
+fn shrunk_kernels_use_the_framework_antialiased_resize() {
+    let path = std::path::Path::new(env!("CARGO_MANIFEST_DIR"))
+        .join("fixtures/golden/patch_cases.safetensors");
+    let golden = Checkpoint::open(&path).unwrap();
+    let w = values(&golden, "bilinear_aa_8_6.w");
+    let expected = values(&golden, "bilinear_aa_8_6.w_new");
+    let count = w.len() / 64;
+    let got = resized_kernel(
+        &[count, 1, 8, 8],
+        &w,
+        count,
+        &["--image", "24", "--new-patch", "6"],
+    );
+    let scale = expected.iter().fold(0f64, |m, v| m.max(v.abs()));
+    let worst = got
+        .iter()
+        .zip(&expected)
+        .fold(0f64, |m, (a, b)| m.max((a - b).abs()));
+    assert!(worst <= 1e-8 * scale, "{worst}");
+}

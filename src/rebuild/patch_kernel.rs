@@ -20,7 +20,7 @@
 //! (or a linear embedding flattened pixel by pixel, `[D, p·q·C]`) is a `[p·q, C·D]` matrix
 //! per kernel set that the caller transposes to `[C·D, p·q]` before and back after.
 
-use crate::resample::{resample, Kernel, Options, ResampleError};
+use crate::resample::{resample, Edges, Kernel, Options, ResampleError};
 use crate::values::{try_filled, OutOfMemory};
 use rayon::prelude::*;
 
@@ -71,11 +71,15 @@ pub enum PatchKernelError {
 
 type Sides = (usize, usize);
 
-/// The options a patch is resized with unless the caller says otherwise: the engine's
-/// defaults (half-pixel, clamped edges, antialias when shrinking) with the bilinear kernel.
+/// The options a patch is resized with unless the caller says otherwise: bilinear, half-pixel,
+/// antialiased when shrinking, with taps that fall outside the patch dropped and the rest
+/// rescaled. That is the framework's bilinear interpolate, antialiased or not (its antialiased
+/// path rescales at the borders; without antialias the two border rules give the same weights
+/// for a two-tap kernel).
 pub fn default_options() -> Options {
     Options {
         kernel: Kernel::Bilinear,
+        edges: Edges::Renormalize,
         ..Options::default()
     }
 }
