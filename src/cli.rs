@@ -10,6 +10,7 @@ use crate::checkpoint::Format;
 use crate::checkpoint::{Source, TensorSource};
 use crate::error::{Error, Result, EXIT_NO_TABLE, EXIT_OK};
 use crate::figure;
+use crate::kinds::patch::Flatten;
 use crate::kinds::{self, Channels, Hints};
 use crate::plan::{Frames, Relative, Request, Target};
 use crate::report::{self, ScanReport};
@@ -104,6 +105,10 @@ pub struct DiscoveryArgs {
     /// Where the channels of a 4-D table sit: last ([1, H, W, D]) or first ([1, D, H, W]).
     #[arg(long, value_name = "ORDER", value_parser = parse_text::<Channels>)]
     pub channels: Option<Channels>,
+    /// How a linear patch embedding [D, C*p*p] flattens a patch: cyx (channel by channel) or
+    /// yxc (pixel by pixel), when its values do not tell.
+    #[arg(long, value_name = "ORDER", value_parser = parse_text::<Flatten>)]
+    pub patch_order: Option<Flatten>,
 }
 
 impl DiscoveryArgs {
@@ -115,6 +120,7 @@ impl DiscoveryArgs {
             patch: self.patch.map(|p| p as usize),
             tensors: self.tensors.clone(),
             channels: self.channels,
+            patch_order: self.patch_order,
             new_patch: None,
             recorded_grid: None,
         }
@@ -196,11 +202,13 @@ normalises its weights (ONNX antialias = 1); off never; auto is on for an axis t
         long,
         value_name = "P",
         value_parser = parse_grid,
-        long_help = "A new patch size, P or PxQ pixels. Every patch-projection kernel ([D, C, p, p], or channels \
-last [p, p, C, D]) is resized by the pseudo-inverse method: with B the matrix that resizes a p x p patch to \
-P x Q (bilinear, half-pixel), the new kernel is pinv(B^T) w, so that <x, w> = <Bx, w'> for every patch x when \
+        long_help = "A new patch size, P or PxQ pixels. Every patch-projection kernel ([D, C, p, p], channels \
+last [p, p, C, D], or a linear patch embedding [D, C*p*p] / [C*p*p, D], see --patch-order) is resized by the \
+pseudo-inverse method: with B the matrix that resizes a p x p patch to P x Q (bilinear, half-pixel, \
+antialiased when shrinking), the new kernel is pinv(B^T) w, so that <x, w> = <Bx, w'> for every patch x when \
 enlarging (in the least-squares sense when shrinking); computed in f64, bias unchanged. The grid follows \
---image / P, and the position tables are resampled to it in the same run."
+--image / P, and the position tables are resampled to it in the same run. Without a kernel to resize the \
+run is refused (exit 4)."
     )]
     pub new_patch: Option<(usize, usize)>,
     /// Leave the configuration files of a directory output as they are.

@@ -249,6 +249,9 @@ pub fn build(ckpt: &dyn TensorSource, found: &Discovery, request: &Request) -> R
         if found.tables.is_empty() && encodings.is_empty() {
             return Err(Error::table(path, no_table_message(found)));
         }
+        if let Some(message) = missing_kernel(found, request) {
+            return Err(Error::table(path, message));
+        }
         found.tables.iter().collect()
     } else {
         request
@@ -304,6 +307,32 @@ pub fn unused_flags(found: &Discovery, request: &Request) -> Vec<String> {
         }
     }
     out
+}
+
+/// A new patch size with no patch-projection kernel to resize would leave the model projecting
+/// patches of the old size onto the new grid: refused, with what was looked at.
+fn missing_kernel(found: &Discovery, request: &Request) -> Option<String> {
+    let (p, q) = request.new_patch?;
+    if found
+        .encodings
+        .iter()
+        .any(|e| e.kind() == crate::kinds::Kind::PatchKernel)
+    {
+        return None;
+    }
+    let mut message = format!("--new-patch {p}x{q}: no patch-projection kernel to resize");
+    let looked: Vec<String> = found
+        .skipped
+        .iter()
+        .filter(|s| s.reason.contains("patch"))
+        .map(|s| format!("\"{}\" ({})", s.name, s.reason))
+        .collect();
+    if looked.is_empty() {
+        message.push_str(" (none found by name and shape)");
+    } else {
+        message.push_str(&format!("; looked at {}", looked.join(", ")));
+    }
+    Some(message)
 }
 
 fn no_table_message(found: &Discovery) -> String {

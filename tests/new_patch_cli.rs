@@ -92,3 +92,281 @@ fn shrunk_kernels_use_the_framework_antialiased_resize() {
         .fold(0f64, |m, (a, b)| m.max((a - b).abs()));
     assert!(worst <= 1e-8 * scale, "{worst}");
 }
+
+/// The linear-embedding golden file (fixtures/golden/make_linear_patch_golden.py): matrices in
+/// both flattening orders and both storages, checked there against the framework's convolution,
+/// unfold and a channels-last flatten; their pseudo-inverse resizes by numpy's pinv; random
+/// patches resized by the framework's interpolate, with the old outputs.
+struct LinearGolden {
+    ckpt: Checkpoint,
+    cases: Vec<serde_json::Value>,
+}
+
+impl LinearGolden {
+    fn open() -> Self {
+        let path = std::path::Path::new(env!("CARGO_MANIFEST_DIR"))
+            .join("fixtures/golden/linear_patch_cases.safetensors");
+        let ckpt = Checkpoint::open(&path).unwrap();
+        let meta = ckpt.header().metadata.clone().unwrap_or_default();
+        let cases = &meta.iter().find(|(k, _)| k == "cases").unwrap().1;
+        let cases = serde_json::from_str(cases).unwrap();
+        LinearGolden { ckpt, cases }
+    }
+
+    fn get(&self, case: &serde_json::Value, what: &str) -> (Vec<f64>, Vec<usize>) {
+        let name = format!("{}.{what}", case["name"].as_str().unwrap());
+        let shape = self.ckpt.find(&name).unwrap().shape.clone();
+        (values(&self.ckpt, &name), shape)
+    }
+
+    fn case(&self, name: &str) -> &serde_json::Value {
+        self.cases.iter().find(|c| c["name"] == name).unwrap()
+    }
+}
+
+fn side(case: &serde_json::Value, key: &str) -> usize {
+    case[key].as_u64().unwrap() as usize
+}
+
+/// A linear layer's weight is `.weight` ([out, in]); a dense layer's is `.kernel` ([in, out]).
+fn embedding_name(case: &serde_json::Value) -> &'static str {
+    if case["storage"] == "out_in" {
+        "to_patch_embedding.1.weight"
+    } else {
+        "patch_embed/proj/kernel"
+    }
+}
+
+/// Resize the case's embedding with a 4x4 grid of the new patch; the new matrix and the report.
+fn resize_linear(
+    golden: &LinearGolden,
+    case: &serde_json::Value,
+    extra: &[&str],
+) -> (std::process::Output, Option<Vec<f64>>) {
+    let (w, shape) = golden.get(case, "w");
+    let dim = side(case, "dim");
+    let dir = tempfile::tempdir().unwrap();
+    let file = write(
+        dir.path(),
+        "in.safetensors",
+        &[
+            floats(embedding_name(case), Dtype::F32, &shape, &w),
+            floats(
+                "pos_embedding",
+                Dtype::F32,
+                &[1, 17, dim],
+                &noise(17 * dim, 5, 0.1),
+            ),
+        ],
+        None,
+    );
+    let out = dir.path().join("out.safetensors");
+    let image = (4 * side(case, "to")).to_string();
+    let new_patch = side(case, "to").to_string();
+    let mut args = vec![
+        "resize",
+        s(&file),
+        "-o",
+        s(&out),
+        "--image",
+        &image,
+        "--new-patch",
+        &new_patch,
+        "--json",
+    ];
+    args.extend_from_slice(extra);
+    let o = posgrid(&args);
+    let got = out
+        .exists()
+        .then(|| values(&Checkpoint::open(&out).unwrap(), embedding_name(case)));
+    (o, got)
+}
+
+fn worst_relative(got: &[f64], expected: &[f64]) -> f64 {
+    assert_eq!(got.len(), expected.len());
+    let scale = expected.iter().fold(0f64, |m, v| m.max(v.abs()));
+    got.iter()
+        .zip(expected)
+        .fold(0f64, |m, (a, b)| m.max((a - b).abs()))
+        / scale
+}
+
+/// `y = x · wᵀ` for rows of `x` and a matrix stored `[out, in]` or `[in, out]`.
+fn project(x: &[f64], w: &[f64], inputs: usize, dim: usize, out_in: bool) -> Vec<f64> {
+    let mut y = Vec::new();
+    for row in x.chunks_exact(inputs) {
+        for d in 0..dim {
+            let weight = |i: usize| {
+                if out_in {
+                    w[d * inputs + i]
+                } else {
+                    w[i * dim + d]
+                }
+            };
+            y.push(row.iter().enumerate().map(|(i, v)| v * weight(i)).sum());
+        }
+    }
+    y
+}
+
+/// Linear embeddings in both flattening orders and storages, the order read from the values
+/// (the kernels are smooth, like trained ones): the new matrices equal numpy's pinv result
+/// (F32 storage: 1e-6), and when enlarging, every resized patch projects as the original did
+/// (the 1e-5).
+#[test]
+fn linear_embeddings_match_numpy_and_project_resized_patches_as_before() {
+    let golden = LinearGolden::open();
+    let mut checked = 0;
+    // The square case holds every principal component, so no order is smoother: read apart.
+    let smooth = |c: &&serde_json::Value| {
+        c["kernels"] == "pca" && !c["name"].as_str().unwrap().starts_with("square")
+    };
+    for case in golden.cases.iter().filter(smooth) {
+        let (o, got) = resize_linear(&golden, case, &[]);
+        assert_eq!(code(&o), 0, "{}: {}", case["name"], stderr(&o));
+        let got = got.unwrap();
+        let (expected, _) = golden.get(case, "w_new");
+        let err = worst_relative(&got, &expected);
+        assert!(
+            err <= 1e-6,
+            "{}: new matrix {err:.1e} from numpy",
+            case["name"]
+        );
+        let report: serde_json::Value = serde_json::from_slice(&o.stdout).unwrap();
+        let change = report["tables"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .find(|t| t["kind"] == "patch_kernel")
+            .unwrap();
+        assert_eq!(change["method"], "pseudo-inverse");
+        if side(case, "to") > side(case, "from") {
+            let (bx, _) = golden.get(case, "bx");
+            let (y, _) = golden.get(case, "y");
+            let inputs = 3 * side(case, "to") * side(case, "to");
+            let projected = project(
+                &bx,
+                &got,
+                inputs,
+                side(case, "dim"),
+                case["storage"] == "out_in",
+            );
+            let err = worst_relative(&projected, &y);
+            assert!(err <= 1e-5, "{}: projections {err:.1e} off", case["name"]);
+        }
+        checked += 1;
+    }
+    assert_eq!(checked, 4);
+}
+
+/// White-noise kernels have no smoother order: the embedding is listed as skipped with the flag
+/// that settles it, nothing is written; with the flag it is resized as numpy's pinv says.
+#[test]
+fn an_unclear_flattening_order_needs_the_flag() {
+    let golden = LinearGolden::open();
+    let case = golden.case("noise_out_in_8_12");
+    let (o, got) = resize_linear(&golden, case, &[]);
+    assert_ne!(code(&o), 0, "{}", String::from_utf8_lossy(&o.stdout));
+    assert!(stderr(&o).contains("--patch-order"), "{}", stderr(&o));
+    assert!(got.is_none());
+    let (o, got) = resize_linear(&golden, case, &["--patch-order", "cyx"]);
+    assert_eq!(code(&o), 0, "{}", stderr(&o));
+    let (expected, _) = golden.get(case, "w_new");
+    let err = worst_relative(&got.unwrap(), &expected);
+    assert!(err <= 1e-6, "{err:.1e}");
+}
+
+/// A new patch size without a kernel to resize would leave the model projecting old patches
+/// onto the new grid: refused (exit 4), naming the flag, nothing written.
+#[test]
+fn a_new_patch_without_a_kernel_is_refused() {
+    let dir = tempfile::tempdir().unwrap();
+    let file = write(
+        dir.path(),
+        "in.safetensors",
+        &[floats(
+            "pos_embed",
+            Dtype::F32,
+            &[1, 17, 8],
+            &noise(17 * 8, 5, 0.1),
+        )],
+        None,
+    );
+    let out = dir.path().join("out.safetensors");
+    let o = posgrid(&[
+        "resize",
+        s(&file),
+        "-o",
+        s(&out),
+        "--image",
+        "64",
+        "--new-patch",
+        "16",
+        "--patch",
+        "14",
+    ]);
+    assert_eq!(code(&o), 4, "{}", stderr(&o));
+    assert!(stderr(&o).contains("--new-patch 16x16"), "{}", stderr(&o));
+    assert!(!out.exists());
+}
+
+/// A square matrix `[D, D]` with D = 3·p·p (ViT-B/16's 768 = 3·16·16 is such a case): the
+/// name's suffix says which axis is the width — a linear layer's `weight` is [out, in], a dense
+/// layer's `kernel` [in, out] (common practice). The golden case (48 = 3·4·4, the full basis of
+/// principal components, so the order is given by the flag) read both ways gives numpy's result.
+#[test]
+fn square_linear_embeddings_are_read_by_their_name() {
+    let golden = LinearGolden::open();
+    let case = golden.case("square_yxc_out_in_4_6");
+    let (expected, _) = golden.get(case, "w_new");
+    let (o, got) = resize_linear(&golden, case, &["--patch-order", "yxc"]);
+    assert_eq!(code(&o), 0, "{}", stderr(&o));
+    let err = worst_relative(&got.unwrap(), &expected);
+    assert!(err <= 1e-6, "as a weight: {err:.1e}");
+
+    // The same matrix stored [in, out] under a dense layer's name.
+    let (w, _) = golden.get(case, "w");
+    let (dim, inputs) = (48, 48);
+    let transpose = |v: &[f64], rows: usize, cols: usize| -> Vec<f64> {
+        (0..v.len())
+            .map(|n| v[(n % rows) * cols + n / rows])
+            .collect()
+    };
+    let dir = tempfile::tempdir().unwrap();
+    let file = write(
+        dir.path(),
+        "in.safetensors",
+        &[
+            floats(
+                "patch_embed/proj/kernel",
+                Dtype::F32,
+                &[inputs, dim],
+                &transpose(&w, dim, inputs),
+            ),
+            floats(
+                "pos_embedding",
+                Dtype::F32,
+                &[1, 17, dim],
+                &noise(17 * dim, 5, 0.1),
+            ),
+        ],
+        None,
+    );
+    let out = dir.path().join("out.safetensors");
+    let o = posgrid(&[
+        "resize",
+        s(&file),
+        "-o",
+        s(&out),
+        "--image",
+        "24",
+        "--new-patch",
+        "6",
+        "--patch-order",
+        "yxc",
+    ]);
+    assert_eq!(code(&o), 0, "{}", stderr(&o));
+    let got = values(&Checkpoint::open(&out).unwrap(), "patch_embed/proj/kernel");
+    let err = worst_relative(&got, &transpose(&expected, dim, 3 * 36));
+    assert!(err <= 1e-6, "as a kernel: {err:.1e}");
+}

@@ -72,6 +72,7 @@ def resize(
     frames: Optional[int] = None,
     window: Optional[Plane] = None,
     new_patch: Optional[Plane] = None,
+    patch_order: Optional[Literal["cyx", "yxc"]] = None,
     source_grid: Optional[Sides] = None,
     slots: Optional[int] = None,
     patch: Optional[int] = None,

@@ -5,6 +5,7 @@ use pyo3::prelude::*;
 use serde::Serialize;
 
 use posgrid::cli::{self, DiscoveryArgs, GridArg, ResizeArgs};
+use posgrid::kinds::patch::Flatten;
 use posgrid::kinds::{Channels, Hints};
 use posgrid::resample::{Antialias, Coords, Edges, Kernel};
 
@@ -25,6 +26,8 @@ pub struct Discovery {
     pub patch: Option<usize>,
     pub tensors: Vec<String>,
     pub channels: Option<Channels>,
+    /// A linear patch embedding's flattening order (`resize` only: kernels matter there).
+    pub patch_order: Option<Flatten>,
 }
 
 impl Discovery {
@@ -42,6 +45,7 @@ impl Discovery {
             patch: args::optional_count(patch, "patch", 1)?,
             tensors: args::names(tensors, "tensors")?,
             channels: optional_choice(py, channels, "channels")?,
+            patch_order: None,
         })
     }
 
@@ -53,6 +57,7 @@ impl Discovery {
             patch: self.patch,
             tensors: self.tensors.clone(),
             channels: self.channels,
+            patch_order: self.patch_order,
             new_patch: None,
             recorded_grid: None,
         }
@@ -65,6 +70,7 @@ impl Discovery {
             patch: self.patch.map(|p| small(py, p, "patch")).transpose()?,
             tensors: self.tensors,
             channels: self.channels,
+            patch_order: self.patch_order,
         })
     }
 }
@@ -146,9 +152,9 @@ pub fn scan<'py>(
 /// (4), posgrid.WriteError (5) or posgrid.RefusedError (6), with the command line's message.
 #[pyfunction]
 #[pyo3(
-    text_signature = "(path, out, *, grid=None, image=None, scale=None, frames=None, window=None, new_patch=None, source_grid=None, slots=None, patch=None, tensors=None, channels=None, kernel=\"bicubic\", coords=\"half-pixel\", edges=\"clamp\", antialias=\"auto\", cubic_a=-0.75, relative=\"kernel\", rebuild_sincos=False, allow_nonfinite=False, dry_run=False, force=False, sync=True, format=None, state_dict=None, strip_prefix=None, model_only=False, keep_config=False, map=None, refs=16, memory_limit=\"4G\")"
+    text_signature = "(path, out, *, grid=None, image=None, scale=None, frames=None, window=None, new_patch=None, patch_order=None, source_grid=None, slots=None, patch=None, tensors=None, channels=None, kernel=\"bicubic\", coords=\"half-pixel\", edges=\"clamp\", antialias=\"auto\", cubic_a=-0.75, relative=\"kernel\", rebuild_sincos=False, allow_nonfinite=False, dry_run=False, force=False, sync=True, format=None, state_dict=None, strip_prefix=None, model_only=False, keep_config=False, map=None, refs=16, memory_limit=\"4G\")"
 )]
-#[pyo3(signature = (path, out, *, grid=None, image=None, scale=None, frames=None, window=None, new_patch=None, source_grid=None, slots=None, patch=None, tensors=None, channels=None, kernel="bicubic", coords="half-pixel", edges="clamp", antialias="auto", cubic_a=posgrid::resample::DEFAULT_CUBIC_A, relative="kernel", rebuild_sincos=false, allow_nonfinite=false, dry_run=false, force=false, sync=true, format=None, state_dict=None, strip_prefix=None, model_only=false, keep_config=false, map=None, refs=None, memory_limit=None))]
+#[pyo3(signature = (path, out, *, grid=None, image=None, scale=None, frames=None, window=None, new_patch=None, patch_order=None, source_grid=None, slots=None, patch=None, tensors=None, channels=None, kernel="bicubic", coords="half-pixel", edges="clamp", antialias="auto", cubic_a=posgrid::resample::DEFAULT_CUBIC_A, relative="kernel", rebuild_sincos=false, allow_nonfinite=false, dry_run=false, force=false, sync=true, format=None, state_dict=None, strip_prefix=None, model_only=false, keep_config=false, map=None, refs=None, memory_limit=None))]
 #[allow(clippy::too_many_arguments)]
 pub fn resize<'py>(
     py: Python<'py>,
@@ -160,6 +166,7 @@ pub fn resize<'py>(
     frames: Option<&Bound<'py, PyAny>>,
     window: Option<&Bound<'py, PyAny>>,
     new_patch: Option<&Bound<'py, PyAny>>,
+    patch_order: Option<&str>,
     source_grid: Option<&Bound<'py, PyAny>>,
     slots: Option<&Bound<'py, PyAny>>,
     patch: Option<&Bound<'py, PyAny>>,
@@ -185,7 +192,8 @@ pub fn resize<'py>(
     refs: Option<&Bound<'py, PyAny>>,
     memory_limit: Option<&Bound<'py, PyAny>>,
 ) -> PyResult<Bound<'py, PyAny>> {
-    let discovery = Discovery::read(py, source_grid, slots, patch, tensors, channels)?;
+    let mut discovery = Discovery::read(py, source_grid, slots, patch, tensors, channels)?;
+    discovery.patch_order = optional_choice(py, patch_order, "patch_order")?;
     let frames = args::optional_count(frames, "frames", 1)?
         .map(|f| small(py, f, "frames"))
         .transpose()?;

@@ -138,3 +138,33 @@ def test_resize_replaces_only_with_force(tmp_path):
 def test_the_package_runs_from_any_directory(tmp_path, monkeypatch):
     monkeypatch.chdir(tmp_path)
     assert posgrid.scan(pathlib.Path(DEMO))["tables"][0]["grid"] == [14, 14]
+
+
+def test_resize_a_linear_patch_embedding_with_its_order(tmp_path):
+    # The noise case of fixtures/golden/linear_patch_cases.safetensors: no order reads from the
+    # values, so patch_order gives it; the matrix equals numpy's pinv result from the file.
+    from safetensors.numpy import save_file
+
+    from conftest import FIXTURES
+
+    golden = load_file(str(FIXTURES / "golden" / "linear_patch_cases.safetensors"))
+    src = tmp_path / "linear.safetensors"
+    save_file(
+        {
+            "to_patch_embedding.1.weight": golden["noise_out_in_8_12.w"],
+            "pos_embedding": np.linspace(-1, 1, 17 * 4, dtype=np.float32).reshape(1, 17, 4),
+        },
+        str(src),
+    )
+    with pytest.raises(posgrid.TableError) as refused:
+        posgrid.resize(src, tmp_path / "never.safetensors", image=48, new_patch=12)
+    assert "--patch-order" in str(refused.value)
+    args = ["--image", "48", "--new-patch", "12", "--patch-order", "cyx"]
+    run, report, out_cli, out_py = resize_both(
+        tmp_path, src, args, image=48, new_patch=12, patch_order="cyx"
+    )
+    assert report == {**run.json, "output": str(out_py)}
+    assert out_py.read_bytes() == out_cli.read_bytes()
+    expected = golden["noise_out_in_8_12.w_new"]
+    got = load_file(str(out_py))["to_patch_embedding.1.weight"]
+    np.testing.assert_allclose(got, expected, rtol=0, atol=1e-6 * np.abs(expected).max())

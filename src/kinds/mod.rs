@@ -43,6 +43,8 @@ pub struct Hints {
     pub tensors: Vec<String>,
     /// Where the channels of a 4-D `[1, ., ., .]` table sit.
     pub channels: Option<Channels>,
+    /// How a linear patch embedding flattens a patch (`--patch-order`).
+    pub patch_order: Option<patch::Flatten>,
 }
 
 /// Where the channel (embedding) dimension of a 4-D table sits.

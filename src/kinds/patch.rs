@@ -1,8 +1,13 @@
 //! Patch-projection kernels (kind `patch_kernel`), grid-dependent when the patch size changes
-//! (`--new-patch`): `[D, C, p, q]` (channels first) or `[p, q, C, D]` (channels last), found by
-//! the names released checkpoints give them and by the patch size they set. Resized by the
-//! pseudo-inverse method (see [`crate::rebuild::patch_kernel`]) in f64, so that every patch
-//! projects as before; the bias is left as it is.
+//! (`--new-patch`): convolution kernels `[D, C, p, q]` (channels first) or `[p, q, C, D]`
+//! (channels last), found by the names released checkpoints give them and by the patch size
+//! they set; without one, a linear patch embedding: a matrix named as a patch projection,
+//! `[D, C·p·q]` (a linear layer's weight, out × in) or `[C·p·q, D]` (a dense kernel, in × out),
+//! applied to each patch flattened channel by channel (`cyx`) or pixel by pixel (`yxc`). The
+//! order is not in the shape: `--patch-order` gives it, else the values decide when one reading
+//! is clearly smoother than the other (see [`flatten_order`]). Resized by the pseudo-inverse
+//! method (see [`crate::rebuild::patch_kernel`]) in f64, so that every patch projects as before;
+//! the bias is left as it is.
 
 use serde::Serialize;
 
@@ -21,6 +26,34 @@ pub enum KernelLayout {
     ChannelsFirst,
     /// `[p, q, C, D]`
     ChannelsLast,
+    /// A linear layer's weight `[D, C·p·q]` (out × in).
+    LinearOutIn,
+    /// A dense kernel `[C·p·q, D]` (in × out).
+    LinearInOut,
+}
+
+/// The order in which a linear patch embedding flattens a patch.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
+#[serde(rename_all = "lowercase")]
+pub enum Flatten {
+    /// Channel by channel, each channel row by row: `[C, p, q]` (the order of a channels-first
+    /// convolution kernel reshaped, and of the framework's unfold).
+    Cyx,
+    /// Pixel by pixel, row by row, the channels of a pixel together: `[p, q, C]`.
+    Yxc,
+}
+
+impl std::str::FromStr for Flatten {
+    type Err = String;
+    fn from_str(s: &str) -> std::result::Result<Self, String> {
+        match s {
+            "cyx" => Ok(Flatten::Cyx),
+            "yxc" => Ok(Flatten::Yxc),
+            _ => Err(format!(
+                "unknown value \"{s}\"; expected cyx (channel by channel) or yxc (pixel by pixel)"
+            )),
+        }
+    }
 }
 
 /// A patch-projection kernel.
@@ -36,6 +69,12 @@ pub struct PatchKernel {
     pub patch: [usize; 2],
     pub channels: usize,
     pub dim: usize,
+    /// How a linear embedding flattens a patch, and what said so (`flag`, `values`, or
+    /// `one_channel` where both orders are the same).
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub flatten: Option<Flatten>,
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub flatten_from: Option<&'static str>,
 }
 
 /// The patch-projection kernels of the model, when a new patch size is asked for: the kernels
@@ -56,6 +95,9 @@ pub(super) fn find(source: &dyn TensorSource, hints: &Hints, found: &mut Discove
         );
     }
     names.dedup();
+    if names.is_empty() {
+        return find_linear(source, hints, found);
+    }
     for name in names {
         let entry = source.find(&name).expect("checked above");
         match reading(entry) {
@@ -87,7 +129,204 @@ fn reading(e: &TensorEntry) -> Option<PatchKernel> {
         patch,
         channels,
         dim,
+        flatten: None,
+        flatten_from: None,
     })
+}
+
+/// Linear patch embeddings read from their values at most this large (bounded memory); a larger
+/// one needs `--patch-order`.
+const MAX_ORDER_READ: u64 = 64 << 20;
+
+/// Linear patch embeddings, for a model without a convolution kernel: 2-D float matrices whose
+/// name says patch (`patch_embed`, `to_patch_embedding`, `patchify`; common practice), read
+/// with the position tables' width.
+fn find_linear(source: &dyn TensorSource, hints: &Hints, found: &mut Discovery) -> Result<()> {
+    let mut widths: Vec<usize> = found.tables.iter().map(|t| t.dim).collect();
+    widths.sort_unstable();
+    widths.dedup();
+    let candidates = source.entries().iter().filter(|e| {
+        let n = super::names::normalized(&e.name);
+        e.shape.len() == 2
+            && values::is_float(e.dtype)
+            && n.contains("patch")
+            && !n.contains("pos")
+            && !n.ends_with("bias")
+    });
+    for entry in candidates {
+        match linear_reading(source, entry, &widths, hints, &mut found.warnings)? {
+            Ok(kernel) => found.encodings.push(Encoding::Patch(kernel)),
+            Err(reason) => found.skipped.push(super::Skipped {
+                name: entry.name.clone(),
+                reason: format!("a linear patch embedding, not resized: {reason}"),
+            }),
+        }
+    }
+    Ok(())
+}
+
+/// A matrix `[a, b]` read as a linear patch embedding, or why not. Which axis is the width D:
+/// the name's suffix (`weight` is a linear layer's `[out, in]`, `kernel` a dense layer's
+/// `[in, out]`; common practice), else the one axis equal to a position table's width.
+fn linear_reading(
+    source: &dyn TensorSource,
+    e: &TensorEntry,
+    widths: &[usize],
+    hints: &Hints,
+    warnings: &mut Vec<String>,
+) -> Result<std::result::Result<PatchKernel, String>> {
+    let [a, b] = e.shape[..] else {
+        return Ok(Err("not a matrix".into()));
+    };
+    let fits = |d: usize| widths.is_empty() || widths.contains(&d);
+    let lower = e.name.to_ascii_lowercase();
+    let layout = if lower.ends_with("weight") {
+        KernelLayout::LinearOutIn
+    } else if lower.ends_with("kernel") {
+        KernelLayout::LinearInOut
+    } else {
+        match (!widths.is_empty() && fits(a), !widths.is_empty() && fits(b)) {
+            (true, false) => KernelLayout::LinearOutIn,
+            (false, true) => KernelLayout::LinearInOut,
+            _ => {
+                return Ok(Err(format!(
+                    "which axis of [{a}, {b}] is the embedding width is unclear"
+                )))
+            }
+        }
+    };
+    let (dim, inputs) = match layout {
+        KernelLayout::LinearInOut => (b, a),
+        _ => (a, b),
+    };
+    if !fits(dim) {
+        return Ok(Err(format!(
+            "its width {dim} is not the position tables' ({widths:?})"
+        )));
+    }
+    let Some((channels, side)) = channels_and_side(inputs, hints.patch) else {
+        return Ok(Err(match hints.patch {
+            Some(p) => format!("{inputs} inputs are not C·{p}·{p} for a number of channels C ≤ 64"),
+            None => format!("{inputs} inputs are not 3·p·p; pass --patch P to read C·P·P"),
+        }));
+    };
+    let mut kernel = PatchKernel {
+        name: e.name.clone(),
+        kind: Kind::PatchKernel,
+        dtype: e.dtype,
+        shape: e.shape.clone(),
+        layout,
+        patch: [side, side],
+        channels,
+        dim,
+        flatten: None,
+        flatten_from: None,
+    };
+    let (order, from) = if channels == 1 {
+        (Flatten::Cyx, "one_channel")
+    } else if let Some(order) = hints.patch_order {
+        (order, "flag")
+    } else if e.byte_len() > MAX_ORDER_READ {
+        return Ok(Err(format!(
+            "over {} MiB, its flattening order is not read from the values; pass --patch-order cyx or yxc",
+            MAX_ORDER_READ >> 20
+        )));
+    } else {
+        let v = values::decode_f64(e.dtype, &source.bytes(e)?).map_err(|err| {
+            values::value_error(source.source_path(), "reading a patch embedding", err)
+        })?;
+        match flatten_order(&kernel, &v) {
+            Ok((order, note)) => {
+                warnings.push(format!(
+                    "{}: read as a linear patch embedding flattened {note}; --patch-order overrides",
+                    e.name
+                ));
+                (order, "values")
+            }
+            Err(why) => return Ok(Err(format!("{why}; pass --patch-order cyx or yxc"))),
+        }
+    };
+    kernel.flatten = Some(order);
+    kernel.flatten_from = Some(from);
+    Ok(Ok(kernel))
+}
+
+/// Channels C and patch side p with `inputs = C·p·p`: p from `--patch`, else C = 3 (colour
+/// images, common practice) when `inputs / 3` is a square.
+fn channels_and_side(inputs: usize, patch: Option<usize>) -> Option<(usize, usize)> {
+    let channels_for = |p: usize| {
+        let area = p.checked_mul(p)?;
+        (area > 0 && inputs % area == 0 && (1..=64).contains(&(inputs / area)))
+            .then_some((inputs / area, p))
+    };
+    match patch {
+        Some(p) => channels_for(p),
+        None if inputs % 3 == 0 => {
+            let p = (inputs as f64 / 3.0).sqrt().round() as usize;
+            channels_for(p).filter(|(c, _)| *c == 3)
+        }
+        None => None,
+    }
+}
+
+/// The flattening order of a linear embedding, from its values: trained patch kernels are
+/// spatially smooth (neighbouring pixels get similar weights; common practice), so read in the
+/// right order each channel's patch is smooth, and read in the wrong one it is not. The
+/// roughness of a reading is the mean squared difference of neighbouring pixels over twice the
+/// variance (1 for white noise, near 0 for a smooth patch); an order is taken when its
+/// roughness is at most half and at most half the other's.
+fn flatten_order(
+    kernel: &PatchKernel,
+    v: &[f64],
+) -> std::result::Result<(Flatten, String), String> {
+    let mut rough = [0.0; 2];
+    for (at, order) in [Flatten::Cyx, Flatten::Yxc].into_iter().enumerate() {
+        let reading = PatchKernel {
+            flatten: Some(order),
+            ..kernel.clone()
+        };
+        let canonical = rearrange(v, reading.axes(), CANONICAL, reading.sizes(kernel.patch))
+            .map_err(|e| e.to_string())?;
+        rough[at] = roughness(&canonical, kernel.patch);
+    }
+    let [cyx, yxc] = rough;
+    let clear = |a: f64, b: f64| a <= 0.5 && a <= 0.5 * b;
+    let note = |what: &str| {
+        format!("{what}, from its values (roughness {cyx:.2} read channel by channel, {yxc:.2} pixel by pixel)")
+    };
+    if clear(cyx, yxc) {
+        Ok((Flatten::Cyx, note("channel by channel (cyx)")))
+    } else if clear(yxc, cyx) {
+        Ok((Flatten::Yxc, note("pixel by pixel (yxc)")))
+    } else {
+        Err(format!(
+            "the values do not tell the flattening order (roughness {cyx:.2} read channel by channel, {yxc:.2} pixel by pixel; a clear order is at most half the other)"
+        ))
+    }
+}
+
+/// Mean squared difference of neighbouring pixels over twice the variance, over every `p×q`
+/// patch of `v` (each patch's mean removed); NaN when every patch is flat.
+fn roughness(v: &[f64], [p, q]: [usize; 2]) -> f64 {
+    let (mut diffs, mut pairs, mut spread) = (0.0, 0usize, 0.0);
+    for patch in v.chunks_exact(p * q) {
+        let mean = patch.iter().sum::<f64>() / patch.len() as f64;
+        spread += patch.iter().map(|x| (x - mean).powi(2)).sum::<f64>();
+        for y in 0..p {
+            for x in 0..q {
+                let here = patch[y * q + x];
+                if x + 1 < q {
+                    diffs += (patch[y * q + x + 1] - here).powi(2);
+                    pairs += 1;
+                }
+                if y + 1 < p {
+                    diffs += (patch[(y + 1) * q + x] - here).powi(2);
+                    pairs += 1;
+                }
+            }
+        }
+    }
+    (diffs / pairs as f64) / (2.0 * spread / v.len() as f64)
 }
 
 /// One kernel to resize.
@@ -117,10 +356,7 @@ pub fn plan(
             patch_kernel::MAX_PATCH_SIDE
         )));
     }
-    let new_shape = match k.layout {
-        KernelLayout::ChannelsFirst => vec![k.dim, k.channels, p, q],
-        KernelLayout::ChannelsLast => vec![p, q, k.channels, k.dim],
-    };
+    let new_shape = k.shape_for([p, q]);
     let needed = (k.dim as u64 * k.channels as u64 * (p * q + k.patch[0] * k.patch[1]) as u64)
         .saturating_mul(24);
     if needed > request.memory_limit {
@@ -153,12 +389,41 @@ enum Axis {
 /// The order the resize works in: `D·C` consecutive row-major patches.
 const CANONICAL: [Axis; 4] = [Axis::Out, Axis::In, Axis::Rows, Axis::Cols];
 
-impl KernelLayout {
-    /// The kernel's axes in storage order.
-    fn axes(self) -> [Axis; 4] {
-        match self {
-            KernelLayout::ChannelsFirst => CANONICAL,
-            KernelLayout::ChannelsLast => [Axis::Rows, Axis::Cols, Axis::In, Axis::Out],
+impl PatchKernel {
+    /// The kernel's axes in storage order (a linear embedding's input axis split into the
+    /// patch's channels, rows and columns in its flattening order).
+    fn axes(&self) -> [Axis; 4] {
+        use Axis::*;
+        let order = self.flatten.unwrap_or(Flatten::Cyx);
+        match (self.layout, order) {
+            (KernelLayout::ChannelsFirst, _) | (KernelLayout::LinearOutIn, Flatten::Cyx) => {
+                CANONICAL
+            }
+            (KernelLayout::ChannelsLast, _) | (KernelLayout::LinearInOut, Flatten::Yxc) => {
+                [Rows, Cols, In, Out]
+            }
+            (KernelLayout::LinearOutIn, Flatten::Yxc) => [Out, Rows, Cols, In],
+            (KernelLayout::LinearInOut, Flatten::Cyx) => [In, Rows, Cols, Out],
+        }
+    }
+
+    /// Each axis's length for a patch of `[rows, cols]`.
+    fn sizes(&self, [rows, cols]: [usize; 2]) -> impl Fn(Axis) -> usize + '_ {
+        move |axis| match axis {
+            Axis::Out => self.dim,
+            Axis::In => self.channels,
+            Axis::Rows => rows,
+            Axis::Cols => cols,
+        }
+    }
+
+    /// The stored shape for a patch of `[rows, cols]`.
+    fn shape_for(&self, patch: [usize; 2]) -> Vec<usize> {
+        let inputs = self.channels * patch[0] * patch[1];
+        match self.layout {
+            KernelLayout::LinearOutIn => vec![self.dim, inputs],
+            KernelLayout::LinearInOut => vec![inputs, self.dim],
+            _ => self.axes().map(self.sizes(patch)).to_vec(),
         }
     }
 }
@@ -219,15 +484,7 @@ impl Change for PatchChange {
             .map_err(|e| values::value_error(path, &what, e))?;
         let [p, q] = k.patch;
         let [p2, q2] = self.to;
-        let sides = |[rows, cols]: [usize; 2]| {
-            move |axis| match axis {
-                Axis::Out => k.dim,
-                Axis::In => k.channels,
-                Axis::Rows => rows,
-                Axis::Cols => cols,
-            }
-        };
-        let first = rearrange(&v, k.layout.axes(), CANONICAL, sides(k.patch)).map_err(oom)?;
+        let first = rearrange(&v, k.axes(), CANONICAL, k.sizes(k.patch)).map_err(oom)?;
         let resized = patch_kernel::resize_kernels(
             &first,
             k.dim * k.channels,
@@ -236,8 +493,7 @@ impl Change for PatchChange {
             &patch_kernel::default_options(),
         )
         .map_err(|e| Error::refused(path, format!("{what}: {e}")))?;
-        let stored =
-            rearrange(&resized, CANONICAL, k.layout.axes(), sides(self.to)).map_err(oom)?;
+        let stored = rearrange(&resized, CANONICAL, k.axes(), k.sizes(self.to)).map_err(oom)?;
         let bytes = values::encode_f64(entry.dtype, &stored)
             .map_err(|e| values::value_error(path, &what, e))?;
         if !allow_nonfinite {
@@ -281,6 +537,7 @@ impl Change for PatchChange {
             "from": self.kernel.patch,
             "to": self.to,
             "layout": self.kernel.layout,
+            "flatten": self.kernel.flatten,
             "basis_resize": patch_kernel::default_options().kernel,
         })
     }
