@@ -322,7 +322,7 @@ pub fn window_disagreements(recorded: &Recorded, windows: &[WindowMove]) -> Vec<
         })
         .map(|s| {
             format!(
-                "{} records window {}, but the checkpoint's windowed tables have window {} (resized to {})",
+                "{} records window {}, but the checkpoint's windowed tables have window {} (resized to {}); left as it is",
                 dotted(&s.path),
                 s.value,
                 olds.join(", "),
