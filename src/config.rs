@@ -1,10 +1,12 @@
 //! The configuration files beside a checkpoint: the input resolution and patch size they record,
 //! and a rewrite of exactly those values for a resized checkpoint.
 //!
-//! A model configuration records `image_size` and `patch_size` at its top level or in a nested
-//! vision section; a preprocessing configuration records the resize and crop sizes (`size`,
-//! `crop_size`, `image_size`). [`recorded_sizes`] reads them, [`update`] rewrites them and nothing
-//! else, [`disagreements`] compares them with a checkpoint's grid. Key names are those a widely
+//! A model configuration records `image_size`, `patch_size` and the attention window
+//! `window_size` at its top level or in a nested vision section; a preprocessing configuration
+//! records the resize and crop sizes (`size`, `crop_size`, `image_size`). [`recorded_sizes`] reads
+//! them, [`update`] rewrites them and nothing else, [`disagreements`] and
+//! [`window_disagreements`] compare them with a checkpoint, [`crop_fit_warnings`] finds a crop
+//! that no longer fits the resize before it. Key names are those a widely
 //! used model library writes in `config.json` and `preprocessor_config.json` (common practice,
 //! from memory); a text is a preprocessing configuration when its top level has one of the keys
 //! only those files carry (`image_processor_type`, `do_resize`, `size`, …).
@@ -78,6 +80,8 @@ pub enum SizeKey {
     Size,
     /// `crop_size`: the centre crop the model receives.
     CropSize,
+    /// `window_size`: the attention window, in patches.
+    WindowSize,
 }
 
 /// A size as it is written.
@@ -157,8 +161,9 @@ pub struct Recorded {
 }
 
 /// The resize a configuration is updated for. A size the request keeps (old equals new) leaves
-/// its keys alone, even where they disagree with the checkpoint.
-#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+/// its keys alone, even where they disagree with the checkpoint. The default changes nothing
+/// (no recorded size is 0).
+#[derive(Debug, Clone, Default, PartialEq, Eq)]
 pub struct Request {
     /// Input size (height, width) before and after.
     pub old_image: (usize, usize),
@@ -166,6 +171,15 @@ pub struct Request {
     /// Patch side before and after.
     pub old_patch: usize,
     pub new_patch: usize,
+    /// The attention windows that change: a `window_size` equal to an old one takes its new one.
+    pub windows: Vec<WindowMove>,
+}
+
+/// An attention window (rows, columns) before and after.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash, PartialOrd, Ord)]
+pub struct WindowMove {
+    pub old: (usize, usize),
+    pub new: (usize, usize),
 }
 
 /// One value rewritten, for the `config_changes` report (the caller adds the file).
@@ -220,8 +234,9 @@ fn record(doc: &Document) -> Result<Recorded, ConfigError> {
 /// value had (one number, `[h, w]`, `{"height", "width"}`, `{"shortest_edge"}`).
 ///
 /// In a model configuration, `image_size` and `patch_size` take the new values whenever the
-/// request changes that size. In a preprocessing configuration a size changes only where it
-/// equals the old input size, and a shortest edge only where it equals the old short side.
+/// request changes that size, and `window_size` only where it equals an old window of the
+/// request. In a preprocessing configuration a size changes only where it equals the old input
+/// size, and a shortest edge only where it equals the old short side.
 pub fn update(text: &str, changes: &Request) -> Result<(String, Vec<Change>), ConfigError> {
     let doc = Document::parse(text)?;
     let recorded = record(&doc)?;
@@ -282,6 +297,110 @@ fn resize_disagrees(value: SizeValue, input: (usize, usize), has_crop: bool) -> 
     }
 }
 
+/// Warnings for `window_size` keys that record neither a window the request moves nor the
+/// window they move to: the configuration does not describe the checkpoint's windowed tables.
+/// Nothing is known of the windows when none moves, so nothing is compared then.
+pub fn window_disagreements(recorded: &Recorded, windows: &[WindowMove]) -> Vec<String> {
+    let Some(first) = windows.first() else {
+        return Vec::new();
+    };
+    let side = |(h, w): (usize, usize)| format!("{h}x{w}");
+    // A hostile checkpoint may hold thousands of windows: name a few.
+    const NAMED: usize = 4;
+    let mut olds: Vec<String> = windows.iter().take(NAMED).map(|m| side(m.old)).collect();
+    if windows.len() > NAMED {
+        olds.push(format!("{} more", windows.len() - NAMED));
+    }
+    recorded
+        .sizes
+        .iter()
+        .filter(|s| s.key == SizeKey::WindowSize)
+        .filter(|s| {
+            s.value
+                .pair()
+                .is_some_and(|p| !windows.iter().any(|m| m.old == p || m.new == p))
+        })
+        .map(|s| {
+            format!(
+                "{} records window {}, but the checkpoint's windowed tables have window {} (resized to {}); left as it is",
+                dotted(&s.path),
+                s.value,
+                olds.join(", "),
+                side(first.new)
+            )
+        })
+        .collect()
+}
+
+/// Warnings for a preprocessing crop that [`update`] sets to the new input size while the resize
+/// before it stays (it did not record the old input size) and is now smaller than the crop on a
+/// side: images resized that way cannot be cropped. Each names both keys and values and suggests
+/// the resize that keeps its old ratio to the crop.
+pub fn crop_fit_warnings(recorded: &Recorded, req: &Request) -> Vec<String> {
+    if recorded.kind != FileKind::Preprocessing {
+        return Vec::new();
+    }
+    let Some(crop) = recorded.sizes.iter().find(|s| s.key == SizeKey::CropSize) else {
+        return Vec::new();
+    };
+    let (Some(old_crop), Some(Target::Pair(h, w))) =
+        (crop.value.pair(), target_of(crop, recorded.kind, req))
+    else {
+        return Vec::new();
+    };
+    let new_crop = (h, w);
+    if old_crop == new_crop {
+        return Vec::new();
+    }
+    recorded
+        .sizes
+        .iter()
+        .filter(|s| s.key == SizeKey::Size && target_of(s, recorded.kind, req).is_none())
+        .filter(|s| smaller_than(s.value, new_crop))
+        .map(|s| {
+            format!(
+                "{} becomes {h}x{w} (the new input size), but {} stays {}: it did not record the old input size and is now smaller than the crop, so images resized to it cannot be cropped; set {} to {} to keep its old ratio to the crop (old size × new crop / old crop, rounded)",
+                dotted(&crop.path),
+                dotted(&s.path),
+                s.value,
+                dotted(&s.path),
+                keeping_ratio(s.value, old_crop, new_crop)
+            )
+        })
+        .collect()
+}
+
+/// Whether images resized to `value` are smaller than `crop` (height, width) on a side.
+fn smaller_than(value: SizeValue, (h, w): (usize, usize)) -> bool {
+    match value {
+        SizeValue::ShortestEdge(s) => s < h.max(w),
+        v => v.pair().is_some_and(|(vh, vw)| vh < h || vw < w),
+    }
+}
+
+/// `value` scaled by new crop / old crop per side, rounded, as JSON text in the form it is
+/// written in; a single number (or shortest edge) takes the larger side, so the crop fits.
+fn keeping_ratio(value: SizeValue, old: (usize, usize), new: (usize, usize)) -> String {
+    // Sides are at most MAX_SIDE (2^20): the products fit in 64 bits.
+    let scaled = |x: usize, to: usize, from: usize| {
+        let (x, to, from) = (x as u64, to as u64, from.max(1) as u64);
+        (x * to * 2 + from) / (2 * from)
+    };
+    let both = |x: usize| scaled(x, new.0, old.0).max(scaled(x, new.1, old.1));
+    match value {
+        SizeValue::Number(n) => both(n).to_string(),
+        SizeValue::ShortestEdge(s) => format!("{{\"shortest_edge\": {}}}", both(s)),
+        SizeValue::Array(h, w) => {
+            format!("[{}, {}]", scaled(h, new.0, old.0), scaled(w, new.1, old.1))
+        }
+        SizeValue::HeightWidth(h, w) => format!(
+            "{{\"height\": {}, \"width\": {}}}",
+            scaled(h, new.0, old.0),
+            scaled(w, new.1, old.1)
+        ),
+    }
+}
+
 fn dotted(path: &[String]) -> String {
     path.join(".")
 }
@@ -328,6 +447,7 @@ fn collect_model(
         let size_key = match key.as_str() {
             "image_size" => SizeKey::ImageSize,
             "patch_size" => SizeKey::PatchSize,
+            "window_size" => SizeKey::WindowSize,
             k if is_vision_section(k) && doc.is_object(&span) => {
                 let inner = doc.members(&span)?;
                 path.push(key);
@@ -372,10 +492,21 @@ fn read_size(
 ) -> Result<(), ConfigError> {
     let value = doc.value(&span)?;
     let read = match &value {
-        Value::Number(_) => one_number(&value, path, span.clone()).map(Some)?,
-        Value::Array(items) => array_pair(doc, items, path, &span)?,
-        Value::Object(_) => object_size(doc, path, key, &span)?,
-        _ => None,
+        Value::Number(_) => one_number(&value, path, span.clone()).map(Some),
+        Value::Array(items) => array_pair(doc, items, path, &span),
+        Value::Object(_) => object_size(doc, path, key, &span),
+        _ => Ok(None),
+    };
+    let read = match read {
+        // A window of 0 stands for global attention in some configurations: not a size, kept.
+        Err(ConfigError::BadSize { detail, .. }) if key == SizeKey::WindowSize => {
+            out.skipped.push(Skipped {
+                path: path.to_vec(),
+                reason: detail,
+            });
+            return Ok(());
+        }
+        other => other?,
     };
     match read {
         Some((value, slots)) => out.sizes.push(RecordedSize {
@@ -509,6 +640,12 @@ fn target_of(size: &RecordedSize, kind: FileKind, req: &Request) -> Option<Targe
     match (kind, size.key, size.value) {
         (_, SizeKey::PatchSize, _) => {
             (req.old_patch != req.new_patch).then_some(Target::Pair(req.new_patch, req.new_patch))
+        }
+        // Only a window that moves: stages whose window is already the new one keep theirs.
+        (_, SizeKey::WindowSize, value) => {
+            let old = value.pair()?;
+            let moved = req.windows.iter().find(|m| m.old == old)?;
+            Some(Target::Pair(moved.new.0, moved.new.1))
         }
         (FileKind::Model, _, _) => {
             (req.old_image != req.new_image).then_some(Target::Pair(new_h, new_w))

@@ -1,13 +1,14 @@
 //! The configuration files of a directory output (a model directory or a sharded set), updated
-//! to the new size: the JSON files beside the weights that record the input resolution and
-//! patch size get their new values, every other byte kept (see [`crate::config`]). Files that
-//! cannot be read as such are copied as they are, with a warning.
+//! to the new size: the JSON files beside the weights that record the input resolution, patch
+//! size and attention window get their new values, every other byte kept (see
+//! [`crate::config`]). Files that cannot be read as such are copied as they are, with a warning.
 
+use std::collections::{BTreeSet, HashMap};
 use std::path::{Path, PathBuf};
 
 use serde::Serialize;
 
-use crate::config::{self, Request};
+use crate::config::{self, Request, WindowMove};
 use crate::error::Result;
 use crate::plan::Plan;
 
@@ -37,6 +38,66 @@ pub fn model_sizes(plan: &Plan) -> Option<([usize; 2], [usize; 2], usize)> {
     plan.changes.iter().find_map(|c| c.grid_change())
 }
 
+/// The attention windows `plan` moves (tables that follow `--window`), each old window once.
+/// The per-axis tables of one block (`….rel_pos_h`, `….rel_pos_w`) make one window; an axis
+/// none of them changes kept its side, which is then the new one.
+pub fn window_moves(plan: &Plan) -> Vec<WindowMove> {
+    let mut moves = BTreeSet::new();
+    let mut blocks: HashMap<(&str, [usize; 2]), [Option<usize>; 2]> = HashMap::new();
+    for change in &plan.changes {
+        let Some((from, to)) = change.window_change() else {
+            continue;
+        };
+        let old = match from {
+            [Some(h), Some(w)] => [h, w],
+            _ => {
+                let block = crate::kinds::names::parent(change.name());
+                let sides = blocks.entry((block, to)).or_default();
+                for axis in 0..2 {
+                    sides[axis] = sides[axis].or(from[axis]);
+                }
+                continue;
+            }
+        };
+        moves.insert(moved(old, to));
+    }
+    for ((_, to), from) in blocks {
+        moves.insert(moved(
+            [from[0].unwrap_or(to[0]), from[1].unwrap_or(to[1])],
+            to,
+        ));
+    }
+    moves.into_iter().filter(|m| m.old != m.new).collect()
+}
+
+fn moved(old: [usize; 2], new: [usize; 2]) -> WindowMove {
+    WindowMove {
+        old: (old[0], old[1]),
+        new: (new[0], new[1]),
+    }
+}
+
+/// What the configuration files are updated for: the input size and patch from the first
+/// change that moves the patch grid, the windows of the tables that follow `--window`.
+fn request_for(plan: &Plan, new_patch: Option<(usize, usize)>) -> Request {
+    let windows = window_moves(plan);
+    let Some((from, to, patch)) = model_sizes(plan) else {
+        return Request {
+            windows,
+            ..Request::default()
+        };
+    };
+    // A new patch size changes the recorded patch and, with the grid, the input size.
+    let (new_p, new_q) = new_patch.unwrap_or((patch, patch));
+    Request {
+        old_image: (from[0] * patch, from[1] * patch),
+        new_image: (to[0] * new_p, to[1] * new_q),
+        old_patch: patch,
+        new_patch: new_p,
+        windows,
+    }
+}
+
 /// Update the configuration files among `files` for `plan` (none with `keep`: only the
 /// warnings of recorded sizes that disagree with the checkpoint).
 pub fn updates(
@@ -46,17 +107,11 @@ pub fn updates(
     keep: bool,
 ) -> Result<Updates> {
     let mut out = Updates::default();
-    let Some((from, to, patch)) = model_sizes(plan) else {
+    let grid = model_sizes(plan);
+    let request = request_for(plan, new_patch);
+    if grid.is_none() && request.windows.is_empty() {
         return Ok(out);
-    };
-    // A new patch size changes the recorded patch and, with the grid, the input size.
-    let (new_p, new_q) = new_patch.unwrap_or((patch, patch));
-    let request = Request {
-        old_image: (from[0] * patch, from[1] * patch),
-        new_image: (to[0] * new_p, to[1] * new_q),
-        old_patch: patch,
-        new_patch: new_p,
-    };
+    }
     for path in files
         .iter()
         .filter(|p| p.extension().is_some_and(|e| e == "json"))
@@ -90,16 +145,22 @@ pub fn updates(
                 continue;
             }
         };
-        out.warnings.extend(
+        let mut found = grid.map_or_else(Vec::new, |(from, _, patch)| {
             config::disagreements(&recorded, (from[0], from[1]), patch)
-                .into_iter()
-                .map(|w| format!("{name}: {w}")),
-        );
+        });
+        found.extend(config::window_disagreements(&recorded, &request.windows));
+        out.warnings
+            .extend(found.into_iter().map(|w| format!("{name}: {w}")));
         if keep || recorded.sizes.is_empty() {
             continue;
         }
         match config::update(text, &request) {
             Ok((new_text, changes)) if !changes.is_empty() => {
+                out.warnings.extend(
+                    config::crop_fit_warnings(&recorded, &request)
+                        .into_iter()
+                        .map(|w| format!("{name}: {w}")),
+                );
                 out.changes
                     .extend(changes.into_iter().map(|c| ConfigChange {
                         file: name.clone(),

@@ -7,7 +7,7 @@
 //!   with the expected results made by the same module from the loaded dictionaries
 //!   (fixtures/config/make_config_cases.py, the rules written there independently);
 //! - configurations written in this file, shaped after widely used image classification and
-//!   image-text models: key names (`image_size`, `patch_size`, `vision_config`, `text_config`,
+//!   image-text models: key names (`image_size`, `patch_size`, `window_size`, `vision_config`, `text_config`,
 //!   `max_position_embeddings`, `size`, `crop_size`, `shortest_edge`, `height`, `width`) as a
 //!   widely used model library writes them, common practice, from memory; values invented;
 //! - serde_json (the JSON grammar of RFC 8259) reading every output, compared value by value.
@@ -15,8 +15,9 @@
 use std::path::Path;
 
 use posgrid::config::{
-    disagreements, recorded_sizes, text_from_bytes, update, Change, ConfigError, FileKind, Request,
-    SizeKey, SizeValue, MAX_DEPTH, MAX_TEXT_BYTES,
+    crop_fit_warnings, disagreements, recorded_sizes, text_from_bytes, update,
+    window_disagreements, Change, ConfigError, FileKind, Request, SizeKey, SizeValue, WindowMove,
+    MAX_DEPTH, MAX_TEXT_BYTES,
 };
 use proptest::prelude::*;
 use serde_json::{json, Value};
@@ -27,6 +28,7 @@ fn request(old_image: (usize, usize), new_image: (usize, usize), patch: (usize, 
         new_image,
         old_patch: patch.0,
         new_patch: patch.1,
+        windows: Vec::new(),
     }
 }
 
@@ -36,6 +38,7 @@ const TO_384: Request = Request {
     new_image: (384, 384),
     old_patch: 16,
     new_patch: 16,
+    windows: Vec::new(),
 };
 
 fn path(keys: &[&str]) -> Vec<String> {
@@ -106,18 +109,24 @@ fn python_written_configurations_become_exactly_what_python_writes() {
     let manifest: Value =
         serde_json::from_str(&std::fs::read_to_string(dir.join("manifest.json")).unwrap()).unwrap();
     let cases = manifest["cases"].as_array().unwrap();
-    assert_eq!(cases.len(), 8);
+    assert_eq!(cases.len(), 11);
     for case in cases {
         let read = |key: &str| std::fs::read_to_string(dir.join(case[key].as_str().unwrap()));
         let (input, expected) = (read("input").unwrap(), read("expected").unwrap());
         let side = |v: &Value| v.as_u64().unwrap() as usize;
         let pair = |v: &Value| (side(&v[0]), side(&v[1]));
         let r = &case["request"];
-        let req = request(
+        let mut req = request(
             pair(&r["old_image"]),
             pair(&r["new_image"]),
             (side(&r["old_patch"]), side(&r["new_patch"])),
         );
+        for moved in r["windows"].as_array().into_iter().flatten() {
+            req.windows.push(WindowMove {
+                old: pair(&moved["old"]),
+                new: pair(&moved["new"]),
+            });
+        }
         let name = &case["input"];
 
         let kind = recorded_sizes(&input).unwrap().kind;
@@ -405,6 +414,196 @@ fn a_resize_smaller_than_the_new_crop_is_reported_after_the_update() {
     assert_eq!(warnings.len(), 1, "{warnings:?}");
     assert!(warnings[0].starts_with("size resizes images to 256"));
     assert!(disagreements(&recorded_sizes(text).unwrap(), (14, 14), 16).is_empty());
+}
+
+// ---------------------------------------------------------------------------------------------
+// Attention windows (`window_size`, in patches)
+
+/// A request moving one attention window, the input size and patch kept.
+fn moves(old: (usize, usize), new: (usize, usize)) -> Request {
+    Request {
+        windows: vec![WindowMove { old, new }],
+        ..Request::default()
+    }
+}
+
+/// Stage windows of a windowed model written at the top level, in a vision section, as a pair,
+/// and in a text section (not the vision tower's: kept).
+const WINDOWED: &str = r#"{
+  "image_size": 224,
+  "patch_size": 4,
+  "text_config": {"window_size": 7},
+  "vision_config": {"window_size": [7, 7], "stage_window_size": 7},
+  "window_size": 7
+}
+"#;
+
+#[test]
+fn window_sizes_equal_to_a_moving_window_take_the_new_one() {
+    let recorded = recorded_sizes(WINDOWED).unwrap();
+    let windows: Vec<_> = recorded
+        .sizes
+        .iter()
+        .filter(|s| s.key == SizeKey::WindowSize)
+        .map(|s| (s.path.join("."), s.value))
+        .collect();
+    assert_eq!(
+        windows,
+        [
+            ("vision_config.window_size".into(), SizeValue::Array(7, 7)),
+            ("window_size".into(), SizeValue::Number(7)),
+        ]
+    );
+    // A square new window: a number stays a number, a pair stays a pair.
+    let output = assert_update(
+        WINDOWED,
+        &moves((7, 7), (12, 12)),
+        &[
+            (
+                &["vision_config", "window_size"],
+                json!([7, 7]),
+                json!([12, 12]),
+            ),
+            (&["window_size"], json!(7), json!(12)),
+        ],
+    );
+    assert!(output.contains(r#""text_config": {"window_size": 7}"#));
+    assert!(output.contains(r#""stage_window_size": 7"#));
+    // Image and patch sizes stay: this request moves windows only.
+    assert!(output.contains("\"image_size\": 224,\n  \"patch_size\": 4,"));
+}
+
+#[test]
+fn a_non_square_window_goes_into_pairs_only() {
+    let pair = r#"{"window_size": [8, 8], "pretrained_window_sizes": [8, 8, 8, 8]}"#;
+    let output = assert_update(
+        pair,
+        &moves((8, 8), (8, 12)),
+        &[(&["window_size"], json!([8, 8]), json!([8, 12]))],
+    );
+    assert_eq!(
+        output,
+        r#"{"window_size": [8, 12], "pretrained_window_sizes": [8, 8, 8, 8]}"#
+    );
+    match update(r#"{"window_size": 8}"#, &moves((8, 8), (8, 12))) {
+        Err(ConfigError::NotSquare {
+            path,
+            height: 8,
+            width: 12,
+        }) => assert_eq!(path, "window_size"),
+        other => panic!("expected NotSquare, got {other:?}"),
+    }
+}
+
+#[test]
+fn only_windows_that_move_change_where_stages_differ() {
+    // Stages at windows 7 and 12, `--window 12`: the 7 moves, the 12 is already there; a key
+    // recording 9 matches no stage and stays (a warning, below).
+    let text =
+        r#"{"window_size": 7, "vision_config": {"window_size": 12}, "vision": {"window_size": 9}}"#;
+    let req = moves((7, 7), (12, 12));
+    assert_update(text, &req, &[(&["window_size"], json!(7), json!(12))]);
+    let warnings = window_disagreements(&recorded_sizes(text).unwrap(), &req.windows);
+    assert_eq!(warnings.len(), 1, "{warnings:?}");
+    for part in ["vision.window_size", "window 9", "7x7", "12x12"] {
+        assert!(warnings[0].contains(part), "{part}: {warnings:?}");
+    }
+    // With no window moving nothing is known of the checkpoint's windows: no warning.
+    assert!(window_disagreements(&recorded_sizes(text).unwrap(), &[]).is_empty());
+}
+
+#[test]
+fn window_values_that_are_no_window_are_kept_without_failing_the_file() {
+    // 0 stands for global attention in some configurations; a list per stage is not one window.
+    let text = r#"{"image_size": 224, "patch_size": 16, "vision_config": {"window_size": 0}, "window_size": [7, 7, 7, 7]}"#;
+    let recorded = recorded_sizes(text).unwrap();
+    let skipped: Vec<_> = recorded.skipped.iter().map(|s| s.path.join(".")).collect();
+    assert_eq!(skipped, ["vision_config.window_size", "window_size"]);
+    assert_update(text, &TO_384, &[(&["image_size"], json!(224), json!(384))]);
+    // A preprocessing file's window_size is no size posgrid reads.
+    let pre = r#"{"do_resize": true, "size": 224, "window_size": 7}"#;
+    assert!(recorded_sizes(pre)
+        .unwrap()
+        .sizes
+        .iter()
+        .all(|s| s.key != SizeKey::WindowSize));
+    assert_update(pre, &moves((7, 7), (12, 12)), &[]);
+}
+
+// ---------------------------------------------------------------------------------------------
+// A crop updated past the resize before it
+
+/// The one crop-fit warning of `text` updated with `req`, checked to name both keys, the kept
+/// resize, the new crop and the suggested value.
+fn crop_warning(text: &str, req: &Request, kept: &str, suggested: &str) {
+    let warnings = crop_fit_warnings(&recorded_sizes(text).unwrap(), req);
+    assert_eq!(warnings.len(), 1, "{text}: {warnings:?}");
+    let w = &warnings[0];
+    let crop = format!("{}x{}", req.new_image.0, req.new_image.1);
+    for part in ["crop_size", &crop, &format!("size stays {kept}")] {
+        assert!(w.contains(part), "{part}: {w}");
+    }
+    assert!(
+        w.contains(&format!("set size to {suggested} ")),
+        "{suggested}: {w}"
+    );
+}
+
+#[test]
+fn a_kept_resize_smaller_than_the_new_crop_is_a_warning_with_the_ratio_kept() {
+    // The suggested values: old resize × new crop / old crop, rounded (computed by hand):
+    // 256 × 384 / 224 = 438.86 -> 439; 320 × 384 / 224 = 548.57 -> 549;
+    // 256 × 512 / 224 = 585.14 -> 585.
+    let number = r#"{"crop_size": 224, "do_center_crop": true, "size": 256}"#;
+    crop_warning(number, &TO_384, "256", "439");
+    let edge = r#"{"crop_size": {"height": 224, "width": 224}, "size": {"shortest_edge": 256}}"#;
+    crop_warning(
+        edge,
+        &TO_384,
+        "shortest edge 256",
+        r#"{"shortest_edge": 439}"#,
+    );
+    let sides = r#"{"crop_size": [224, 224], "size": {"height": 256, "width": 320}}"#;
+    crop_warning(
+        sides,
+        &TO_384,
+        "256x320",
+        r#"{"height": 439, "width": 549}"#,
+    );
+    let array = r#"{"crop_size": [224, 224], "size": [256, 320]}"#;
+    crop_warning(array, &TO_384, "256x320", "[439, 549]");
+    // A non-square new crop: one number must cover the longer side.
+    let wide = request((224, 224), (384, 512), (16, 16));
+    crop_warning(
+        edge,
+        &wide,
+        "shortest edge 256",
+        r#"{"shortest_edge": 585}"#,
+    );
+}
+
+#[test]
+fn no_crop_warning_where_the_crop_still_fits_or_does_not_move() {
+    let none = |text: &str, req: &Request| {
+        let warnings = crop_fit_warnings(&recorded_sizes(text).unwrap(), req);
+        assert!(warnings.is_empty(), "{text}: {warnings:?}");
+    };
+    // A resize larger than the new crop on both sides.
+    none(r#"{"crop_size": 224, "size": 400}"#, &TO_384);
+    none(
+        r#"{"crop_size": 224, "size": {"shortest_edge": 384}}"#,
+        &TO_384,
+    );
+    // A resize equal to the old input follows it to the new one.
+    none(r#"{"crop_size": 224, "size": 224}"#, &TO_384);
+    // A crop that is not the old input stays, and so does its fit.
+    none(r#"{"crop_size": 200, "size": 256}"#, &TO_384);
+    // A request that keeps the size, and a model configuration.
+    none(
+        r#"{"crop_size": 224, "size": 256}"#,
+        &request((224, 224), (224, 224), (16, 16)),
+    );
+    none(r#"{"image_size": 224, "patch_size": 16}"#, &TO_384);
 }
 
 // ---------------------------------------------------------------------------------------------

@@ -1,10 +1,11 @@
 //! Model directories end to end with the binary: a directory holding one checkpoint (or a
 //! sharded set) beside its configuration, preprocessing configuration and other files, resized
-//! with `posgrid resize DIR -o OUTDIR --image 384`.
+//! with `posgrid resize DIR -o OUTDIR --image 384` (and `--window` for windowed models).
 //!
 //! Sources beside each check:
-//! - the layouts and key names (`config.json` with `image_size`, `patch_size`, `hidden_size`,
-//!   `max_position_embeddings`, a nested `vision_config` and `text_config`;
+//! - the layouts and key names (`config.json` with `image_size`, `patch_size`, `window_size`,
+//!   `hidden_size`, `max_position_embeddings`, `depths`, `num_heads`, `global_attn_indexes`, a
+//!   nested `vision_config` and `text_config`;
 //!   `preprocessor_config.json` with `size` as `{height, width}` or `{shortest_edge}` and
 //!   `crop_size`; `pytorch_model.bin`, `training_args.bin`, `.gitattributes`, `README.md`,
 //!   tokenizer files; shard names `model-0000i-of-0000n.safetensors` and the index's
@@ -18,7 +19,11 @@
 //!   plus the expected changes;
 //! - the rules what changes (issue 15): `image_size` and `patch_size` at the top level or in a
 //!   vision section take the new size; a preprocessing `size` or `crop_size` only where it equals
-//!   the old input size (a 256 resize before a 224 crop stays);
+//!   the old input size (a 256 resize before a 224 crop stays, with a warning once the crop
+//!   outgrows it); `window_size` takes the new window only where it equals a window that moves;
+//! - window-relative index buffers are compared with the construction written in this file from
+//!   its description (common practice of the trade); the per-axis weights with the same file
+//!   resized alone, itself checked against torch's interpolate in tests/kinds_resize.rs;
 //! - safetensors weights are read with the reference `safetensors` crate; PyTorch weights with
 //!   posgrid's reader, itself checked against the framework's own manifest in
 //!   tests/pytorch_files.rs, and the torch.save-written fixture fixtures/torch/plain.pth;
@@ -189,13 +194,15 @@ const SPECIAL_TOKENS: &str = r#"{"bos_token": "<|startoftext|>", "eos_token": "<
 const GITATTRIBUTES: &str = "*.safetensors filter=lfs diff=lfs merge=lfs -text\n*.bin filter=lfs diff=lfs merge=lfs -text\n";
 const README: &str = "# A tiny test model\n\nTrained at image_size 224 with patch_size 16.\n";
 
-/// One configuration file: its text with slots, the values of the slots before and after, and
-/// the `config_changes` entries expected for it (key path, old, new).
+/// One configuration file: its text with slots, the values of the slots before and after, the
+/// `config_changes` entries expected for it (key path, old, new), and the parts of the one
+/// warning expected about it (none: no warning).
 struct Config {
     file: &'static str,
     template: &'static str,
     slots: Vec<(&'static str, &'static str, &'static str)>,
     changes: Vec<(Vec<&'static str>, Value, Value)>,
+    warns: &'static [&'static str],
 }
 
 impl Config {
@@ -236,6 +243,7 @@ fn vit_config(old: &'static str) -> Config {
             json!(old.parse::<u64>().unwrap()),
             json!(384),
         )],
+        warns: &[],
     }
 }
 
@@ -256,6 +264,7 @@ fn pre_height_width() -> Config {
                 json!({"height": 384, "width": 384}),
             ),
         ],
+        warns: &[],
     }
 }
 
@@ -269,6 +278,14 @@ fn pre_resize_256() -> Config {
             json!({"height": 224, "width": 224}),
             json!({"height": 384, "width": 384}),
         )],
+        // The kept 256 resize no longer covers the 384 crop: 256 × 384 / 224 = 438.9 keeps the
+        // old ratio (computed by hand).
+        warns: &[
+            "crop_size",
+            "size stays shortest edge 256",
+            "384x384",
+            r#"{"shortest_edge": 439}"#,
+        ],
     }
 }
 
@@ -278,6 +295,7 @@ fn dual_config() -> Config {
         template: DUAL_CONFIG,
         slots: vec![("@IMAGE@", "224", "384")],
         changes: vec![(vec!["vision_config", "image_size"], json!(224), json!(384))],
+        warns: &[],
     }
 }
 
@@ -302,6 +320,7 @@ fn dual_preprocessor() -> Config {
                 json!({"shortest_edge": 384}),
             ),
         ],
+        warns: &[],
     }
 }
 
@@ -319,6 +338,7 @@ fn small_config(old_image: &'static str, patch: &'static str) -> Config {
             json!(old_image.parse::<u64>().unwrap()),
             json!(384),
         )],
+        warns: &[],
     }
 }
 
@@ -512,16 +532,27 @@ fn check_config(config: &Config, out_dir: &Path) {
     assert_eq!(read, expected, "{}", config.file);
 }
 
-/// Resize `dir` to 384 px into a fresh OUTDIR and check the directory as a whole: the same
-/// file names; each configuration changed as `configs` says and reported in `config_changes`;
-/// every file that is neither weights nor a changed configuration byte-identical; then the same
-/// with `--keep-config`, which leaves every configuration byte-identical. The input directory
-/// is unchanged. `weights` names the files the caller checks; returns OUTDIR.
+/// [`check_directory_with`] for a resize to 384 px.
 fn check_directory(dir: &Path, configs: &[Config], weights: &[&str]) -> PathBuf {
+    check_directory_with(dir, configs, weights, &["--image", "384"])
+}
+
+/// Resize `dir` with `args` into a fresh OUTDIR and check the directory as a whole: the same
+/// file names; each configuration changed as `configs` says and reported in `config_changes`,
+/// with the warnings it expects; every file that is neither weights nor a changed configuration
+/// byte-identical; then the same with `--keep-config`, which leaves every configuration
+/// byte-identical. The input directory is unchanged. `weights` names the files the caller
+/// checks; returns OUTDIR.
+fn check_directory_with(
+    dir: &Path,
+    configs: &[Config],
+    weights: &[&str],
+    args: &[&str],
+) -> PathBuf {
     let before = snapshot(dir);
     let parent = dir.parent().unwrap();
     let out = parent.join("out");
-    let report = resize_json(dir, &out, &["--image", "384"]);
+    let report = resize_json(dir, &out, args);
     assert_eq!(entries(&out), entries(dir), "the input's file names");
     for config in configs {
         check_config(config, &out);
@@ -536,13 +567,28 @@ fn check_directory(dir: &Path, configs: &[Config], weights: &[&str]) -> PathBuf 
     let warnings = report["warnings"].as_array().unwrap();
     for config in configs {
         let prefix = format!("{}:", config.file);
-        assert!(
-            !warnings
-                .iter()
-                .any(|w| w.as_str().unwrap().starts_with(&prefix)),
-            "no warning about {}: {warnings:?}",
-            config.file
-        );
+        let about: Vec<&str> = warnings
+            .iter()
+            .filter_map(Value::as_str)
+            .filter(|w| w.starts_with(&prefix))
+            .collect();
+        if config.warns.is_empty() {
+            assert!(
+                about.is_empty(),
+                "no warning about {}: {about:?}",
+                config.file
+            );
+        } else {
+            assert_eq!(
+                about.len(),
+                1,
+                "one warning about {}: {about:?}",
+                config.file
+            );
+            for part in config.warns {
+                assert!(about[0].contains(part), "{part}: {}", about[0]);
+            }
+        }
     }
     let changed: Vec<&str> = configs
         .iter()
@@ -557,7 +603,9 @@ fn check_directory(dir: &Path, configs: &[Config], weights: &[&str]) -> PathBuf 
     }
 
     let kept = parent.join("out-kept");
-    let report = resize_json(dir, &kept, &["--image", "384", "--keep-config"]);
+    let mut keep_args = args.to_vec();
+    keep_args.push("--keep-config");
+    let report = resize_json(dir, &kept, &keep_args);
     assert_eq!(report["config_changes"], json!([]));
     assert_eq!(entries(&kept), entries(dir));
     let kept_files = snapshot(&kept);
@@ -1106,4 +1154,273 @@ fn another_container_for_a_directory_output_is_a_usage_error() {
     let o = resize(&dir, &out, &["--image", "384", "--format", "npz"]);
     assert_eq!(code(&o), 2, "{}", stderr(&o));
     assert_eq!(entries(root.path()), ["model"]);
+}
+
+// ---------------------------------------------------------------------------------------------
+// 3. Attention windows (`--window`)
+
+/// A shifted-window classifier's config.json (4-pixel patches at 224 px, windows of 7 patches);
+/// the stage lists (`depths`, `num_heads`) hold numbers that must not move.
+const WINDOWED_CONFIG: &str = r#"{
+  "architectures": [
+    "SwinForImageClassification"
+  ],
+  "depths": [
+    2,
+    2
+  ],
+  "embed_dim": 8,
+  "encoder_stride": 32,
+  "hidden_size": 16,
+  "image_size": 224,
+  "model_type": "swin",
+  "num_channels": 3,
+  "num_heads": [
+    2,
+    4
+  ],
+  "patch_size": 4,
+  "torch_dtype": "float32",
+  "transformers_version": "4.40.0",
+  "window_size": @WINDOW@
+}
+"#;
+
+/// The preprocessing of the windowed classifier: the input size is kept by `--window`, so this
+/// file stays byte for byte.
+fn windowed_preprocessor() -> Config {
+    Config {
+        file: "preprocessor_config.json",
+        template: PRE_HEIGHT_WIDTH,
+        slots: vec![
+            ("@CROP@", "224", "224"),
+            ("@HEIGHT@", "224", "224"),
+            ("@WIDTH@", "224", "224"),
+        ],
+        changes: vec![],
+        warns: &[],
+    }
+}
+
+fn windowed_config(old: &'static str, new: &'static str, new_value: Value) -> Config {
+    Config {
+        file: "config.json",
+        template: WINDOWED_CONFIG,
+        slots: vec![("@WINDOW@", old, new)],
+        changes: vec![(
+            vec!["window_size"],
+            serde_json::from_str(old).unwrap(),
+            new_value,
+        )],
+        warns: &[],
+    }
+}
+
+/// The window-relative index of a `wh`x`ww` window without class rows, written here from its
+/// description (common practice of the trade): cell q = (qy, qx) against cell k = (ky, kx) reads
+/// row (qy - ky + wh - 1) · (2ww - 1) + (qx - kx + ww - 1).
+fn relative_index(wh: usize, ww: usize) -> Vec<i64> {
+    let cells = wh * ww;
+    let mut index = Vec::with_capacity(cells * cells);
+    for q in 0..cells {
+        for k in 0..cells {
+            let dy = (q / ww + wh - 1 - k / ww) as i64;
+            let dx = (q % ww + ww - 1 - k % ww) as i64;
+            index.push(dy * (2 * ww as i64 - 1) + dx);
+        }
+    }
+    index
+}
+
+fn index_tensor(name: &str, wh: usize, ww: usize) -> T {
+    T {
+        name: name.into(),
+        dtype: Dtype::I64,
+        shape: vec![wh * ww, wh * ww],
+        bytes: relative_index(wh, ww)
+            .into_iter()
+            .flat_map(i64::to_le_bytes)
+            .collect(),
+    }
+}
+
+/// Two stages of windowed blocks without masks: stage 0 at window 7 (the config's), stage 1
+/// already at window 8.
+fn windowed_tensors() -> Vec<T> {
+    let mut tensors = vec![floats(
+        "patch_embed.proj.weight",
+        Dtype::F32,
+        &[8, 3, 4, 4],
+        &noise(384, 20, 0.1),
+    )];
+    for (stage, window, heads) in [(0, 7, 2), (1, 8, 4)] {
+        let rows = (2 * window - 1) * (2 * window - 1);
+        let block = format!("layers.{stage}.blocks.0.attn");
+        tensors.push(floats(
+            &format!("{block}.relative_position_bias_table"),
+            Dtype::F32,
+            &[rows, heads],
+            &smooth_table(0, 2 * window - 1, 2 * window - 1, heads, 21 + stage as u64),
+        ));
+        tensors.push(index_tensor(
+            &format!("{block}.relative_position_index"),
+            window,
+            window,
+        ));
+        tensors.push(floats(
+            &format!("{block}.qkv.weight"),
+            Dtype::F32,
+            &[3 * heads, heads],
+            &noise(3 * heads * heads, 30 + stage as u64, 0.1),
+        ));
+    }
+    tensors
+}
+
+/// The output weights: stage 0's table at window `new` with its index rebuilt for it (the
+/// construction above), every other tensor (stage 1's, already at window 8 for a square new
+/// window) as it was.
+fn check_windowed_weights(input: &Path, output: &Path, new: (usize, usize)) {
+    let (a_bytes, b_bytes) = (
+        std::fs::read(input).unwrap(),
+        std::fs::read(output).unwrap(),
+    );
+    let (a, b) = (
+        SafeTensors::deserialize(&a_bytes).unwrap(),
+        SafeTensors::deserialize(&b_bytes).unwrap(),
+    );
+    let moved = |stage: usize| new != (8, 8) || stage == 0;
+    let mut names = a.names();
+    names.sort();
+    let mut out_names = b.names();
+    out_names.sort();
+    assert_eq!(names, out_names);
+    for name in names {
+        let (t, u) = (a.tensor(name).unwrap(), b.tensor(name).unwrap());
+        let stage = usize::from(name.starts_with("layers.1"));
+        if name.ends_with("relative_position_bias_table") && moved(stage) {
+            let rows = (2 * new.0 - 1) * (2 * new.1 - 1);
+            assert_eq!(u.shape(), [rows, t.shape()[1]], "{name}");
+        } else if name.ends_with("relative_position_index") && moved(stage) {
+            let cells = new.0 * new.1;
+            assert_eq!(u.shape(), [cells, cells], "{name}");
+            let values: Vec<i64> = u
+                .data()
+                .chunks(8)
+                .map(|c| i64::from_le_bytes(c.try_into().unwrap()))
+                .collect();
+            assert_eq!(values, relative_index(new.0, new.1), "{name}");
+        } else {
+            assert_eq!((t.shape(), t.data()), (u.shape(), u.data()), "{name}");
+        }
+    }
+}
+
+/// `--image 224 --window 8` (the input size kept) on a directory whose config.json records
+/// window 7: window_size becomes 8 (a
+/// number stays a number), image_size and patch_size stay, the preprocessing file and the side
+/// files are copied byte for byte; `--keep-config` leaves the config as it was.
+#[test]
+fn window_size_follows_the_window() {
+    for (old, new, value, args) in [
+        ("7", "8", json!(8), ["--image", "224", "--window", "8"]),
+        // A non-square window goes into a [rows, columns] pair, kept as a pair.
+        (
+            "[\n    7,\n    7\n  ]",
+            "[\n    8,\n    12\n  ]",
+            json!([8, 12]),
+            ["--image", "224", "--window", "8x12"],
+        ),
+    ] {
+        let root = tempfile::tempdir().unwrap();
+        let dir = model_dir(root.path());
+        let weights = write(&dir, "model.safetensors", &windowed_tensors(), None);
+        let configs = [windowed_config(old, new, value), windowed_preprocessor()];
+        for c in &configs {
+            c.write(&dir);
+        }
+        write_side_files(&dir);
+        let out = check_directory_with(&dir, &configs, &["model.safetensors"], &args);
+        let shape = if args[3] == "8" { (8, 8) } else { (8, 12) };
+        check_windowed_weights(&weights, &out.join("model.safetensors"), shape);
+    }
+}
+
+/// A window_size that is neither the checkpoint's old window nor the new one is a warning
+/// naming both and stays; a non-square window cannot go into a single number: the file is
+/// copied as it is, with a warning saying why.
+#[test]
+fn a_window_size_that_disagrees_or_cannot_hold_the_window_is_a_warning() {
+    for (recorded, args, parts) in [
+        ("9", "8", &["window_size", "window 9", "7x7", "8x8"][..]),
+        ("7", "8x12", &["window_size", "one number", "8x12"][..]),
+    ] {
+        let root = tempfile::tempdir().unwrap();
+        let dir = model_dir(root.path());
+        write(&dir, "model.safetensors", &windowed_tensors(), None);
+        let text = WINDOWED_CONFIG.replace("@WINDOW@", recorded);
+        std::fs::write(dir.join("config.json"), &text).unwrap();
+        let out = root.path().join("out");
+        let report = resize_json(&dir, &out, &["--image", "224", "--window", args]);
+        assert_eq!(report["config_changes"], json!([]));
+        let warning = report["warnings"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .filter_map(Value::as_str)
+            .find(|w| w.starts_with("config.json:"))
+            .unwrap_or_else(|| panic!("no warning: {report}"));
+        for part in parts {
+            assert!(warning.contains(part), "{part}: {warning}");
+        }
+        assert_eq!(
+            std::fs::read_to_string(out.join("config.json")).unwrap(),
+            text
+        );
+    }
+}
+
+/// A segmentation model's vision section (image 1024 of 16-pixel patches, windows of 14) over
+/// the per-axis fixture of fixtures/kinds (a 64x64 grid, global and windowed blocks), resized
+/// with the arguments its manifest records (`--grid 96 --window 21`): image_size becomes
+/// 96 × 16 = 1536 and window_size 21; the weights are those of the file resized alone.
+#[test]
+fn per_axis_windows_and_the_grid_update_a_nested_vision_section() {
+    const SEGMENTATION: &str = "{\n  \"model_type\": \"sam\",\n  \"vision_config\": {\n    \"global_attn_indexes\": [\n      1,\n      3\n    ],\n    \"image_size\": @IMAGE@,\n    \"patch_size\": 16,\n    \"window_size\": @WINDOW@\n  }\n}\n";
+    let config = Config {
+        file: "config.json",
+        template: SEGMENTATION,
+        slots: vec![("@IMAGE@", "1024", "1536"), ("@WINDOW@", "14", "21")],
+        changes: vec![
+            (
+                vec!["vision_config", "image_size"],
+                json!(1024),
+                json!(1536),
+            ),
+            (vec!["vision_config", "window_size"], json!(14), json!(21)),
+        ],
+        warns: &[],
+    };
+    let root = tempfile::tempdir().unwrap();
+    let dir = model_dir(root.path());
+    let fixture = Path::new(env!("CARGO_MANIFEST_DIR")).join("fixtures/kinds/axial.safetensors");
+    std::fs::copy(&fixture, dir.join("model.safetensors")).unwrap();
+    config.write(&dir);
+    write_side_files(&dir);
+    let args = ["--grid", "96", "--window", "21"];
+    let out = check_directory_with(&dir, &[config], &["model.safetensors"], &args);
+    let alone = root.path().join("alone.safetensors");
+    resize_json(&fixture, &alone, &args);
+    let (x, y) = (
+        std::fs::read(&alone).unwrap(),
+        std::fs::read(out.join("model.safetensors")).unwrap(),
+    );
+    let (x, y) = (
+        SafeTensors::deserialize(&x).unwrap(),
+        SafeTensors::deserialize(&y).unwrap(),
+    );
+    for (name, t) in x.tensors() {
+        let u = y.tensor(&name).unwrap();
+        assert_eq!((t.shape(), t.data()), (u.shape(), u.data()), "{name}");
+    }
 }

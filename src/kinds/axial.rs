@@ -178,6 +178,9 @@ pub struct AxialChange {
     pub table: AxialTable,
     pub to: usize,
     pub new_shape: Vec<usize>,
+    /// The new attention window `[rows, columns]` of a windowed block's table (`--window`).
+    #[serde(skip)]
+    pub window: Option<[usize; 2]>,
 }
 
 /// Plan the change of `table`: `None` when its span stays.
@@ -227,6 +230,10 @@ pub fn plan(
         table: table.clone(),
         to,
         new_shape: vec![rows, table.channels],
+        window: request
+            .window
+            .filter(|_| table.follows == Span::Window)
+            .map(|(h, w)| [h, w]),
     }))
 }
 
@@ -241,6 +248,12 @@ impl Change for AxialChange {
 
     fn rewrites(&self) -> Vec<(&str, &[usize])> {
         vec![(self.table.name.as_str(), self.new_shape.as_slice())]
+    }
+
+    fn window_change(&self) -> Option<super::WindowSides> {
+        let mut from = [None; 2];
+        from[self.table.axis.index()] = Some(self.table.span);
+        self.window.map(|to| (from, to))
     }
 
     fn compute(&self, ckpt: &dyn TensorSource, allow_nonfinite: bool) -> Result<Computed> {

@@ -327,6 +327,10 @@ pub struct ChangeReport {
     pub fidelity: Option<f64>,
 }
 
+/// An attention window before and after a change: the sides before (rows, columns; `None` for
+/// an axis the tensor does not span, as a per-axis table spans one) and the window after.
+pub type WindowSides = ([Option<usize>; 2], [usize; 2]);
+
 /// One planned change of a grid-dependent tensor and the companion buffers that follow it,
 /// checked before any value is computed. Each kind plans its own; the job runs them all alike.
 pub trait Change: std::fmt::Debug + Send + Sync {
@@ -347,6 +351,11 @@ pub trait Change: std::fmt::Debug + Send + Sync {
     /// The model's patch grid before and after, and its patch size, when this change moves
     /// the patch grid itself (what configuration files record as the input size).
     fn grid_change(&self) -> Option<([usize; 2], [usize; 2], usize)> {
+        None
+    }
+    /// The attention window before and after, when this change follows `--window` (what
+    /// configuration files record as `window_size`).
+    fn window_change(&self) -> Option<WindowSides> {
         None
     }
     /// Tensors the output leaves out (a mask its block no longer has).

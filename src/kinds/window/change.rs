@@ -398,6 +398,11 @@ impl Change for WindowChange {
         (self.table.follows == Follows::Grid).then_some((self.table.window, self.to, patch))
     }
 
+    fn window_change(&self) -> Option<crate::kinds::WindowSides> {
+        let [h, w] = self.table.window;
+        (self.table.follows == Follows::Window).then_some(([Some(h), Some(w)], self.to))
+    }
+
     fn drops(&self) -> Vec<&str> {
         self.masks
             .iter()
