@@ -77,11 +77,16 @@ fn moved(old: [usize; 2], new: [usize; 2]) -> WindowMove {
     }
 }
 
-/// What the configuration files are updated for: the input size and patch from the first
-/// change that moves the patch grid, the windows of the tables that follow `--window`.
-fn request_for(plan: &Plan, new_patch: Option<(usize, usize)>) -> Request {
+/// What the configuration files are updated for: the input size and patch from `grid` (the
+/// first change that moves the patch grid, else the configuration's own record taken to the
+/// target), the windows of the tables that follow `--window`.
+fn request_for(
+    grid: Option<([usize; 2], [usize; 2], usize)>,
+    plan: &Plan,
+    new_patch: Option<(usize, usize)>,
+) -> Request {
     let windows = window_moves(plan);
-    let Some((from, to, patch)) = model_sizes(plan) else {
+    let Some((from, to, patch)) = grid else {
         return Request {
             windows,
             ..Request::default()
@@ -103,12 +108,12 @@ fn request_for(plan: &Plan, new_patch: Option<(usize, usize)>) -> Request {
 pub fn updates(
     files: &[PathBuf],
     plan: &Plan,
-    new_patch: Option<(usize, usize)>,
+    job: &crate::plan::Request,
     keep: bool,
 ) -> Result<Updates> {
     let mut out = Updates::default();
-    let grid = model_sizes(plan);
-    let request = request_for(plan, new_patch);
+    let grid = model_sizes(plan).or_else(|| grid_from_config(files, plan, job));
+    let request = request_for(grid, plan, job.new_patch);
     if grid.is_none() && request.windows.is_empty() {
         return Ok(out);
     }
@@ -194,6 +199,12 @@ fn read_capped(path: &Path) -> Result<Option<Vec<u8>>> {
 /// of `config.json`, at the top level or in a vision section), with the file it came from:
 /// evidence for a grid the row count alone does not settle (a non-square one).
 pub fn recorded_grid(files: &[PathBuf]) -> Option<((usize, usize), String)> {
+    let (grid, _, file) = recorded_grid_and_patch(files)?;
+    Some((grid, file))
+}
+
+/// [`recorded_grid`] with the recorded patch `(p, q)`.
+fn recorded_grid_and_patch(files: &[PathBuf]) -> Option<((usize, usize), (usize, usize), String)> {
     let config = files
         .iter()
         .find(|p| p.file_name().is_some_and(|n| n == "config.json"))?;
@@ -209,7 +220,31 @@ pub fn recorded_grid(files: &[PathBuf]) -> Option<((usize, usize), String)> {
     let (h, w) = find(config::SizeKey::ImageSize)?;
     let (p, q) = find(config::SizeKey::PatchSize)?;
     let fits = p > 0 && q > 0 && h % p == 0 && w % q == 0;
-    fits.then(|| ((h / p, w / q), config.display().to_string()))
+    fits.then(|| ((h / p, w / q), (p, q), config.display().to_string()))
+}
+
+/// The model's grid before and after when no tensor of `plan` holds it (a windowed model whose
+/// checkpoint stores no masks: its tables follow the window, not the grid): the grid and patch
+/// `config.json` records, taken to the request's target. `None` when nothing changes or the
+/// configuration records no square patch.
+fn grid_from_config(
+    files: &[PathBuf],
+    plan: &Plan,
+    request: &crate::plan::Request,
+) -> Option<([usize; 2], [usize; 2], usize)> {
+    if plan.changes.is_empty() {
+        return None;
+    }
+    let ((h, w), (p, q), _) = recorded_grid_and_patch(files)?;
+    if p != q {
+        return None;
+    }
+    let sides = request.new_patch.map_or([p, q], |(a, b)| [a, b]);
+    let new = request
+        .target
+        .grid_for(Path::new(""), "the configuration", [h, w], Some(sides))
+        .ok()?;
+    Some(([h, w], new, p))
 }
 
 /// [`recorded_grid`] for the configuration files that go with `source` opened from `input`:

@@ -284,7 +284,7 @@ fn update_configs(
             return Ok(Vec::new());
         }
     };
-    let updates = config_files::updates(&files, plan, job.request.new_patch, job.keep_config)?;
+    let updates = config_files::updates(&files, plan, &job.request, job.keep_config)?;
     report.warnings.extend(updates.warnings);
     report.config_changes = updates.changes;
     Ok(updates.edits)

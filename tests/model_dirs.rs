@@ -1346,6 +1346,58 @@ fn window_size_follows_the_window() {
     }
 }
 
+/// A windowed model whose checkpoint holds no grid (window tables and their index buffers, no
+/// masks) at a new input size and window: the configuration's image_size goes to the new size
+/// with window_size, and the preprocessing sizes with it — the grid taken from what the
+/// configuration records (224 / 4 = 56), the new one from --image (384 / 4 = 96).
+#[test]
+fn a_windowed_model_without_masks_gets_its_new_input_size_recorded() {
+    let root = tempfile::tempdir().unwrap();
+    let dir = model_dir(root.path());
+    let weights = write(&dir, "model.safetensors", &windowed_tensors(), None);
+    let template: &'static str = Box::leak(
+        WINDOWED_CONFIG
+            .replace("\"image_size\": 224", "\"image_size\": @IMAGE@")
+            .into_boxed_str(),
+    );
+    let config = Config {
+        file: "config.json",
+        template,
+        slots: vec![("@IMAGE@", "224", "384"), ("@WINDOW@", "7", "12")],
+        changes: vec![
+            (vec!["image_size"], json!(224), json!(384)),
+            (vec!["window_size"], json!(7), json!(12)),
+        ],
+        warns: &[],
+    };
+    let preprocessor = Config {
+        file: "preprocessor_config.json",
+        template: PRE_HEIGHT_WIDTH,
+        slots: vec![
+            ("@CROP@", "224", "384"),
+            ("@HEIGHT@", "224", "384"),
+            ("@WIDTH@", "224", "384"),
+        ],
+        changes: vec![
+            (vec!["crop_size"], json!(224), json!(384)),
+            (
+                vec!["size"],
+                json!({"height": 224, "width": 224}),
+                json!({"height": 384, "width": 384}),
+            ),
+        ],
+        warns: &[],
+    };
+    let configs = [config, preprocessor];
+    for c in &configs {
+        c.write(&dir);
+    }
+    write_side_files(&dir);
+    let args = ["--image", "384", "--window", "12"];
+    let out = check_directory_with(&dir, &configs, &["model.safetensors"], &args);
+    check_windowed_weights(&weights, &out.join("model.safetensors"), (12, 12));
+}
+
 /// A window_size that is neither the checkpoint's old window nor the new one is a warning
 /// naming both and stays; a non-square window cannot go into a single number: the file is
 /// copied as it is, with a warning saying why.
