@@ -203,8 +203,11 @@ pub fn recorded_grid(files: &[PathBuf]) -> Option<((usize, usize), String)> {
     Some((grid, file))
 }
 
+/// Rows and columns (of a grid, or of a patch in pixels).
+type Sides = (usize, usize);
+
 /// [`recorded_grid`] with the recorded patch `(p, q)`.
-fn recorded_grid_and_patch(files: &[PathBuf]) -> Option<((usize, usize), (usize, usize), String)> {
+fn recorded_grid_and_patch(files: &[PathBuf]) -> Option<(Sides, Sides, String)> {
     let config = files
         .iter()
         .find(|p| p.file_name().is_some_and(|n| n == "config.json"))?;
