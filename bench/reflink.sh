@@ -20,6 +20,9 @@
 #   cp --reflink=always [+ sync]        a clone of the whole file, without and with a sync
 # and, once each, the new disk the file system uses for the output (df before and after).
 # Prints the median of each, the ratios against the targets and the disk use.
+# COLD=1 drops the page cache before every run (echo 3 > /proc/sys/vm/drop_caches), as for a
+# checkpoint just downloaded or not read since boot: every command then reads what it needs
+# from the disk, the copies the whole file, posgrid its header and tables.
 set -euo pipefail
 cd "$(dirname "$0")/.."
 runs=${1:-7}
@@ -65,6 +68,7 @@ times="$work/reflink-times"
 measure() { # label, then the command; appends "label seconds"
   local label=$1; shift
   rm -f "$dst"; sync
+  [ "${COLD:-0}" = 1 ] && echo 3 > /proc/sys/vm/drop_caches
   local t0=$EPOCHREALTIME
   "$@" >/dev/null
   local t1=$EPOCHREALTIME
@@ -111,7 +115,7 @@ fi
 shared=$("$bin" resize "$src" -o "$dst" --grid 24 --force --json | python3 -c 'import json,sys; r=json.load(sys.stdin); print(r["bytes_shared"], r["bytes_copied"])')
 rm -f "$dst"
 
-python3 - "$times" "$(stat -c %s "$src")" "$disk_lines" "$shared" "$dio" "$sync_ms" "$ext" <<'PY'
+python3 - "$times" "$(stat -c %s "$src")" "$disk_lines" "$shared" "$dio" "$sync_ms" "$ext" "${COLD:-0}" <<'PY'
 import statistics, sys
 t = {}
 for line in open(sys.argv[1]):
@@ -122,7 +126,8 @@ size = int(sys.argv[2])
 disk = dict((l.split()[0], int(l.split()[1])) for l in sys.argv[3].splitlines())
 shared, copied = map(int, sys.argv[4].split())
 io = "direct I/O" if sys.argv[5] == "1" else "buffered"
-print(f"XFS (reflink=1) on a loop device ({io}), {sys.argv[7]} input {size / 1e9:.2f} GB, {len(t['cp-never'])} runs each, medians:")
+cache = "page cache dropped before every run" if sys.argv[8] == "1" else "warm page cache"
+print(f"XFS (reflink=1) on a loop device ({io}), {sys.argv[7]} input {size / 1e9:.2f} GB, {cache}, {len(t['cp-never'])} runs each, medians:")
 for k in ["posgrid-durable", "posgrid-nosync", "posgrid-dryrun", "cp-never", "cp-never-sync", "cp-reflink", "cp-reflink-sync"]:
     print(f"  {k:16} {med[k] * 1000:9.1f} ms   (runs: {', '.join(f'{x * 1000:.1f}' for x in t[k])})")
 d, n, tables = med["posgrid-durable"], med["posgrid-nosync"], med["posgrid-dryrun"]
