@@ -189,6 +189,9 @@ enum Verdict {
     Ignore,
 }
 
+/// Read `entry` as an absolute table, stage by stage: its shape, its dtype, the candidate
+/// (slots, grid) explanations from the strongest evidence at hand, the values to settle
+/// between them, and the kind. Each stage may end with a verdict other than a table.
 fn examine(
     source: &dyn TensorSource,
     entry: &TensorEntry,
@@ -196,23 +199,112 @@ fn examine(
     forced: bool,
     kernels: Kernels,
 ) -> Result<Verdict> {
-    let (kernel_widths, tubelet_widths) = (kernels.flat, kernels.tubelet);
     let mut notes = Vec::new();
-    let mut warning = None;
+    let shape = match read_shape(entry, hints, forced, kernels.flat, &mut notes) {
+        Flow::Continue(s) => s,
+        Flow::Break(verdict) => return Ok(verdict),
+    };
+    if let Some(reason) = unreadable(entry, &shape) {
+        return Ok(Verdict::Skip(reason));
+    }
+    let tubelet = kernels
+        .tubelet
+        .iter()
+        .find(|(width, _)| *width == shape.dim)
+        .map(|k| k.1);
+    let found = match candidates(source, entry, hints, &shape, tubelet, &mut notes) {
+        Flow::Continue(c) => c,
+        Flow::Break(verdict) => return Ok(verdict),
+    };
+    let mut values = TableValues::new(source, entry, &shape, &mut notes);
+    let ((slots, grid), slots_from) = match settle(entry, &found, &mut values, &mut notes)? {
+        Flow::Continue(c) => c,
+        Flow::Break(verdict) => return Ok(verdict),
+    };
+    let v = values.get()?;
+    let first_axis = values.sincos_fit(&v, slots, grid);
+    let kind = if first_axis.is_some() {
+        Kind::Sincos
+    } else {
+        Kind::Learned
+    };
+    if kind == Kind::Sincos && slots > 0 {
+        let class_zero = v[..slots * shape.dim].iter().all(|x| *x == 0.0);
+        notes.push(if class_zero {
+            "class rows are zero".to_string()
+        } else {
+            "class rows are not part of the sine-cosine construction".to_string()
+        });
+    }
+    Ok(Verdict::Table(
+        Box::new(Table {
+            name: entry.name.clone(),
+            dtype: entry.dtype,
+            shape: entry.shape.clone(),
+            layout: shape.layout,
+            slots,
+            grid: [grid.0, grid.1],
+            dim: shape.dim,
+            patch: None,
+            patch_source: None,
+            kind,
+            sincos_first_axis: first_axis,
+            tubelet: found.frames.and(tubelet),
+            slots_from,
+            frames: found.frames,
+            companions: Vec::new(),
+            copy_of: None,
+            notes,
+        }),
+        shape.warning,
+    ))
+}
+
+/// A stage's outcome: go on with a value, or stop with a verdict.
+type Flow<T> = std::ops::ControlFlow<Verdict, T>;
+
+/// One (slots, grid) explanation of a table's rows.
+type Explanation = (usize, (usize, usize));
+
+/// What the shape says: the layout, the row count, the width, and the grid when the shape
+/// holds it (a `[1, H, W, D]` or `[1, D, H, W]` table).
+struct Shape {
+    layout: Layout,
+    rows: usize,
+    dim: usize,
+    grid: Option<(usize, usize)>,
+    /// Set when the reading rests on a default (a 4-D shape that reads the same either way).
+    warning: Option<String>,
+}
+
+fn read_shape(
+    entry: &TensorEntry,
+    hints: &Hints,
+    forced: bool,
+    kernel_widths: &[usize],
+    notes: &mut Vec<String>,
+) -> Flow<Shape> {
     let four_d = match entry.shape.as_slice() {
         [1, a, b, c] => channel_order(*a, *b, *c, hints, kernel_widths),
         _ => Reading::Neither,
     };
-    let (layout, rows, dim, grid_from_shape) = match (entry.shape.as_slice(), four_d) {
-        ([1, n, d], _) => (Layout::BatchRows, *n, *d, None),
-        ([n, d], _) => (Layout::Rows, *n, *d, None),
+    let plain = |layout, rows, dim, grid| Shape {
+        layout,
+        rows,
+        dim,
+        grid,
+        warning: None,
+    };
+    Flow::Continue(match (entry.shape.as_slice(), four_d) {
+        ([1, n, d], _) => plain(Layout::BatchRows, *n, *d, None),
+        ([n, d], _) => plain(Layout::Rows, *n, *d, None),
         ([1, h, w, d], Reading::Only(Channels::Last, why)) => {
             notes.extend(why);
-            (Layout::Grid, h * w, *d, Some((*h, *w)))
+            plain(Layout::Grid, h * w, *d, Some((*h, *w)))
         }
         ([1, d, h, w], Reading::Only(Channels::First, why)) => {
             notes.extend(why);
-            (Layout::GridChannelsFirst, h * w, *d, Some((*h, *w)))
+            plain(Layout::GridChannelsFirst, h * w, *d, Some((*h, *w)))
         }
         ([1, h, w, d], Reading::Default) => {
             let text = format!(
@@ -220,11 +312,13 @@ fn examine(
                 entry.name
             );
             notes.push(text.clone());
-            warning = Some(text);
-            (Layout::Grid, h * w, *d, Some((*h, *w)))
+            Shape {
+                warning: Some(text),
+                ..plain(Layout::Grid, h * w, *d, Some((*h, *w)))
+            }
         }
         ([1, a, b, c], Reading::Ambiguous) => {
-            return Ok(Verdict::Ambiguous(Ambiguous {
+            return Flow::Break(Verdict::Ambiguous(Ambiguous {
                 name: entry.name.clone(),
                 rows: a * b * c,
                 candidates: vec![(0, vec![*a, *b]), (0, vec![*b, *c])],
@@ -236,7 +330,7 @@ fn examine(
         (other, _) => {
             // Biases, scalars, conv kernels named like tables are not tables; say so only when
             // the user asked for this tensor or it is plausibly a table.
-            return Ok(if forced || other.len() >= 2 {
+            return Flow::Break(if forced || other.len() >= 2 {
                 Verdict::Skip(format!(
                     "shape {other:?} is not [1, N, D], [N, D] or [1, H, W, D]"
                 ))
@@ -244,264 +338,321 @@ fn examine(
                 Verdict::Ignore
             });
         }
-    };
+    })
+}
+
+/// Why a table of this dtype or size cannot be resampled, if it cannot.
+fn unreadable(entry: &TensorEntry, shape: &Shape) -> Option<String> {
     if values::is_integer(entry.dtype) || entry.dtype == Dtype::BOOL {
-        return Ok(Verdict::Skip(format!(
+        return Some(format!(
             "dtype {} holds integers; a position table holds floats",
             entry.dtype
-        )));
+        ));
     }
     if !values::is_float(entry.dtype) {
-        return Ok(Verdict::Skip(format!(
+        return Some(format!(
             "dtype {} is not one posgrid resamples (F16, BF16, F32, F64)",
             entry.dtype
-        )));
+        ));
     }
-    if dim == 0 || rows == 0 {
-        return Ok(Verdict::Skip("the table is empty".into()));
-    }
+    (shape.dim == 0 || shape.rows == 0).then(|| "the table is empty".into())
+}
 
-    let mut frames = None;
-    let mut slots_from = match (
-        grid_from_shape,
-        hints.source_grid.or(hints.slots.map(|_| (0, 0))),
-    ) {
-        (Some(_), _) => SlotsFrom::Shape,
-        (None, Some(_)) => SlotsFrom::Flag,
-        (None, None) => SlotsFrom::Rows,
+/// The explanations the evidence allows, what decided them, and the frames of a video grid.
+struct Candidates {
+    list: Vec<Explanation>,
+    from: SlotsFrom,
+    frames: Option<usize>,
+}
+
+/// The candidate explanations, from the strongest evidence at hand: the shape, the flags, a
+/// video model's kernel, a configuration beside the checkpoint, then the row count with the
+/// token tensors beside the table.
+fn candidates(
+    source: &dyn TensorSource,
+    entry: &TensorEntry,
+    hints: &Hints,
+    shape: &Shape,
+    tubelet: Option<usize>,
+    notes: &mut Vec<String>,
+) -> Flow<Candidates> {
+    let rows = shape.rows;
+    let flag = |one| Candidates {
+        list: vec![one],
+        from: SlotsFrom::Flag,
+        frames: None,
     };
-    let tubelet = tubelet_widths
-        .iter()
-        .find(|(width, _)| *width == dim)
-        .map(|k| k.1);
-    let candidates: Vec<(usize, (usize, usize))> = if let Some(g) = grid_from_shape {
+    if let Some(g) = shape.grid {
         if let Some(s) = hints.slots.filter(|&s| s != 0) {
             notes.push(format!(
                 "--slots {s} ignored: a grid-shaped table has no class slots"
             ));
         }
-        vec![(0, g)]
-    } else if let (Some((h, w)), Some(t)) = (hints.source_grid, hints.source_frames) {
-        // A product past a 64-bit count explains no table (wrapped, it could seem to).
-        match t
-            .checked_mul(h)
-            .and_then(|n| n.checked_mul(w))
-            .and_then(|n| rows.checked_sub(n))
-        {
-            Some(s) if s <= MAX_SLOTS && hints.slots.is_none_or(|hs| hs == s) => {
-                frames = Some(t);
-                vec![(s, (h, w))]
-            }
-            _ => {
-                return Ok(Verdict::Skip(format!(
-                    "{rows} rows do not fit --source-grid {t}x{h}x{w}"
-                )))
-            }
-        }
-    } else if tubelet.is_some() && hints.source_grid.is_none() {
-        // A video model: rows are T·H·W after the slots, and the row count alone cannot
-        // tell T from H·W.
-        let fits = video_explanations(rows, hints.slots);
-        return Ok(match fits[..] {
-            [(s, t, k)] => Verdict::Skip(format!("{rows} rows of a video model fit only {s} slot(s) + {t}x{k}x{k}; pass --source-grid {t}x{k}x{k} to take it")),
-            [] => Verdict::Skip(format!("{rows} rows of a video model (a 5-D patch kernel beside it) fit no T x H x H grid; pass --source-grid TxHxW")),
-            _ => Verdict::Ambiguous(Ambiguous {
-                name: entry.name.clone(),
-                rows,
-                candidates: fits.iter().map(|&(s, t, k)| (s, vec![t, k, k])).collect(),
-                resolve_with: "--source-grid TxHxW".into(),
-            }),
+        return Flow::Continue(Candidates {
+            list: vec![(0, g)],
+            from: SlotsFrom::Shape,
+            frames: None,
         });
-    } else if let Some((h, w)) = hints.source_grid {
-        match h.checked_mul(w).and_then(|n| rows.checked_sub(n)) {
-            Some(s) if s <= MAX_SLOTS && hints.slots.is_none_or(|hs| hs == s) => vec![(s, (h, w))],
-            _ => {
-                return Ok(Verdict::Skip(format!(
-                    "{rows} rows do not fit --source-grid {h}x{w}{}",
-                    hints
-                        .slots
-                        .map(|s| format!(" with --slots {s}"))
-                        .unwrap_or_default()
-                )))
-            }
-        }
-    } else if let Some(s) = hints.slots {
-        match rows.checked_sub(s).and_then(integer_sqrt) {
-            Some(k) if k >= 2 => vec![(s, (k, k))],
-            _ => {
-                return Ok(Verdict::Skip(format!(
-                    "{rows} rows with --slots {s} leave no square grid; pass --source-grid HxW"
-                )))
-            }
-        }
-    } else if let Some(c) = recorded_fit(rows, hints) {
-        slots_from = SlotsFrom::Config;
+    }
+    match (hints.source_grid, hints.source_frames) {
+        (Some(grid), Some(t)) => video_flag(rows, grid, t, hints.slots),
+        (None, _) if tubelet.is_some() => Flow::Break(video_rows(entry, rows, hints.slots)),
+        (Some(grid), None) => grid_flag(rows, grid, hints.slots).map_continue(flag),
+        (None, _) => match hints.slots {
+            Some(s) => slots_flag(rows, s).map_continue(flag),
+            None => by_evidence(source, entry, hints, shape, notes),
+        },
+    }
+}
+
+/// `--source-grid TxHxW`: the rows after the slots are T·H·W.
+fn video_flag(
+    rows: usize,
+    (h, w): (usize, usize),
+    t: usize,
+    slots: Option<usize>,
+) -> Flow<Candidates> {
+    // A product past a 64-bit count explains no table (wrapped, it could seem to).
+    match t
+        .checked_mul(h)
+        .and_then(|n| n.checked_mul(w))
+        .and_then(|n| rows.checked_sub(n))
+    {
+        Some(s) if s <= MAX_SLOTS && slots.is_none_or(|hs| hs == s) => Flow::Continue(Candidates {
+            list: vec![(s, (h, w))],
+            from: SlotsFrom::Flag,
+            frames: Some(t),
+        }),
+        _ => Flow::Break(Verdict::Skip(format!(
+            "{rows} rows do not fit --source-grid {t}x{h}x{w}"
+        ))),
+    }
+}
+
+/// A video model (a 5-D kernel of the table's width) without `--source-grid`: the row count
+/// alone cannot tell T from H·W, so the verdict names the explanations and the flag.
+fn video_rows(entry: &TensorEntry, rows: usize, slots: Option<usize>) -> Verdict {
+    let fits = video_explanations(rows, slots);
+    match fits[..] {
+        [(s, t, k)] => Verdict::Skip(format!("{rows} rows of a video model fit only {s} slot(s) + {t}x{k}x{k}; pass --source-grid {t}x{k}x{k} to take it")),
+        [] => Verdict::Skip(format!("{rows} rows of a video model (a 5-D patch kernel beside it) fit no T x H x H grid; pass --source-grid TxHxW")),
+        _ => Verdict::Ambiguous(Ambiguous {
+            name: entry.name.clone(),
+            rows,
+            candidates: fits.iter().map(|&(s, t, k)| (s, vec![t, k, k])).collect(),
+            resolve_with: "--source-grid TxHxW".into(),
+        }),
+    }
+}
+
+/// `--source-grid HxW` (with `--slots` when given): the slots are what the grid leaves.
+fn grid_flag(rows: usize, (h, w): (usize, usize), slots: Option<usize>) -> Flow<Explanation> {
+    match h.checked_mul(w).and_then(|n| rows.checked_sub(n)) {
+        Some(s) if s <= MAX_SLOTS && slots.is_none_or(|hs| hs == s) => Flow::Continue((s, (h, w))),
+        _ => Flow::Break(Verdict::Skip(format!(
+            "{rows} rows do not fit --source-grid {h}x{w}{}",
+            slots
+                .map(|s| format!(" with --slots {s}"))
+                .unwrap_or_default()
+        ))),
+    }
+}
+
+/// `--slots N` alone: the rest must be a square grid.
+fn slots_flag(rows: usize, s: usize) -> Flow<Explanation> {
+    match rows.checked_sub(s).and_then(integer_sqrt) {
+        Some(k) if k >= 2 => Flow::Continue((s, (k, k))),
+        _ => Flow::Break(Verdict::Skip(format!(
+            "{rows} rows with --slots {s} leave no square grid; pass --source-grid HxW"
+        ))),
+    }
+}
+
+/// No flag: a configuration's recorded grid where the rows leave a choice, else the square
+/// explanations of the rows, narrowed by the token tensors beside the table.
+fn by_evidence(
+    source: &dyn TensorSource,
+    entry: &TensorEntry,
+    hints: &Hints,
+    shape: &Shape,
+    notes: &mut Vec<String>,
+) -> Flow<Candidates> {
+    let take = |list, from| {
+        Flow::Continue(Candidates {
+            list,
+            from,
+            frames: None,
+        })
+    };
+    if let Some(c) = recorded_fit(shape.rows, hints) {
         let file = hints.recorded_grid.as_ref().map_or("", |r| r.1.as_str());
         notes.push(format!(
             "grid {}x{} from the image and patch sizes {file} records",
             c.1 .0, c.1 .1
         ));
-        vec![c]
-    } else {
-        let by_rows = square_explanations(rows);
-        match tokens::decide(
-            &by_rows,
-            &tokens::beside(source.entries(), &entry.name, dim),
-        ) {
-            tokens::Decision::Rows => by_rows,
-            tokens::Decision::Take(c, from, note) => {
-                slots_from = from;
-                notes.push(note);
-                vec![c]
-            }
-            tokens::Decision::Disagree(why) => {
-                return Ok(Verdict::Ambiguous(Ambiguous {
-                    name: entry.name.clone(),
-                    rows,
-                    candidates: by_rows.iter().map(|&(s, (h, w))| (s, vec![h, w])).collect(),
-                    resolve_with: format!("--slots N ({why})"),
-                }))
-            }
-        }
-    };
-
-    // The values settle the sine-cosine kind, and can settle an ambiguous or non-square grid.
-    // A table too large to hold in memory comfortably is not read: its kind stays learned.
-    let readable = entry.byte_len() <= MAX_VALUE_READ;
-    if !readable {
-        notes.push(format!(
-            "values not read (over {} MiB): the sine-cosine check was skipped",
-            MAX_VALUE_READ >> 20
-        ));
+        return take(vec![c], SlotsFrom::Config);
     }
-    let table_values = || -> Result<Vec<f64>> {
+    let by_rows = square_explanations(shape.rows);
+    let beside = tokens::beside(source.entries(), &entry.name, shape.dim);
+    match tokens::decide(&by_rows, &beside) {
+        tokens::Decision::Rows => take(by_rows, SlotsFrom::Rows),
+        tokens::Decision::Take(c, from, note) => {
+            notes.push(note);
+            take(vec![c], from)
+        }
+        tokens::Decision::Disagree(why) => Flow::Break(Verdict::Ambiguous(Ambiguous {
+            name: entry.name.clone(),
+            rows: shape.rows,
+            candidates: by_rows.iter().map(|&(s, (h, w))| (s, vec![h, w])).collect(),
+            resolve_with: format!("--slots N ({why})"),
+        })),
+    }
+}
+
+/// The table's values, read once when a stage needs them (a table over [`MAX_VALUE_READ`] is
+/// not read: its kind stays learned), with the sine-cosine check against them.
+struct TableValues<'a> {
+    source: &'a dyn TensorSource,
+    entry: &'a TensorEntry,
+    layout: Layout,
+    rows: usize,
+    dim: usize,
+    readable: bool,
+    loaded: Option<Vec<f64>>,
+}
+
+impl<'a> TableValues<'a> {
+    fn new(
+        source: &'a dyn TensorSource,
+        entry: &'a TensorEntry,
+        shape: &Shape,
+        notes: &mut Vec<String>,
+    ) -> Self {
+        let readable = entry.byte_len() <= MAX_VALUE_READ;
         if !readable {
+            notes.push(format!(
+                "values not read (over {} MiB): the sine-cosine check was skipped",
+                MAX_VALUE_READ >> 20
+            ));
+        }
+        TableValues {
+            source,
+            entry,
+            layout: shape.layout,
+            rows: shape.rows,
+            dim: shape.dim,
+            readable,
+            loaded: None,
+        }
+    }
+
+    /// The values, row-major `[rows, dim]` (empty when not read).
+    fn get(&mut self) -> Result<Vec<f64>> {
+        if let Some(v) = self.loaded.take() {
+            return Ok(v);
+        }
+        if !self.readable {
             return Ok(Vec::new());
         }
-        let bytes = source.bytes(entry)?;
-        let v = values::decode_f64(entry.dtype, &bytes)
-            .map_err(|e| values::value_error(source.source_path(), &entry.name, e))?;
-        if layout != Layout::GridChannelsFirst {
+        let (path, name) = (self.source.source_path(), &self.entry.name);
+        let bytes = self.source.bytes(self.entry)?;
+        let v = values::decode_f64(self.entry.dtype, &bytes)
+            .map_err(|e| values::value_error(path, name, e))?;
+        if self.layout != Layout::GridChannelsFirst {
             return Ok(v);
         }
         // Channels first: rows of the grid are the columns of a [D, H·W] matrix.
-        values::transpose(&v, dim, rows)
-            .map_err(|e| values::out_of_memory(source.source_path(), &entry.name, e))
-    };
-    let tol = value_tolerance(entry.dtype);
-    let mut loaded: Option<Vec<f64>> = None;
-    let sincos_fit = |v: &[f64], s: usize, (h, w): (usize, usize)| -> Option<FirstAxis> {
-        sincos::matches(v.get(s * dim..)?, h, w, dim, tol)
-    };
-
-    let (slots, grid) = match candidates.len() {
-        1 => candidates[0],
-        0 => {
-            // No square grid: only a sine-cosine table can tell a non-square one (and only one
-            // whose values are read).
-            let v = loaded.insert(table_values()?);
-            let fits: Vec<_> = match v.is_empty() {
-                true => Vec::new(),
-                false => all_explanations(rows)
-                    .into_iter()
-                    .filter(|&(s, g)| sincos_fit(v, s, g).is_some())
-                    .collect(),
-            };
-            if fits.len() == 1 {
-                slots_from = SlotsFrom::Values;
-                notes.push(format!(
-                    "grid {}x{} read from the sine-cosine values (no square grid fits {rows} rows)",
-                    fits[0].1 .0, fits[0].1 .1
-                ));
-                fits[0]
-            } else {
-                return Ok(Verdict::Skip(format!(
-                    "{rows} rows have no square-grid explanation with 0-{MAX_SLOTS} class slots (a 1-D sequence table?); pass --source-grid HxW if it is a grid"
-                )));
-            }
-        }
-        _ => {
-            let v = loaded.insert(table_values()?);
-            let fits: Vec<_> = candidates
-                .iter()
-                .copied()
-                .filter(|&(s, g)| sincos_fit(v, s, g).is_some())
-                .collect();
-            if fits.len() == 1 {
-                notes.push("slots and grid read from the sine-cosine values".into());
-                slots_from = SlotsFrom::Values;
-                fits[0]
-            } else if let Some(&c) = candidates.iter().find(|(s, _)| *s <= 2) {
-                // 0, 1 or 2 slots is what released models use (common practice); a larger
-                // count that also fits is named so the user can override.
-                let others: Vec<String> = candidates
-                    .iter()
-                    .filter(|x| **x != c)
-                    .map(|(s, (h, w))| format!("{s} slots + {h}x{w}"))
-                    .collect();
-                notes.push(format!(
-                    "took {} slot(s) + {}x{}; {rows} rows also fit {} (pass --slots to choose)",
-                    c.0,
-                    c.1 .0,
-                    c.1 .1,
-                    others.join(", ")
-                ));
-                c
-            } else {
-                return Ok(Verdict::Ambiguous(Ambiguous {
-                    name: entry.name.clone(),
-                    rows,
-                    candidates: candidates
-                        .iter()
-                        .map(|&(s, (h, w))| (s, vec![h, w]))
-                        .collect(),
-                    resolve_with: "--slots N or --source-grid HxW".into(),
-                }));
-            }
-        }
-    };
-
-    let v = match loaded {
-        Some(v) => v,
-        None => table_values()?,
-    };
-    let first_axis = sincos_fit(&v, slots, grid);
-    let kind = if first_axis.is_some() {
-        Kind::Sincos
-    } else {
-        Kind::Learned
-    };
-    if kind == Kind::Sincos && slots > 0 {
-        let class_zero = v[..slots * dim].iter().all(|x| *x == 0.0);
-        notes.push(if class_zero {
-            "class rows are zero".to_string()
-        } else {
-            "class rows are not part of the sine-cosine construction".to_string()
-        });
+        values::transpose(&v, self.dim, self.rows).map_err(|e| values::out_of_memory(path, name, e))
     }
 
-    Ok(Verdict::Table(
-        Box::new(Table {
+    /// The first axis of the sine-cosine construction when rows after `s` slots follow it.
+    fn sincos_fit(&self, v: &[f64], s: usize, (h, w): (usize, usize)) -> Option<FirstAxis> {
+        let tol = value_tolerance(self.entry.dtype);
+        sincos::matches(v.get(s * self.dim..)?, h, w, self.dim, tol)
+    }
+
+    /// The explanations among `list` whose rows follow the sine-cosine construction.
+    /// The values are kept for the next [`TableValues::get`].
+    fn sincos_fits(&mut self, list: &[Explanation]) -> Result<Vec<Explanation>> {
+        if self.loaded.is_none() {
+            self.loaded = Some(self.get()?);
+        }
+        let v = self.loaded.as_deref().unwrap_or_default();
+        if v.is_empty() {
+            return Ok(Vec::new());
+        }
+        Ok(list
+            .iter()
+            .copied()
+            .filter(|&(s, g)| self.sincos_fit(v, s, g).is_some())
+            .collect())
+    }
+}
+
+/// One explanation out of the candidates: the only one; else the one the sine-cosine values
+/// follow; else, among several, the smallest common slot count with a note.
+fn settle(
+    entry: &TensorEntry,
+    found: &Candidates,
+    values: &mut TableValues,
+    notes: &mut Vec<String>,
+) -> Result<Flow<(Explanation, SlotsFrom)>> {
+    let rows = values.rows;
+    match found.list[..] {
+        [one] => Ok(Flow::Continue((one, found.from))),
+        [] => {
+            // No square grid: only a sine-cosine table can tell a non-square one.
+            let fits = values.sincos_fits(&all_explanations(rows))?;
+            if let [(s, g)] = fits[..] {
+                notes.push(format!(
+                    "grid {}x{} read from the sine-cosine values (no square grid fits {rows} rows)",
+                    g.0, g.1
+                ));
+                return Ok(Flow::Continue(((s, g), SlotsFrom::Values)));
+            }
+            Ok(Flow::Break(Verdict::Skip(format!(
+                "{rows} rows have no square-grid explanation with 0-{MAX_SLOTS} class slots (a 1-D sequence table?); pass --source-grid HxW if it is a grid"
+            ))))
+        }
+        _ => {
+            if let [one] = values.sincos_fits(&found.list)?[..] {
+                notes.push("slots and grid read from the sine-cosine values".into());
+                return Ok(Flow::Continue((one, SlotsFrom::Values)));
+            }
+            Ok(common_slots(entry, rows, &found.list, notes).map_continue(|c| (c, found.from)))
+        }
+    }
+}
+
+/// Several explanations and no values to settle them: 0, 1 or 2 slots is what released models
+/// use (common practice); a larger count that also fits is named so the user can override.
+fn common_slots(
+    entry: &TensorEntry,
+    rows: usize,
+    list: &[Explanation],
+    notes: &mut Vec<String>,
+) -> Flow<Explanation> {
+    let Some(&c) = list.iter().find(|(s, _)| *s <= 2) else {
+        return Flow::Break(Verdict::Ambiguous(Ambiguous {
             name: entry.name.clone(),
-            dtype: entry.dtype,
-            shape: entry.shape.clone(),
-            layout,
-            slots,
-            grid: [grid.0, grid.1],
-            dim,
-            patch: None,
-            patch_source: None,
-            kind,
-            sincos_first_axis: first_axis,
-            tubelet: frames.and(tubelet),
-            slots_from,
-            frames,
-            companions: Vec::new(),
-            copy_of: None,
-            notes,
-        }),
-        warning,
-    ))
+            rows,
+            candidates: list.iter().map(|&(s, (h, w))| (s, vec![h, w])).collect(),
+            resolve_with: "--slots N or --source-grid HxW".into(),
+        }));
+    };
+    let others: Vec<String> = list
+        .iter()
+        .filter(|x| **x != c)
+        .map(|(s, (h, w))| format!("{s} slots + {h}x{w}"))
+        .collect();
+    notes.push(format!(
+        "took {} slot(s) + {}x{}; {rows} rows also fit {} (pass --slots to choose)",
+        c.0,
+        c.1 .0,
+        c.1 .1,
+        others.join(", ")
+    ));
+    Flow::Continue(c)
 }
 
 /// How a 4-D `[1, a, b, c]` tensor reads.
