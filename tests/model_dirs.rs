@@ -1370,25 +1370,7 @@ fn a_windowed_model_without_masks_gets_its_new_input_size_recorded() {
         ],
         warns: &[],
     };
-    let preprocessor = Config {
-        file: "preprocessor_config.json",
-        template: PRE_HEIGHT_WIDTH,
-        slots: vec![
-            ("@CROP@", "224", "384"),
-            ("@HEIGHT@", "224", "384"),
-            ("@WIDTH@", "224", "384"),
-        ],
-        changes: vec![
-            (vec!["crop_size"], json!(224), json!(384)),
-            (
-                vec!["size"],
-                json!({"height": 224, "width": 224}),
-                json!({"height": 384, "width": 384}),
-            ),
-        ],
-        warns: &[],
-    };
-    let configs = [config, preprocessor];
+    let configs = [config, pre_height_width()];
     for c in &configs {
         c.write(&dir);
     }

@@ -23,19 +23,30 @@ fn channels_last(v: &[f64], [d, c, p, q]: [usize; 4]) -> Vec<f64> {
     out
 }
 
-/// Resize one kernel file with `args` and return the kernel's new values.
-fn resized_kernel(shape: &[usize], stored: &[f64], dim: usize, args: &[&str]) -> Vec<f64> {
+/// A kernel to resize, stored under `name` beside a 4x4-grid position table of its width.
+struct Kernel<'a> {
+    name: &'a str,
+    dtype: Dtype,
+    shape: &'a [usize],
+    values: &'a [f64],
+    dim: usize,
+}
+
+/// Resize `kernel`'s file with `args`: the command's output and the kernel's new values (none
+/// when nothing was written).
+fn resize_kernel(kernel: &Kernel, args: &[&str]) -> (std::process::Output, Option<Vec<f64>>) {
     let dir = tempfile::tempdir().unwrap();
+    let dim = kernel.dim;
     let file = write(
         dir.path(),
         "in.safetensors",
         &[
-            floats("patch_embed.proj.weight", Dtype::F64, shape, stored),
+            floats(kernel.name, kernel.dtype, kernel.shape, kernel.values),
             floats(
-                "pos_embed",
-                Dtype::F64,
+                "pos_embedding",
+                kernel.dtype,
                 &[1, 17, dim],
-                &noise(17 * dim, 3, 0.1),
+                &noise(17 * dim, 5, 0.1),
             ),
         ],
         None,
@@ -44,8 +55,24 @@ fn resized_kernel(shape: &[usize], stored: &[f64], dim: usize, args: &[&str]) ->
     let mut all = vec!["resize", s(&file), "-o", s(&out)];
     all.extend_from_slice(args);
     let o = posgrid(&all);
+    let got = out
+        .exists()
+        .then(|| values(&Checkpoint::open(&out).unwrap(), kernel.name));
+    (o, got)
+}
+
+/// A convolution kernel `[D, C, p, q]` or `[p, q, C, D]` in F64, resized with `args`.
+fn resized_kernel(shape: &[usize], stored: &[f64], dim: usize, args: &[&str]) -> Vec<f64> {
+    let kernel = Kernel {
+        name: "patch_embed.proj.weight",
+        dtype: Dtype::F64,
+        shape,
+        values: stored,
+        dim,
+    };
+    let (o, got) = resize_kernel(&kernel, args);
     assert_eq!(code(&o), 0, "{}", stderr(&o));
-    values(&Checkpoint::open(&out).unwrap(), "patch_embed.proj.weight")
+    got.unwrap()
 }
 
 /// A non-square new patch: the channels-last kernel holds the same values as the channels-first
@@ -144,42 +171,18 @@ fn resize_linear(
     extra: &[&str],
 ) -> (std::process::Output, Option<Vec<f64>>) {
     let (w, shape) = golden.get(case, "w");
-    let dim = side(case, "dim");
-    let dir = tempfile::tempdir().unwrap();
-    let file = write(
-        dir.path(),
-        "in.safetensors",
-        &[
-            floats(embedding_name(case), Dtype::F32, &shape, &w),
-            floats(
-                "pos_embedding",
-                Dtype::F32,
-                &[1, 17, dim],
-                &noise(17 * dim, 5, 0.1),
-            ),
-        ],
-        None,
-    );
-    let out = dir.path().join("out.safetensors");
     let image = (4 * side(case, "to")).to_string();
     let new_patch = side(case, "to").to_string();
-    let mut args = vec![
-        "resize",
-        s(&file),
-        "-o",
-        s(&out),
-        "--image",
-        &image,
-        "--new-patch",
-        &new_patch,
-        "--json",
-    ];
+    let mut args = vec!["--image", &image, "--new-patch", &new_patch, "--json"];
     args.extend_from_slice(extra);
-    let o = posgrid(&args);
-    let got = out
-        .exists()
-        .then(|| values(&Checkpoint::open(&out).unwrap(), embedding_name(case)));
-    (o, got)
+    let kernel = Kernel {
+        name: embedding_name(case),
+        dtype: Dtype::F32,
+        shape: &shape,
+        values: &w,
+        dim: side(case, "dim"),
+    };
+    resize_kernel(&kernel, &args)
 }
 
 fn worst_relative(got: &[f64], expected: &[f64]) -> f64 {
@@ -332,41 +335,87 @@ fn square_linear_embeddings_are_read_by_their_name() {
             .map(|n| v[(n % rows) * cols + n / rows])
             .collect()
     };
-    let dir = tempfile::tempdir().unwrap();
-    let file = write(
-        dir.path(),
-        "in.safetensors",
-        &[
-            floats(
-                "patch_embed/proj/kernel",
-                Dtype::F32,
-                &[inputs, dim],
-                &transpose(&w, dim, inputs),
-            ),
-            floats(
-                "pos_embedding",
-                Dtype::F32,
-                &[1, 17, dim],
-                &noise(17 * dim, 5, 0.1),
-            ),
-        ],
-        None,
-    );
-    let out = dir.path().join("out.safetensors");
-    let o = posgrid(&[
-        "resize",
-        s(&file),
-        "-o",
-        s(&out),
-        "--image",
-        "24",
-        "--new-patch",
-        "6",
-        "--patch-order",
-        "yxc",
-    ]);
+    let stored = transpose(&w, dim, inputs);
+    let kernel = Kernel {
+        name: "patch_embed/proj/kernel",
+        dtype: Dtype::F32,
+        shape: &[inputs, dim],
+        values: &stored,
+        dim,
+    };
+    let args = ["--image", "24", "--new-patch", "6", "--patch-order", "yxc"];
+    let (o, got) = resize_kernel(&kernel, &args);
     assert_eq!(code(&o), 0, "{}", stderr(&o));
-    let got = values(&Checkpoint::open(&out).unwrap(), "patch_embed/proj/kernel");
+    let got = got.unwrap();
     let err = worst_relative(&got, &transpose(&expected, dim, 3 * 36));
     assert!(err <= 1e-6, "as a kernel: {err:.1e}");
+}
+
+/// A patch kernel [D, 1, 14, 14] resized to 16x16 equals numpy's pseudo-inverse result
+/// (fixtures/golden/patch_cases.safetensors, written by fixtures/golden/make_patch_golden.py:
+/// pinv(B^T) w with B from torch's bilinear interpolate of each basis image), in both kernel
+/// layouts, with the report saying so; the grid follows --image / P (64 / 16 = 4: the table is
+/// at its target).
+#[test]
+fn new_patch_kernels_match_the_pseudo_inverse_of_numpy() {
+    let path = std::path::Path::new(env!("CARGO_MANIFEST_DIR"))
+        .join("fixtures/golden/patch_cases.safetensors");
+    let golden = Checkpoint::open(&path).unwrap();
+    let w = values(&golden, "bilinear_14_16.w");
+    let expected = values(&golden, "bilinear_14_16.w_new");
+    let count = w.len() / (14 * 14);
+    let args = ["--image", "64", "--new-patch", "16", "--json"];
+    for channels_last_layout in [false, true] {
+        let (shape, stored) = if channels_last_layout {
+            (
+                vec![14, 14, 1, count],
+                channels_last(&w, [count, 1, 14, 14]),
+            )
+        } else {
+            (vec![count, 1, 14, 14], w.clone())
+        };
+        let kernel = Kernel {
+            name: "patch_embed.proj.weight",
+            dtype: Dtype::F64,
+            shape: &shape,
+            values: &stored,
+            dim: count,
+        };
+        let (o, got) = resize_kernel(&kernel, &args);
+        assert_eq!(code(&o), 0, "{}", stderr(&o));
+        let report: serde_json::Value = serde_json::from_slice(&o.stdout).unwrap();
+        let tables = report["tables"].as_array().unwrap();
+        assert!(tables
+            .iter()
+            .any(|t| t["kind"] == "patch_kernel" && t["method"] == "pseudo-inverse"));
+        assert!(
+            report["already_at_target"]
+                .as_array()
+                .unwrap()
+                .iter()
+                .any(|n| n == "pos_embedding"),
+            "{report}"
+        );
+        let mut got = got.unwrap();
+        if channels_last_layout {
+            got = channels_first(&got, [count, 1, 16, 16]);
+        }
+        let err = worst_relative(&got, &expected);
+        assert!(
+            err <= 1e-8,
+            "channels last {channels_last_layout}: {err:.1e}"
+        );
+    }
+}
+
+/// `[p, q, C, D]` → `[D, C, p, q]`.
+fn channels_first(v: &[f64], [d, c, p, q]: [usize; 4]) -> Vec<f64> {
+    let mut out = vec![0.0; v.len()];
+    for (n, value) in out.iter_mut().enumerate() {
+        let (dd, rest) = (n / (c * p * q), n % (c * p * q));
+        let (cc, rest) = (rest / (p * q), rest % (p * q));
+        let (y, x) = (rest / q, rest % q);
+        *value = v[((y * q + x) * c + cc) * d + dd];
+    }
+    out
 }
