@@ -55,15 +55,7 @@ pub fn plan(
 ) -> Result<Option<WindowChange>> {
     let path = ckpt.source_path();
     let to = target_window(path, table, request)?;
-    if let (true, Some(m)) = (to != table.window, table.unusable_masks.first()) {
-        return Err(Error::refused(
-            path,
-            format!(
-                "\"{}\" cannot change window: the mask \"{}\" of its block cannot be rebuilt ({}), and kept as it is it would not fit the new window",
-                table.name, m.name, m.reason
-            ),
-        ));
-    }
+    refuse_unusable_masks(path, table, to)?;
     let masks = table
         .masks
         .iter()
@@ -76,43 +68,8 @@ pub fn plan(
     if to == table.window && !masks_change {
         return Ok(None);
     }
-    let target = format!("window {}x{}", to[0], to[1]);
-    let too_large = || crate::kinds::too_large(path, &table.name, &target);
-    let (from_side, to_side) = (
-        offsets_side(table.window).ok_or_else(too_large)?,
-        offsets_side(to).ok_or_else(too_large)?,
-    );
-    let geometric = request.relative == Relative::Geometric && to != table.window;
-    if geometric && (from_side[0] != from_side[1] || to_side[0] != to_side[1]) {
-        return Err(Error::usage_in(
-            path,
-            format!(
-                "{}: --relative geometric needs square windows ({}x{} -> {}x{})",
-                table.name, table.window[0], table.window[1], to[0], to[1]
-            ),
-        ));
-    }
-    resample::validate(
-        (from_side[0], from_side[1]),
-        (to_side[0], to_side[1]),
-        &request.options,
-    )
-    .map_err(|e| Error::usage_in(path, format!("{}: {e}", table.name)))?;
-    let class = if table.class_rows { CLASS_ROWS } else { 0 };
-    let rows = to_side[0]
-        .checked_mul(to_side[1])
-        .and_then(|n| n.checked_add(class))
-        .ok_or_else(too_large)?;
-    let index_shape = match table.index {
-        Some(_) => {
-            let n = to[0]
-                .checked_mul(to[1])
-                .and_then(|n| n.checked_add(usize::from(table.class_rows)))
-                .ok_or_else(too_large)?;
-            Some(vec![n, n])
-        }
-        None => None,
-    };
+    let (from_side, to_side, geometric) = offset_sides(path, table, to, request)?;
+    let (rows, index_shape) = new_sizes(path, table, to, to_side)?;
     refuse_narrow_index(ckpt, table, rows, to)?;
     let needed = needed_bytes(table, rows, &index_shape, &masks);
     if needed > request.memory_limit {
@@ -145,6 +102,85 @@ pub fn plan(
         masks,
         needed_bytes: needed,
     }))
+}
+
+/// A mask of the block that cannot be rebuilt would not fit a new window if kept: refused.
+fn refuse_unusable_masks(
+    path: &std::path::Path,
+    table: &WindowTable,
+    to: [usize; 2],
+) -> Result<()> {
+    match (to != table.window, table.unusable_masks.first()) {
+        (true, Some(m)) => Err(Error::refused(
+            path,
+            format!(
+                "\"{}\" cannot change window: the mask \"{}\" of its block cannot be rebuilt ({}), and kept as it is it would not fit the new window",
+                table.name, m.name, m.reason
+            ),
+        )),
+        _ => Ok(()),
+    }
+}
+
+/// The offset grids' sides before and after, checked for the method: whether the geometric
+/// method applies (square windows only), and the kernel options fit the sizes.
+fn offset_sides(
+    path: &std::path::Path,
+    table: &WindowTable,
+    to: [usize; 2],
+    request: &Request,
+) -> Result<([usize; 2], [usize; 2], bool)> {
+    let target = format!("window {}x{}", to[0], to[1]);
+    let too_large = || crate::kinds::too_large(path, &table.name, &target);
+    let (from_side, to_side) = (
+        offsets_side(table.window).ok_or_else(too_large)?,
+        offsets_side(to).ok_or_else(too_large)?,
+    );
+    let geometric = request.relative == Relative::Geometric && to != table.window;
+    if geometric && (from_side[0] != from_side[1] || to_side[0] != to_side[1]) {
+        return Err(Error::usage_in(
+            path,
+            format!(
+                "{}: --relative geometric needs square windows ({}x{} -> {}x{})",
+                table.name, table.window[0], table.window[1], to[0], to[1]
+            ),
+        ));
+    }
+    resample::validate(
+        (from_side[0], from_side[1]),
+        (to_side[0], to_side[1]),
+        &request.options,
+    )
+    .map_err(|e| Error::usage_in(path, format!("{}: {e}", table.name)))?;
+    Ok((from_side, to_side, geometric))
+}
+
+/// The new table's row count (offsets, then the class rows) and the index buffer's new shape,
+/// checked against overflow.
+fn new_sizes(
+    path: &std::path::Path,
+    table: &WindowTable,
+    to: [usize; 2],
+    to_side: [usize; 2],
+) -> Result<(usize, Option<Vec<usize>>)> {
+    let target = format!("window {}x{}", to[0], to[1]);
+    let too_large = || crate::kinds::too_large(path, &table.name, &target);
+    let class = if table.class_rows { CLASS_ROWS } else { 0 };
+    let rows = to_side[0]
+        .checked_mul(to_side[1])
+        .and_then(|n| n.checked_add(class))
+        .ok_or_else(too_large)?;
+    let index_shape = match table.index {
+        Some(_) => {
+            let n = to[0]
+                .checked_mul(to[1])
+                .and_then(|n| n.checked_add(usize::from(table.class_rows)))
+                .ok_or_else(too_large)?;
+            Some(vec![n, n])
+        }
+        None => None,
+    };
+    Ok((rows, index_shape))
 }
 
 /// The new window: the target grid for a table that spans it, `--window` for the others.
