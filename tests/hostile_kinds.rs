@@ -1193,4 +1193,24 @@ fn a_file_of_twenty_thousand_window_tables_is_read_and_resized_in_seconds() {
         "resize took {:?}",
         start.elapsed()
     );
+    // Each table alone is tiny, but the job keeps every result and its records (about 11 KB a
+    // table, measured) until the output is written: 20 000 of them do not fit 64 MiB, and the
+    // guard says so before computing anything (before, it was exceeded fourfold, unchecked).
+    std::fs::remove_file(input.out()).unwrap();
+    let r = input.resize(&["--grid", "8", "--window", "3", "--memory-limit", "64M"]);
+    input.assert_refused(&r, 6, &["20000 tensors", "--memory-limit"]);
+}
+
+/// Two tables that each fit the guard but together do not: the results of both are held until
+/// the output is written, so the sum is what the guard checks (each alone passes it).
+#[test]
+fn tables_that_fit_the_guard_one_by_one_but_not_together_are_refused() {
+    let table = |name: &str| floats(name, Dtype::F32, &[1, 257, 64], &vec![0.25; 257 * 64]);
+    let both = Input::new(&[table("a.pos_embed"), table("b.pos_embed")]);
+    let one = Input::new(&[table("a.pos_embed")]);
+    let args = ["--grid", "128", "--memory-limit", "24M", "--quiet"];
+    let r = one.resize(&args);
+    assert_eq!(r.code, 0, "one table alone fits: {}", r.stderr);
+    let r = both.resize(&args);
+    both.assert_refused(&r, 6, &["2 tensors", "--memory-limit"]);
 }

@@ -348,6 +348,22 @@ pub trait Change: std::fmt::Debug + Send + Sync {
     fn provenance(&self) -> serde_json::Value;
     /// Bytes the change needs (what the memory guard checked).
     fn needed_bytes(&self) -> u64;
+    /// Bytes its results hold until the output is written: the new tensors (at most 8 bytes a
+    /// value) and the images before and after kept for the report (f32).
+    fn held_bytes(&self) -> u64 {
+        let values = |shape: &[usize]| {
+            shape
+                .iter()
+                .fold(1u64, |n, &side| n.saturating_mul(side as u64))
+        };
+        let new = self
+            .rewrites()
+            .iter()
+            .map(|(_, shape)| values(shape))
+            .fold(0u64, u64::saturating_add);
+        let images = values(self.shape()).saturating_add(new).saturating_mul(4);
+        new.saturating_mul(8).saturating_add(images)
+    }
     /// The model's patch grid before and after, and its patch size, when this change moves
     /// the patch grid itself (what configuration files record as the input size).
     fn grid_change(&self) -> Option<([usize; 2], [usize; 2], usize)> {
