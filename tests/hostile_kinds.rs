@@ -1214,3 +1214,17 @@ fn tables_that_fit_the_guard_one_by_one_but_not_together_are_refused() {
     let r = both.resize(&args);
     both.assert_refused(&r, 6, &["2 tensors", "--memory-limit"]);
 }
+
+/// A window the geometric method's bisection cannot reach (7 → 1: no ratio in the shrinking
+/// bracket places the outermost offset) is refused, by a dry run as by a resize. Since the
+/// check moved to planning, it comes before any table's values are read or computed.
+#[test]
+fn an_unreachable_geometric_window_is_refused_by_a_dry_run() {
+    let input = Input::new(&window_block("b", 7, 3, 1));
+    let args = ["--grid", "16", "--window", "1", "--relative", "geometric"];
+    let dry: Vec<&str> = args.iter().copied().chain(["--dry-run"]).collect();
+    for run in [&args[..], &dry[..]] {
+        let r = input.resize(run);
+        input.assert_refused(&r, 6, &["outermost offset"]);
+    }
+}

@@ -146,6 +146,12 @@ fn offset_sides(
             ),
         ));
     }
+    if geometric {
+        // A window the bisection cannot reach is refused here, as a dry run would be, not
+        // when the values are computed.
+        geometric::ratio(from_side[0], to_side[0])
+            .map_err(|e| Error::refused(path, format!("resizing \"{}\": {e}", table.name)))?;
+    }
     resample::validate(
         (from_side[0], from_side[1]),
         (to_side[0], to_side[1]),
