@@ -370,3 +370,59 @@ fn square_linear_embeddings_are_read_by_their_name() {
     let err = worst_relative(&got, &transpose(&expected, dim, 3 * 36));
     assert!(err <= 1e-6, "as a kernel: {err:.1e}");
 }
+
+/// A hostile checkpoint run through `resize` with `args`: the outcome, whether OUT appeared,
+/// and the input checked unchanged.
+struct Attempt {
+    output: std::process::Output,
+    wrote: bool,
+}
+
+fn attempt(tensors: &[common::T], args: &[&str]) -> Attempt {
+    let dir = tempfile::tempdir().unwrap();
+    let file = write(dir.path(), "in.safetensors", tensors, None);
+    let before = std::fs::read(&file).unwrap();
+    let out = dir.path().join("out.safetensors");
+    let mut all = vec!["resize", s(&file), "-o", s(&out)];
+    all.extend_from_slice(args);
+    let output = posgrid(&all);
+    assert_eq!(std::fs::read(&file).unwrap(), before, "the input changed");
+    Attempt {
+        wrote: out.exists(),
+        output,
+    }
+}
+
+impl Attempt {
+    /// Refused with exit `code`, the file and every one of `words` named, nothing written.
+    fn refused(&self, code: i32, words: &[&str]) {
+        let err = stderr(&self.output);
+        assert_eq!(common::code(&self.output), code, "{err}");
+        assert!(err.contains("in.safetensors"), "{err}");
+        for w in words {
+            assert!(err.contains(w), "{w}: {err}");
+        }
+        assert!(!self.wrote, "an output was written");
+    }
+}
+
+fn small_table(dim: usize) -> common::T {
+    floats(
+        "pos_embed",
+        Dtype::F32,
+        &[1, 17, dim],
+        &noise(17 * dim, 5, 0.1),
+    )
+}
+
+/// A matrix named as a patch embedding with no inputs at all (`[D, 0]`, a shape the format
+/// allows): refused as no kernel to resize (exit 4), naming it, never a crash.
+#[test]
+fn an_embedding_without_inputs_is_refused_not_a_crash() {
+    let empty = floats("patch_embed.proj.weight", Dtype::F32, &[16, 0], &[]);
+    attempt(
+        &[empty, small_table(16)],
+        &["--image", "40", "--new-patch", "10"],
+    )
+    .refused(4, &["patch_embed.proj.weight", "0 inputs"]);
+}

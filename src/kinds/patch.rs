@@ -255,9 +255,9 @@ fn linear_reading(
 /// images, common practice) when `inputs / 3` is a square.
 fn channels_and_side(inputs: usize, patch: Option<usize>) -> Option<(usize, usize)> {
     let channels_for = |p: usize| {
-        let area = p.checked_mul(p)?;
-        (area > 0 && inputs % area == 0 && (1..=64).contains(&(inputs / area)))
-            .then_some((inputs / area, p))
+        let area = p.checked_mul(p).filter(|&a| a > 0)?;
+        let channels = inputs / area;
+        (inputs % area == 0 && (1..=64).contains(&channels)).then_some((channels, p))
     };
     match patch {
         Some(p) => channels_for(p),
