@@ -426,3 +426,21 @@ fn an_embedding_without_inputs_is_refused_not_a_crash() {
     )
     .refused(4, &["patch_embed.proj.weight", "0 inputs"]);
 }
+
+/// A convolution kernel with zero-pixel patches (`[D, C, 0, 0]`, `[0, 0, C, D]` or a tubelet
+/// kernel `[D, C, t, 0, 0]`) sets no patch size: sizing by image is refused as an unknown patch
+/// (exit 4), never a division by zero; a new patch size finds no kernel to resize (exit 4).
+#[test]
+fn kernels_with_empty_patches_set_no_patch_size() {
+    for shape in [&[16, 3, 0, 0][..], &[0, 0, 3, 16], &[16, 3, 2, 0, 0]] {
+        let kernel = floats("patch_embed.proj.weight", Dtype::F32, shape, &[]);
+        attempt(&[kernel, small_table(16)], &["--image", "40"])
+            .refused(4, &["pos_embed", "patch size is unknown"]);
+        let kernel = floats("patch_embed.proj.weight", Dtype::F32, shape, &[]);
+        attempt(
+            &[kernel, small_table(16)],
+            &["--image", "40", "--new-patch", "10"],
+        )
+        .refused(4, &["--new-patch 10x10", "no patch-projection kernel"]);
+    }
+}

@@ -116,8 +116,8 @@ fn reading(e: &TensorEntry) -> Option<PatchKernel> {
         return None;
     }
     let (layout, dim, channels, patch) = match e.shape[..] {
-        [d, c, p, q] if c <= 64 && p == q => (KernelLayout::ChannelsFirst, d, c, [p, q]),
-        [p, q, c, d] if c <= 64 && p == q => (KernelLayout::ChannelsLast, d, c, [p, q]),
+        [d, c, p, q] if c <= 64 && p == q && p > 0 => (KernelLayout::ChannelsFirst, d, c, [p, q]),
+        [p, q, c, d] if c <= 64 && p == q && p > 0 => (KernelLayout::ChannelsLast, d, c, [p, q]),
         _ => return None,
     };
     Some(PatchKernel {
