@@ -444,3 +444,104 @@ fn kernels_with_empty_patches_set_no_patch_size() {
         .refused(4, &["--new-patch 10x10", "no patch-projection kernel"]);
     }
 }
+
+/// A smooth linear embedding `[D, 3·p·p]` flattened channel by channel (each channel's patch a
+/// low-frequency cosine, as trained kernels are smooth; common practice), times `scale`.
+fn smooth_embedding(dim: usize, p: usize, scale: f64) -> Vec<f64> {
+    let mut v = Vec::with_capacity(dim * 3 * p * p);
+    for d in 0..dim {
+        for c in 0..3 {
+            let (fy, fx) = (0.1 + 0.05 * (d % 4) as f64, 0.1 + 0.04 * c as f64);
+            for y in 0..p {
+                for x in 0..p {
+                    v.push(scale * ((fy * y as f64).cos() + (fx * x as f64 + d as f64).sin()));
+                }
+            }
+        }
+    }
+    v
+}
+
+/// NaN or infinity in a patch kernel cannot go through the pseudo-inverse, so `--allow-nonfinite`
+/// cannot help: refused with exit 6 naming the values (not sent looking for a flattening order
+/// the values were never going to tell), for a linear embedding with or without `--patch-order`
+/// and for a convolution kernel with `--allow-nonfinite`.
+#[test]
+fn non_finite_patch_kernels_are_refused_for_what_they_hold() {
+    for bad in [f64::NAN, f64::INFINITY] {
+        let mut linear = smooth_embedding(16, 8, 0.1);
+        linear[5] = bad;
+        let embedding = || floats("patch_embed.proj.weight", Dtype::F32, &[16, 192], &linear);
+        for extra in [&[][..], &["--patch-order", "cyx"], &["--allow-nonfinite"]] {
+            let mut args = vec!["--image", "40", "--new-patch", "10"];
+            args.extend_from_slice(extra);
+            let run = attempt(&[embedding(), small_table(16)], &args);
+            run.refused(6, &["patch_embed.proj.weight", "NaN or infinite"]);
+            assert!(!stderr(&run.output).contains("--patch-order"), "{extra:?}");
+            assert!(
+                !stderr(&run.output).contains("--allow-nonfinite"),
+                "{extra:?}"
+            );
+        }
+        let conv = floats(
+            "patch_embed.proj.weight",
+            Dtype::F32,
+            &[16, 3, 8, 8],
+            &linear,
+        );
+        let args = ["--image", "40", "--new-patch", "10", "--allow-nonfinite"];
+        let run = attempt(&[conv, small_table(16)], &args);
+        run.refused(6, &["patch_embed.proj.weight", "NaN or infinite"]);
+        assert!(!stderr(&run.output).contains("--allow-nonfinite"));
+    }
+}
+
+/// Values that do not tell the flattening order say why in words, never with a NaN roughness:
+/// flat patches (a constant matrix). Values near the largest F64 still tell it (the roughness
+/// is a ratio, computed without overflow), and a one-pixel patch (`[D, 3]`) is the same in
+/// both orders, so it needs no flag.
+#[test]
+fn the_flattening_order_is_read_from_any_finite_values() {
+    let flat = floats(
+        "patch_embed.proj.weight",
+        Dtype::F32,
+        &[16, 192],
+        &[0.5; 16 * 192],
+    );
+    let run = attempt(
+        &[flat, small_table(16)],
+        &["--image", "40", "--new-patch", "10"],
+    );
+    run.refused(4, &["patch_embed.proj.weight", "flat", "--patch-order"]);
+    assert!(
+        !stderr(&run.output).contains("NaN"),
+        "{}",
+        stderr(&run.output)
+    );
+
+    let huge = smooth_embedding(16, 8, 1e300);
+    let huge = floats("patch_embed.proj.weight", Dtype::F64, &[16, 192], &huge);
+    let run = attempt(
+        &[huge, small_table(16)],
+        &["--image", "64", "--new-patch", "16", "--dry-run"],
+    );
+    assert_eq!(code(&run.output), 0, "{}", stderr(&run.output));
+    assert!(
+        stderr(&run.output).contains("channel by channel (cyx)"),
+        "{}",
+        stderr(&run.output)
+    );
+
+    let pixel = floats(
+        "patch_embed.proj.weight",
+        Dtype::F32,
+        &[16, 3],
+        &noise(48, 9, 1.0),
+    );
+    let run = attempt(
+        &[pixel, small_table(16)],
+        &["--image", "8", "--new-patch", "2"],
+    );
+    assert_eq!(code(&run.output), 0, "{}", stderr(&run.output));
+    assert!(run.wrote);
+}

@@ -70,7 +70,7 @@ pub struct PatchKernel {
     pub channels: usize,
     pub dim: usize,
     /// How a linear embedding flattens a patch, and what said so (`flag`, `values`, or
-    /// `one_channel` where both orders are the same).
+    /// `one_channel` and `one_pixel` where both orders are the same).
     #[serde(skip_serializing_if = "Option::is_none")]
     pub flatten: Option<Flatten>,
     #[serde(skip_serializing_if = "Option::is_none")]
@@ -224,6 +224,8 @@ fn linear_reading(
     };
     let (order, from) = if channels == 1 {
         (Flatten::Cyx, "one_channel")
+    } else if side == 1 {
+        (Flatten::Cyx, "one_pixel")
     } else if let Some(order) = hints.patch_order {
         (order, "flag")
     } else if e.byte_len() > MAX_ORDER_READ {
@@ -232,7 +234,9 @@ fn linear_reading(
             MAX_ORDER_READ >> 20
         )));
     } else {
-        let v = values::decode_f64(e.dtype, &source.bytes(e)?).map_err(|err| {
+        let raw = source.bytes(e)?;
+        refuse_nonfinite(source.source_path(), &e.name, e.dtype, &raw)?;
+        let v = values::decode_f64(e.dtype, &raw).map_err(|err| {
             values::value_error(source.source_path(), "reading a patch embedding", err)
         })?;
         match flatten_order(&kernel, &v) {
@@ -287,7 +291,9 @@ fn flatten_order(
         };
         let canonical = rearrange(v, reading.axes(), CANONICAL, reading.sizes(kernel.patch))
             .map_err(|e| e.to_string())?;
-        rough[at] = roughness(&canonical, kernel.patch);
+        rough[at] = roughness(&canonical, kernel.patch).ok_or(
+            "its patches are flat (each holds one value), so the values do not tell the flattening order",
+        )?;
     }
     let [cyx, yxc] = rough;
     let clear = |a: f64, b: f64| a <= 0.5 && a <= 0.5 * b;
@@ -306,27 +312,46 @@ fn flatten_order(
 }
 
 /// Mean squared difference of neighbouring pixels over twice the variance, over every `p×q`
-/// patch of `v` (each patch's mean removed); NaN when every patch is flat.
-fn roughness(v: &[f64], [p, q]: [usize; 2]) -> f64 {
+/// patch of finite values `v` (each patch's mean removed); `None` where it is undefined (every
+/// patch flat, or a patch of one pixel).
+fn roughness(v: &[f64], [p, q]: [usize; 2]) -> Option<f64> {
+    // A ratio: values scaled to at most 1 give the same one, and their squares cannot overflow.
+    let largest = v.iter().fold(0.0f64, |m, x| m.max(x.abs()));
     let (mut diffs, mut pairs, mut spread) = (0.0, 0usize, 0.0);
     for patch in v.chunks_exact(p * q) {
-        let mean = patch.iter().sum::<f64>() / patch.len() as f64;
-        spread += patch.iter().map(|x| (x - mean).powi(2)).sum::<f64>();
+        let at = |y: usize, x: usize| patch[y * q + x] / largest;
+        let mean = patch.iter().map(|x| x / largest).sum::<f64>() / patch.len() as f64;
+        spread += patch
+            .iter()
+            .map(|x| (x / largest - mean).powi(2))
+            .sum::<f64>();
         for y in 0..p {
             for x in 0..q {
-                let here = patch[y * q + x];
                 if x + 1 < q {
-                    diffs += (patch[y * q + x + 1] - here).powi(2);
+                    diffs += (at(y, x + 1) - at(y, x)).powi(2);
                     pairs += 1;
                 }
                 if y + 1 < p {
-                    diffs += (patch[(y + 1) * q + x] - here).powi(2);
+                    diffs += (at(y + 1, x) - at(y, x)).powi(2);
                     pairs += 1;
                 }
             }
         }
     }
-    (diffs / pairs as f64) / (2.0 * spread / v.len() as f64)
+    let rough = (diffs / pairs as f64) / (2.0 * spread / v.len() as f64);
+    rough.is_finite().then_some(rough)
+}
+
+/// NaN or infinity cannot go through the pseudo-inverse (`--allow-nonfinite` cannot help):
+/// a kernel holding them is refused for what it holds.
+fn refuse_nonfinite(path: &std::path::Path, name: &str, dtype: Dtype, raw: &[u8]) -> Result<()> {
+    match values::count_nonfinite(dtype, raw) {
+        0 => Ok(()),
+        bad => Err(Error::refused(
+            path,
+            format!("\"{name}\" holds {bad} NaN or infinite value(s); a patch kernel cannot be resized through them"),
+        )),
+    }
 }
 
 /// One kernel to resize.
@@ -475,9 +500,7 @@ impl Change for PatchChange {
         let k = &self.kernel;
         let entry = ckpt.find(&k.name).expect("planned kernels exist");
         let raw = ckpt.bytes(entry)?;
-        if !allow_nonfinite {
-            super::refuse_nonfinite(path, &k.name, entry.dtype, &raw, "")?;
-        }
+        refuse_nonfinite(path, &k.name, entry.dtype, &raw)?;
         let what = format!("resizing \"{}\"", k.name);
         let oom = |e| values::out_of_memory(path, &what, e);
         let v = values::decode_f64(entry.dtype, &raw)
