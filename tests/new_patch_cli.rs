@@ -545,3 +545,34 @@ fn the_flattening_order_is_read_from_any_finite_values() {
     assert_eq!(code(&run.output), 0, "{}", stderr(&run.output));
     assert!(run.wrote);
 }
+
+/// `--tensor` naming the tables but not the patch kernel would write tables for the new patch
+/// beside a kernel that still projects old-size patches: refused (exit 4) naming the kernel,
+/// as a new patch size without any kernel is. Naming the kernel too resizes both.
+#[test]
+fn a_new_patch_that_leaves_out_its_kernel_is_refused() {
+    let kernel = || {
+        floats(
+            "patch_embed.proj.weight",
+            Dtype::F32,
+            &[16, 3, 8, 8],
+            &smooth_embedding(16, 8, 0.1),
+        )
+    };
+    let args = [
+        "--image",
+        "50",
+        "--new-patch",
+        "10",
+        "--tensor",
+        "pos_embed",
+    ];
+    attempt(&[kernel(), small_table(16)], &args).refused(
+        4,
+        &["--new-patch 10x10", "patch_embed.proj.weight", "--tensor"],
+    );
+    let both = [&args[..], &["--tensor", "patch_embed.proj.weight"]].concat();
+    let run = attempt(&[kernel(), small_table(16)], &both);
+    assert_eq!(code(&run.output), 0, "{}", stderr(&run.output));
+    assert!(run.wrote);
+}
