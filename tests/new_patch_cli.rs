@@ -576,3 +576,56 @@ fn a_new_patch_that_leaves_out_its_kernel_is_refused() {
     assert_eq!(code(&run.output), 0, "{}", stderr(&run.output));
     assert!(run.wrote);
 }
+
+/// `--patch-order` where it decides nothing — no new patch size (scan, or resize without
+/// `--new-patch`), or a convolution kernel whose shape gives its layout — is a warning saying
+/// it is ignored, as `--window` on a file without windows is: a typo in a script should not
+/// pass silently.
+#[test]
+fn a_patch_order_that_decides_nothing_is_a_warning() {
+    let dir = tempfile::tempdir().unwrap();
+    let conv = floats(
+        "patch_embed.proj.weight",
+        Dtype::F32,
+        &[16, 3, 8, 8],
+        &smooth_embedding(16, 8, 0.1),
+    );
+    let file = write(dir.path(), "in.safetensors", &[conv, small_table(16)], None);
+    let out = dir.path().join("out.safetensors");
+    for args in [
+        &["scan", s(&file), "--patch-order", "yxc"][..],
+        &[
+            "resize",
+            s(&file),
+            "-o",
+            s(&out),
+            "--grid",
+            "5",
+            "--patch-order",
+            "yxc",
+            "--dry-run",
+        ],
+        &[
+            "resize",
+            s(&file),
+            "-o",
+            s(&out),
+            "--image",
+            "40",
+            "--new-patch",
+            "10",
+            "--patch-order",
+            "yxc",
+            "--dry-run",
+        ],
+    ] {
+        let o = posgrid(args);
+        assert_eq!(code(&o), 0, "{}", stderr(&o));
+        let warning = stderr(&o)
+            .lines()
+            .find(|l| l.contains("--patch-order"))
+            .map(str::to_string);
+        let warning = warning.unwrap_or_else(|| panic!("{args:?}: no warning"));
+        assert!(warning.contains("ignored"), "{warning}");
+    }
+}

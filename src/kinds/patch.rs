@@ -81,6 +81,11 @@ pub struct PatchKernel {
 /// the absolute tables took their patch size from, else the best-named one.
 pub(super) fn find(source: &dyn TensorSource, hints: &Hints, found: &mut Discovery) -> Result<()> {
     if hints.new_patch.is_none() {
+        if hints.patch_order.is_some() {
+            found.warnings.push(
+                "--patch-order: linear patch embeddings are read only for a new patch size (resize --new-patch); ignored".into(),
+            );
+        }
         return Ok(());
     }
     let mut names: Vec<String> = found
@@ -97,6 +102,12 @@ pub(super) fn find(source: &dyn TensorSource, hints: &Hints, found: &mut Discove
     names.dedup();
     if names.is_empty() {
         return find_linear(source, hints, found);
+    }
+    if hints.patch_order.is_some() {
+        found.warnings.push(format!(
+            "--patch-order: \"{}\" is a convolution kernel, whose shape gives its layout; ignored",
+            names[0]
+        ));
     }
     for name in names {
         let entry = source.find(&name).expect("checked above");
