@@ -168,9 +168,9 @@ pub struct Request {
     /// Input size (height, width) before and after.
     pub old_image: (usize, usize),
     pub new_image: (usize, usize),
-    /// Patch side before and after.
-    pub old_patch: usize,
-    pub new_patch: usize,
+    /// Patch (height, width) before and after.
+    pub old_patch: (usize, usize),
+    pub new_patch: (usize, usize),
     /// The attention windows that change: a `window_size` equal to an old one takes its new one.
     pub windows: Vec<WindowMove>,
 }
@@ -638,9 +638,8 @@ fn target_of(size: &RecordedSize, kind: FileKind, req: &Request) -> Option<Targe
     let (new_h, new_w) = req.new_image;
     let short = |(h, w): (usize, usize)| h.min(w);
     match (kind, size.key, size.value) {
-        (_, SizeKey::PatchSize, _) => {
-            (req.old_patch != req.new_patch).then_some(Target::Pair(req.new_patch, req.new_patch))
-        }
+        (_, SizeKey::PatchSize, _) => (req.old_patch != req.new_patch)
+            .then_some(Target::Pair(req.new_patch.0, req.new_patch.1)),
         // Only a window that moves: stages whose window is already the new one keep theirs.
         (_, SizeKey::WindowSize, value) => {
             let old = value.pair()?;

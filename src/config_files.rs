@@ -77,29 +77,25 @@ fn moved(old: [usize; 2], new: [usize; 2]) -> WindowMove {
     }
 }
 
-/// What the configuration files are updated for: the input size and patch from `grid` (the
-/// first change that moves the patch grid, else the configuration's own record taken to the
-/// target), the windows of the tables that follow `--window`.
-fn request_for(
-    grid: Option<([usize; 2], [usize; 2], usize)>,
-    plan: &Plan,
-    new_patch: Option<(usize, usize)>,
-) -> Request {
-    let windows = window_moves(plan);
-    let Some((from, to, patch)) = grid else {
-        return Request {
-            windows,
-            ..Request::default()
-        };
-    };
-    // A new patch size changes the recorded patch and, with the grid, the input size.
-    let (new_p, new_q) = new_patch.unwrap_or((patch, patch));
+/// What the configuration files are updated for: the input size from `grid` (the first change
+/// that moves the patch grid, else the configuration's own record taken to the target), the
+/// patch from the kernel the plan resizes (also where the grid stays), the windows of the
+/// tables that follow `--window`.
+fn request_for(grid: Option<([usize; 2], [usize; 2], usize)>, plan: &Plan) -> Request {
+    let patches = plan.changes.iter().find_map(|c| c.patch_change());
+    let (old_patch, new_patch) = patches.map_or_else(Default::default, |(from, to)| {
+        ((from[0], from[1]), (to[0], to[1]))
+    });
+    let (old_image, new_image) = grid.map_or_else(Default::default, |(from, to, patch)| {
+        let [p, q] = patches.map_or([patch, patch], |(_, to)| to);
+        ((from[0] * patch, from[1] * patch), (to[0] * p, to[1] * q))
+    });
     Request {
-        old_image: (from[0] * patch, from[1] * patch),
-        new_image: (to[0] * new_p, to[1] * new_q),
-        old_patch: patch,
-        new_patch: new_p,
-        windows,
+        old_image,
+        new_image,
+        old_patch,
+        new_patch,
+        windows: window_moves(plan),
     }
 }
 
@@ -113,8 +109,8 @@ pub fn updates(
 ) -> Result<Updates> {
     let mut out = Updates::default();
     let grid = model_sizes(plan).or_else(|| grid_from_config(files, plan, job));
-    let request = request_for(grid, plan, job.new_patch);
-    if grid.is_none() && request.windows.is_empty() {
+    let request = request_for(grid, plan);
+    if request == Request::default() {
         return Ok(out);
     }
     for path in files

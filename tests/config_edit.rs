@@ -26,8 +26,8 @@ fn request(old_image: (usize, usize), new_image: (usize, usize), patch: (usize, 
     Request {
         old_image,
         new_image,
-        old_patch: patch.0,
-        new_patch: patch.1,
+        old_patch: (patch.0, patch.0),
+        new_patch: (patch.1, patch.1),
         windows: Vec::new(),
     }
 }
@@ -36,8 +36,8 @@ fn request(old_image: (usize, usize), new_image: (usize, usize), patch: (usize, 
 const TO_384: Request = Request {
     old_image: (224, 224),
     new_image: (384, 384),
-    old_patch: 16,
-    new_patch: 16,
+    old_patch: (16, 16),
+    new_patch: (16, 16),
     windows: Vec::new(),
 };
 

@@ -1476,3 +1476,74 @@ fn per_axis_windows_and_the_grid_update_a_nested_vision_section() {
         assert_eq!((t.shape(), t.data()), (u.shape(), u.data()), "{name}");
     }
 }
+
+// ---------------------------------------------------------------------------------------------
+// A new patch size
+
+/// A non-square new patch (`--new-patch 16x14`, 448 px: a 28x32 grid) goes into a recorded
+/// `[h, w]` patch size whole; a single number cannot hold it, so the file stays as it is with a
+/// warning naming the key (as for a non-square window) — never a patch_size still saying 16.
+#[test]
+fn a_non_square_new_patch_goes_into_a_pair_or_a_warning() {
+    for (recorded, patch, image) in [
+        ("[16, 16]", json!([16, 14]), json!(448)),
+        ("16", json!(16), json!(224)),
+    ] {
+        let root = tempfile::tempdir().unwrap();
+        let dir = model_dir(root.path());
+        write_vit(&dir, "model.safetensors");
+        let text = format!("{{\"image_size\": 224, \"patch_size\": {recorded}}}\n");
+        std::fs::write(dir.join("config.json"), &text).unwrap();
+        let out = root.path().join("out");
+        let report = resize_json(&dir, &out, &["--image", "448", "--new-patch", "16x14"]);
+        let written: Value =
+            serde_json::from_str(&std::fs::read_to_string(out.join("config.json")).unwrap())
+                .unwrap();
+        assert_eq!(written["patch_size"], patch, "{recorded}: {report}");
+        assert_eq!(written["image_size"], image, "{recorded}: {report}");
+        if recorded == "16" {
+            let warned = report["warnings"].as_array().unwrap().iter().any(|w| {
+                let w = w.as_str().unwrap();
+                w.starts_with("config.json:") && w.contains("patch_size") && w.contains("16x14")
+            });
+            assert!(warned, "{report}");
+        }
+    }
+}
+
+/// A 14-pixel backbone moved to 16-pixel patches at the same token count (224 px → 256 px, a
+/// 16x16 grid both times): the position table is already at its grid and stays, the kernel
+/// changes, and config.json's patch_size follows the kernel even where the file records no
+/// input size to take the grid from.
+#[test]
+fn the_patch_size_follows_the_kernel_when_the_grid_stays() {
+    let root = tempfile::tempdir().unwrap();
+    let dir = model_dir(root.path());
+    let tensors = vec![
+        floats(
+            "pos_embed",
+            Dtype::F32,
+            &[1, 257, D],
+            &smooth_table(1, 16, 16, D, 4),
+        ),
+        floats(
+            "patch_embed.proj.weight",
+            Dtype::F32,
+            &[D, 3, 14, 14],
+            &noise(D * 3 * 196, 5, 0.1),
+        ),
+    ];
+    write(&dir, "model.safetensors", &tensors, None);
+    std::fs::write(dir.join("config.json"), "{\"patch_size\": 14}\n").unwrap();
+    let out = root.path().join("out");
+    let report = resize_json(&dir, &out, &["--image", "256", "--new-patch", "16"]);
+    assert_eq!(
+        report["config_changes"],
+        json!([{"file": "config.json", "path": ["patch_size"], "old": 14, "new": 16}]),
+        "{report}"
+    );
+    assert_eq!(
+        std::fs::read_to_string(out.join("config.json")).unwrap(),
+        "{\"patch_size\": 16}\n"
+    );
+}

@@ -576,6 +576,10 @@ impl Change for PatchChange {
         })
     }
 
+    fn patch_change(&self) -> Option<([usize; 2], [usize; 2])> {
+        Some((self.kernel.patch, self.to))
+    }
+
     fn needed_bytes(&self) -> u64 {
         let k = &self.kernel;
         (k.dim as u64 * k.channels as u64 * (self.to[0] * self.to[1]) as u64).saturating_mul(24)
