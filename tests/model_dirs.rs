@@ -1547,3 +1547,51 @@ fn the_patch_size_follows_the_kernel_when_the_grid_stays() {
         "{\"patch_size\": 16}\n"
     );
 }
+
+/// A windowed model whose checkpoint holds no grid takes its input size from config.json
+/// (224 px of 4-pixel patches). A target that cannot apply to that record — an image the
+/// patch does not divide, a scale that leaves no patch, a grid whose input size overflows (it
+/// wrapped to image_size 0) or passes the largest size a configuration may record — is a usage
+/// error naming the problem (exit 2), nothing written, where it used to keep the old size (or
+/// write 0) without a word; `--keep-config` leaves the file alone and resizes the weights.
+#[test]
+fn a_target_the_recorded_input_size_cannot_take_is_refused() {
+    for (args, words) in [
+        (
+            &["--image", "383"][..],
+            &["config.json", "383", "4-pixel"][..],
+        ),
+        (&["--scale", "1/1000"], &["config.json", "scale"]),
+        (
+            &["--grid", "4611686018427387904"],
+            &["4611686018427387904", "--keep-config"],
+        ),
+        (&["--grid", "300000"], &["1200000", "--keep-config"]),
+    ] {
+        let root = tempfile::tempdir().unwrap();
+        let dir = model_dir(root.path());
+        write(&dir, "model.safetensors", &windowed_tensors(), None);
+        std::fs::write(
+            dir.join("config.json"),
+            WINDOWED_CONFIG.replace("@WINDOW@", "7"),
+        )
+        .unwrap();
+        let before = snapshot(&dir);
+        let out = root.path().join("out");
+        let all = [args, &["--window", "12"]].concat();
+        let o = resize(&dir, &out, &all);
+        assert_eq!(code(&o), 2, "{args:?}: {}", stderr(&o));
+        for w in words {
+            assert!(stderr(&o).contains(w), "{w}: {}", stderr(&o));
+        }
+        assert!(!out.exists(), "{args:?}");
+        assert_eq!(snapshot(&dir), before);
+        let kept = [&all[..], &["--keep-config"]].concat();
+        let o = resize(&dir, &out, &kept);
+        assert_eq!(code(&o), 0, "{args:?}: {}", stderr(&o));
+        assert_eq!(
+            std::fs::read(out.join("config.json")).unwrap(),
+            before["config.json"]
+        );
+    }
+}
