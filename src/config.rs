@@ -149,7 +149,12 @@ enum Slots {
 #[derive(Debug, Clone, PartialEq, Eq, Serialize)]
 pub struct Skipped {
     pub path: Vec<String>,
+    pub key: SizeKey,
     pub reason: String,
+    /// A number that is no size (a window of 0 stands for global attention in some
+    /// configurations: a setting of its own).
+    #[serde(skip)]
+    pub number: bool,
 }
 
 /// Every size a configuration records, in file order.
@@ -332,6 +337,31 @@ pub fn window_disagreements(recorded: &Recorded, windows: &[WindowMove]) -> Vec<
         .collect()
 }
 
+/// Warnings for the size keys posgrid does not read as sizes (a string, a list of per-stage
+/// windows, an object of other fields) where `req` changes what they record: [`update`] leaves
+/// them as they are, so they may still record the old size. A number that is no window (0 for
+/// global attention) is a setting of its own and not warned about.
+pub fn unread_warnings(recorded: &Recorded, req: &Request) -> Vec<String> {
+    recorded
+        .skipped
+        .iter()
+        .filter(|s| match s.key {
+            SizeKey::PatchSize => req.old_patch != req.new_patch,
+            SizeKey::WindowSize => !req.windows.is_empty() && !s.number,
+            SizeKey::ImageSize | SizeKey::Size | SizeKey::CropSize => {
+                req.old_image != req.new_image
+            }
+        })
+        .map(|s| {
+            format!(
+                "{} {}; left as it is, it may still record the old size",
+                dotted(&s.path),
+                s.reason
+            )
+        })
+        .collect()
+}
+
 /// Warnings for a preprocessing crop that [`update`] sets to the new input size while the resize
 /// before it stays (it did not record the old input size) and is now smaller than the crop on a
 /// side: images resized that way cannot be cropped. Each names both keys and values and suggests
@@ -502,7 +532,9 @@ fn read_size(
         Err(ConfigError::BadSize { detail, .. }) if key == SizeKey::WindowSize => {
             out.skipped.push(Skipped {
                 path: path.to_vec(),
+                key,
                 reason: detail,
+                number: value.is_number(),
             });
             return Ok(());
         }
@@ -518,7 +550,9 @@ fn read_size(
         }),
         None => out.skipped.push(Skipped {
             path: path.to_vec(),
+            key,
             reason: format!("holds {}, not a size posgrid reads", describe(&value)),
+            number: false,
         }),
     }
     Ok(())

@@ -193,7 +193,15 @@ pub fn updates(
         found.extend(config::window_disagreements(&recorded, &request.windows));
         out.warnings
             .extend(found.into_iter().map(|w| format!("{name}: {w}")));
-        if keep || recorded.sizes.is_empty() {
+        if keep {
+            continue;
+        }
+        out.warnings.extend(
+            config::unread_warnings(&recorded, &request)
+                .into_iter()
+                .map(|w| format!("{name}: {w}")),
+        );
+        if recorded.sizes.is_empty() {
             continue;
         }
         match config::update(text, &request) {

@@ -15,7 +15,7 @@
 use std::path::Path;
 
 use posgrid::config::{
-    crop_fit_warnings, disagreements, recorded_sizes, text_from_bytes, update,
+    crop_fit_warnings, disagreements, recorded_sizes, text_from_bytes, unread_warnings, update,
     window_disagreements, Change, ConfigError, FileKind, Request, SizeKey, SizeValue, WindowMove,
     MAX_DEPTH, MAX_TEXT_BYTES,
 };
@@ -760,4 +760,38 @@ proptest! {
             prop_assert!(serde_json::from_str::<Value>(&output).is_ok());
         }
     }
+}
+
+/// A size key posgrid does not read as a size (a string, a list of per-stage windows, an
+/// object of other fields) stays as it is; where the request changes what it records, a
+/// warning names it, since it may still record the old size (it used to stay without a word).
+/// A window written as the number 0 stands for global attention: a setting, not warned about.
+#[test]
+fn size_keys_that_are_not_read_are_warned_about_when_their_size_changes() {
+    let text = r#"{"image_size": "224", "patch_size": "16", "window_size": [7, 7, 7, 7], "vision_config": {"window_size": 0}}"#;
+    let recorded = recorded_sizes(text).unwrap();
+    let grows = Request {
+        old_patch: (16, 16),
+        new_patch: (14, 14),
+        windows: vec![WindowMove {
+            old: (7, 7),
+            new: (12, 12),
+        }],
+        ..TO_384
+    };
+    let warnings = unread_warnings(&recorded, &grows);
+    assert_eq!(warnings.len(), 3, "{warnings:?}");
+    for (warning, key) in warnings
+        .iter()
+        .zip(["image_size", "patch_size", "window_size"])
+    {
+        assert!(warning.starts_with(key), "{warning}");
+        assert!(warning.contains("left as it is"), "{warning}");
+    }
+    assert!(warnings[0].contains("a string"), "{warnings:?}");
+    // Nothing changes: nothing to warn about.
+    assert!(unread_warnings(&recorded, &Request::default()).is_empty());
+    // Only the input size changes: only image_size.
+    let only_image = unread_warnings(&recorded, &TO_384);
+    assert_eq!(only_image.len(), 1, "{only_image:?}");
 }
