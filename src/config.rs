@@ -17,6 +17,7 @@
 //! whole text is first validated as JSON with repeated keys refused (a reader that keeps the last
 //! of two keys would see another value than the one rewritten).
 
+use std::collections::{HashMap, HashSet};
 use std::fmt;
 use std::ops::Range;
 
@@ -245,9 +246,14 @@ fn record(doc: &Document) -> Result<Recorded, ConfigError> {
 pub fn update(text: &str, changes: &Request) -> Result<(String, Vec<Change>), ConfigError> {
     let doc = Document::parse(text)?;
     let recorded = record(&doc)?;
+    let moves = moves_by_old(&changes.windows);
     let mut planned = Vec::new();
     for size in &recorded.sizes {
-        if let Some(target) = target_of(size, recorded.kind, changes) {
+        let target = match size.key {
+            SizeKey::WindowSize => window_target(size, &moves),
+            _ => target_of(size, recorded.kind, changes),
+        };
+        if let Some(target) = target {
             let writes = writes_for(size, target)?;
             if !writes.is_empty() {
                 planned.push((size, writes));
@@ -316,15 +322,12 @@ pub fn window_disagreements(recorded: &Recorded, windows: &[WindowMove]) -> Vec<
     if windows.len() > NAMED {
         olds.push(format!("{} more", windows.len() - NAMED));
     }
+    let known: HashSet<(usize, usize)> = windows.iter().flat_map(|m| [m.old, m.new]).collect();
     recorded
         .sizes
         .iter()
         .filter(|s| s.key == SizeKey::WindowSize)
-        .filter(|s| {
-            s.value
-                .pair()
-                .is_some_and(|p| !windows.iter().any(|m| m.old == p || m.new == p))
-        })
+        .filter(|s| s.value.pair().is_some_and(|p| !known.contains(&p)))
         .map(|s| {
             format!(
                 "{} records window {}, but the checkpoint's windowed tables have window {} (resized to {}); left as it is",
@@ -674,12 +677,8 @@ fn target_of(size: &RecordedSize, kind: FileKind, req: &Request) -> Option<Targe
     match (kind, size.key, size.value) {
         (_, SizeKey::PatchSize, _) => (req.old_patch != req.new_patch)
             .then_some(Target::Pair(req.new_patch.0, req.new_patch.1)),
-        // Only a window that moves: stages whose window is already the new one keep theirs.
-        (_, SizeKey::WindowSize, value) => {
-            let old = value.pair()?;
-            let moved = req.windows.iter().find(|m| m.old == old)?;
-            Some(Target::Pair(moved.new.0, moved.new.1))
-        }
+        // Windows follow the windows that move ([`window_target`]).
+        (_, SizeKey::WindowSize, _) => None,
         (FileKind::Model, _, _) => {
             (req.old_image != req.new_image).then_some(Target::Pair(new_h, new_w))
         }
@@ -690,6 +689,27 @@ fn target_of(size: &RecordedSize, kind: FileKind, req: &Request) -> Option<Targe
             (value.pair() == Some(req.old_image)).then_some(Target::Pair(new_h, new_w))
         }
     }
+}
+
+/// A window and the window it moves to.
+type Moves = HashMap<(usize, usize), (usize, usize)>;
+
+/// The windows a request moves, by old window (the first move of each), for lookups in
+/// constant time: a hostile checkpoint may move thousands of windows and a hostile
+/// configuration hold thousands of window keys.
+fn moves_by_old(windows: &[WindowMove]) -> Moves {
+    let mut moves = Moves::new();
+    for m in windows {
+        moves.entry(m.old).or_insert(m.new);
+    }
+    moves
+}
+
+/// Only a window that moves takes a new value: stages whose window is already the new one
+/// keep theirs.
+fn window_target(size: &RecordedSize, moves: &Moves) -> Option<Target> {
+    let (h, w) = moves.get(&size.value.pair()?)?;
+    Some(Target::Pair(*h, *w))
 }
 
 /// A number written over the span of the number it replaces.

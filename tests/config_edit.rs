@@ -795,3 +795,40 @@ fn size_keys_that_are_not_read_are_warned_about_when_their_size_changes() {
     let only_image = unread_warnings(&recorded, &TO_384);
     assert_eq!(only_image.len(), 1, "{only_image:?}");
 }
+
+/// A hostile pair of inputs — a checkpoint whose blocks move 40 000 different windows and a
+/// 15 MB configuration of 300 000 vision sections, each with a window_size — is rewritten and
+/// compared in time linear in both (each key looked up once, not against every window): it
+/// took about ten seconds on the development machine, and takes about one now (mostly reading
+/// the text); the bound leaves room for a loaded machine.
+#[test]
+fn many_windows_against_many_window_keys_stay_linear() {
+    let windows: Vec<WindowMove> = (0..40_000)
+        .map(|n| WindowMove {
+            old: (2 + n / 150, 2 + n % 150),
+            new: (12, 12),
+        })
+        .collect();
+    let req = Request {
+        windows,
+        ..Request::default()
+    };
+    // Windows of 300 rows and more: none of them moves, so every lookup misses.
+    let sections: Vec<String> = (0..300_000)
+        .map(|n| {
+            format!(
+                "\"s{n}_vision_config\": {{\"window_size\": [{}, 7]}}",
+                300 + n % 97
+            )
+        })
+        .collect();
+    let text = format!("{{{}}}", sections.join(", "));
+    let start = std::time::Instant::now();
+    let recorded = recorded_sizes(&text).unwrap();
+    let (output, changes) = update(&text, &req).unwrap();
+    let warnings = window_disagreements(&recorded, &req.windows);
+    let took = start.elapsed();
+    assert!(changes.is_empty() && output == text);
+    assert_eq!(warnings.len(), 300_000);
+    assert!(took < std::time::Duration::from_secs(4), "{took:?}");
+}
