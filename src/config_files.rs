@@ -162,69 +162,102 @@ pub fn updates(
             .file_name()
             .map(|n| n.to_string_lossy().into_owned())
             .unwrap_or_default();
-        let Some(bytes) = read_capped(path)? else {
+        let file = update_file(path, grid, &request, keep)?;
+        out.warnings.extend(bounded(&name, file.warnings));
+        out.changes
+            .extend(file.changes.into_iter().map(|c| ConfigChange {
+                file: name.clone(),
+                path: c.path,
+                old: c.old,
+                new: c.new,
+            }));
+        out.edits
+            .extend(file.text.map(|t| (path.clone(), t.into_bytes())));
+    }
+    Ok(out)
+}
+
+/// Warnings of one file listed at most: a hostile configuration can hold hundreds of
+/// thousands of keys that disagree with the checkpoint.
+const MAX_FILE_WARNINGS: usize = 8;
+
+/// `warnings` of the file `name`, prefixed with it, the first [`MAX_FILE_WARNINGS`] and a count
+/// of the rest.
+fn bounded(name: &str, warnings: Vec<String>) -> Vec<String> {
+    let more = warnings.len().saturating_sub(MAX_FILE_WARNINGS);
+    let mut out: Vec<String> = warnings
+        .into_iter()
+        .take(MAX_FILE_WARNINGS)
+        .map(|w| format!("{name}: {w}"))
+        .collect();
+    if more > 0 {
+        out.push(format!("{name}: {more} more warnings like these left out"));
+    }
+    out
+}
+
+/// What one configuration file becomes: its new text (`None`: copied as it is), the values
+/// changed, and the warnings (without the file's name).
+#[derive(Default)]
+struct FileUpdate {
+    text: Option<String>,
+    changes: Vec<config::Change>,
+    warnings: Vec<String>,
+}
+
+/// Read one configuration file and update it for `request` (only the warnings with `keep`).
+/// Files that cannot be read as configurations are copied as they are, with a warning.
+fn update_file(
+    path: &Path,
+    grid: Option<GridSizes>,
+    request: &Request,
+    keep: bool,
+) -> Result<FileUpdate> {
+    let mut out = FileUpdate::default();
+    let Some(bytes) = read_capped(path)? else {
+        out.warnings.push(format!(
+            "over {} MiB, not read as a configuration; copied as it is",
+            config::MAX_TEXT_BYTES >> 20
+        ));
+        return Ok(out);
+    };
+    let read =
+        config::text_from_bytes(&bytes).and_then(|text| Ok((text, config::recorded_sizes(text)?)));
+    let (text, recorded) = match read {
+        Ok(read) => read,
+        Err(e) => {
             out.warnings.push(format!(
-                "{name}: over {} MiB, not read as a configuration; copied as it is",
-                config::MAX_TEXT_BYTES >> 20
+                "not read as a configuration ({e}); copied as it is"
             ));
-            continue;
-        };
-        let text = match config::text_from_bytes(&bytes) {
-            Ok(t) => t,
-            Err(e) => {
-                out.warnings.push(format!(
-                    "{name}: not read as a configuration ({e}); copied as it is"
-                ));
-                continue;
-            }
-        };
-        let recorded = match config::recorded_sizes(text) {
-            Ok(r) => r,
-            Err(e) => {
-                out.warnings.push(format!(
-                    "{name}: not read as a configuration ({e}); copied as it is"
-                ));
-                continue;
-            }
-        };
-        let mut found = grid.map_or_else(Vec::new, |(from, _, patch)| {
-            config::disagreements(&recorded, (from[0], from[1]), patch)
-        });
-        found.extend(config::window_disagreements(&recorded, &request.windows));
+            return Ok(out);
+        }
+    };
+    if let Some((from, _, patch)) = grid {
+        let grid = (from[0], from[1]);
         out.warnings
-            .extend(found.into_iter().map(|w| format!("{name}: {w}")));
-        if keep {
-            continue;
+            .extend(config::disagreements(&recorded, grid, patch));
+    }
+    out.warnings
+        .extend(config::window_disagreements(&recorded, &request.windows));
+    if keep {
+        return Ok(out);
+    }
+    out.warnings
+        .extend(config::unread_warnings(&recorded, request));
+    if recorded.sizes.is_empty() {
+        return Ok(out);
+    }
+    match config::update(text, request) {
+        Ok((new_text, changes)) if !changes.is_empty() => {
+            out.warnings
+                .extend(config::crop_fit_warnings(&recorded, request));
+            out.text = Some(new_text);
+            out.changes = changes;
         }
-        out.warnings.extend(
-            config::unread_warnings(&recorded, &request)
-                .into_iter()
-                .map(|w| format!("{name}: {w}")),
-        );
-        if recorded.sizes.is_empty() {
-            continue;
-        }
-        match config::update(text, &request) {
-            Ok((new_text, changes)) if !changes.is_empty() => {
-                out.warnings.extend(
-                    config::crop_fit_warnings(&recorded, &request)
-                        .into_iter()
-                        .map(|w| format!("{name}: {w}")),
-                );
-                out.changes
-                    .extend(changes.into_iter().map(|c| ConfigChange {
-                        file: name.clone(),
-                        path: c.path,
-                        old: c.old,
-                        new: c.new,
-                    }));
-                out.edits.push((path.clone(), new_text.into_bytes()));
-            }
-            Ok(_) => {}
-            Err(e) => out
-                .warnings
-                .push(format!("{name}: not updated ({e}); copied as it is")),
-        }
+        Ok(_) => {}
+        Err(e) => out
+            .warnings
+            .push(format!("not updated ({e}); copied as it is")),
     }
     Ok(out)
 }

@@ -1595,3 +1595,33 @@ fn a_target_the_recorded_input_size_cannot_take_is_refused() {
         );
     }
 }
+
+/// A configuration of a thousand vision sections, each recording a window the checkpoint does
+/// not have, gives a few warnings and a count of the rest, not a thousand lines (a 16 MB file
+/// gave 300 000).
+#[test]
+fn a_configuration_full_of_disagreements_gives_a_bounded_list_of_warnings() {
+    let root = tempfile::tempdir().unwrap();
+    let dir = model_dir(root.path());
+    write(&dir, "model.safetensors", &windowed_tensors(), None);
+    let sections: Vec<String> = (0..1000)
+        .map(|n| format!("\"s{n}_vision_config\": {{\"window_size\": 9}}"))
+        .collect();
+    let text = format!("{{\"window_size\": 7, {}}}\n", sections.join(", "));
+    std::fs::write(dir.join("config.json"), &text).unwrap();
+    let out = root.path().join("out");
+    let report = resize_json(&dir, &out, &["--image", "224", "--window", "12"]);
+    let about_config: Vec<&str> = report["warnings"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .filter_map(Value::as_str)
+        .filter(|w| w.starts_with("config.json:"))
+        .collect();
+    assert!(about_config.len() <= 9, "{}", about_config.len());
+    assert!(
+        about_config.last().unwrap().contains("992 more"),
+        "{about_config:?}"
+    );
+    assert_eq!(report["config_changes"][0]["path"], json!(["window_size"]));
+}
