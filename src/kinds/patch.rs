@@ -176,9 +176,7 @@ fn find_linear(source: &dyn TensorSource, hints: &Hints, found: &mut Discovery) 
     Ok(())
 }
 
-/// A matrix `[a, b]` read as a linear patch embedding, or why not. Which axis is the width D:
-/// the name's suffix (`weight` is a linear layer's `[out, in]`, `kernel` a dense layer's
-/// `[in, out]`; common practice), else the one axis equal to a position table's width.
+/// A matrix read as a linear patch embedding, or why not.
 fn linear_reading(
     source: &dyn TensorSource,
     e: &TensorEntry,
@@ -186,31 +184,16 @@ fn linear_reading(
     hints: &Hints,
     warnings: &mut Vec<String>,
 ) -> Result<std::result::Result<PatchKernel, String>> {
-    let [a, b] = e.shape[..] else {
-        return Ok(Err("not a matrix".into()));
+    let layout = match linear_layout(e, widths) {
+        Ok(layout) => layout,
+        Err(why) => return Ok(Err(why)),
     };
-    let fits = |d: usize| widths.is_empty() || widths.contains(&d);
-    let lower = e.name.to_ascii_lowercase();
-    let layout = if lower.ends_with("weight") {
-        KernelLayout::LinearOutIn
-    } else if lower.ends_with("kernel") {
-        KernelLayout::LinearInOut
-    } else {
-        match (!widths.is_empty() && fits(a), !widths.is_empty() && fits(b)) {
-            (true, false) => KernelLayout::LinearOutIn,
-            (false, true) => KernelLayout::LinearInOut,
-            _ => {
-                return Ok(Err(format!(
-                    "which axis of [{a}, {b}] is the embedding width is unclear"
-                )))
-            }
-        }
+    let (dim, inputs) = match (layout, &e.shape[..]) {
+        (KernelLayout::LinearInOut, &[a, b]) => (b, a),
+        (_, &[a, b]) => (a, b),
+        _ => return Ok(Err("not a matrix".into())),
     };
-    let (dim, inputs) = match layout {
-        KernelLayout::LinearInOut => (b, a),
-        _ => (a, b),
-    };
-    if !fits(dim) {
+    if !widths.is_empty() && !widths.contains(&dim) {
         return Ok(Err(format!(
             "its width {dim} is not the position tables' ({widths:?})"
         )));
@@ -221,7 +204,7 @@ fn linear_reading(
             None => format!("{inputs} inputs are not 3·p·p; pass --patch P to read C·P·P"),
         }));
     };
-    let mut kernel = PatchKernel {
+    let kernel = PatchKernel {
         name: e.name.clone(),
         kind: Kind::PatchKernel,
         dtype: e.dtype,
@@ -233,37 +216,75 @@ fn linear_reading(
         flatten: None,
         flatten_from: None,
     };
-    let (order, from) = if channels == 1 {
-        (Flatten::Cyx, "one_channel")
-    } else if side == 1 {
-        (Flatten::Cyx, "one_pixel")
-    } else if let Some(order) = hints.patch_order {
-        (order, "flag")
-    } else if e.byte_len() > MAX_ORDER_READ {
+    Ok(
+        linear_order(source, e, &kernel, hints, warnings)?.map(|(order, from)| PatchKernel {
+            flatten: Some(order),
+            flatten_from: Some(from),
+            ..kernel
+        }),
+    )
+}
+
+/// Which axis of a matrix `[a, b]` is the width D: the name's suffix (`weight` is a linear
+/// layer's `[out, in]`, `kernel` a dense layer's `[in, out]`; common practice), else the one
+/// axis equal to a position table's width.
+fn linear_layout(e: &TensorEntry, widths: &[usize]) -> std::result::Result<KernelLayout, String> {
+    let lower = e.name.to_ascii_lowercase();
+    if lower.ends_with("weight") {
+        return Ok(KernelLayout::LinearOutIn);
+    }
+    if lower.ends_with("kernel") {
+        return Ok(KernelLayout::LinearInOut);
+    }
+    match e.shape[..] {
+        [a, b] if widths.contains(&a) && !widths.contains(&b) => Ok(KernelLayout::LinearOutIn),
+        [a, b] if widths.contains(&b) && !widths.contains(&a) => Ok(KernelLayout::LinearInOut),
+        _ => Err(format!(
+            "which axis of {:?} is the embedding width is unclear",
+            e.shape
+        )),
+    }
+}
+
+/// How `kernel` (the embedding `e`) flattens a patch and what said so, or why that is unknown:
+/// nothing to tell with one channel or one pixel, else `--patch-order`, else the values.
+fn linear_order(
+    source: &dyn TensorSource,
+    e: &TensorEntry,
+    kernel: &PatchKernel,
+    hints: &Hints,
+    warnings: &mut Vec<String>,
+) -> Result<std::result::Result<(Flatten, &'static str), String>> {
+    if kernel.channels == 1 {
+        return Ok(Ok((Flatten::Cyx, "one_channel")));
+    }
+    if kernel.patch == [1, 1] {
+        return Ok(Ok((Flatten::Cyx, "one_pixel")));
+    }
+    if let Some(order) = hints.patch_order {
+        return Ok(Ok((order, "flag")));
+    }
+    if e.byte_len() > MAX_ORDER_READ {
         return Ok(Err(format!(
             "over {} MiB, its flattening order is not read from the values; pass --patch-order cyx or yxc",
             MAX_ORDER_READ >> 20
         )));
-    } else {
-        let raw = source.bytes(e)?;
-        refuse_nonfinite(source.source_path(), &e.name, e.dtype, &raw)?;
-        let v = values::decode_f64(e.dtype, &raw).map_err(|err| {
-            values::value_error(source.source_path(), "reading a patch embedding", err)
-        })?;
-        match flatten_order(&kernel, &v) {
-            Ok((order, note)) => {
-                warnings.push(format!(
-                    "{}: read as a linear patch embedding flattened {note}; --patch-order overrides",
-                    e.name
-                ));
-                (order, "values")
-            }
-            Err(why) => return Ok(Err(format!("{why}; pass --patch-order cyx or yxc"))),
+    }
+    let raw = source.bytes(e)?;
+    refuse_nonfinite(source.source_path(), &e.name, e.dtype, &raw)?;
+    let v = values::decode_f64(e.dtype, &raw).map_err(|err| {
+        values::value_error(source.source_path(), "reading a patch embedding", err)
+    })?;
+    Ok(match flatten_order(kernel, &v) {
+        Ok((order, note)) => {
+            warnings.push(format!(
+                "{}: read as a linear patch embedding flattened {note}; --patch-order overrides",
+                e.name
+            ));
+            Ok((order, "values"))
         }
-    };
-    kernel.flatten = Some(order);
-    kernel.flatten_from = Some(from);
-    Ok(Ok(kernel))
+        Err(why) => Err(format!("{why}; pass --patch-order cyx or yxc")),
+    })
 }
 
 /// Channels C and patch side p with `inputs = C·p·p`: p from `--patch`, else C = 3 (colour
