@@ -629,3 +629,54 @@ fn a_patch_order_that_decides_nothing_is_a_warning() {
         assert!(warning.contains("ignored"), "{warning}");
     }
 }
+
+/// A kernel whose patches are larger than the resize takes (64 a side) is refused at planning,
+/// before any value is computed, naming it and its patch — with an empty kernel of enormous
+/// patches (`[0, 3, 2^32, 2^32]`, zero bytes), whose patch area does not fit 64 bits.
+#[test]
+fn kernels_of_patches_too_large_are_refused_at_planning() {
+    use posgrid::plan::{build, Relative, Request, Target, DEFAULT_MEMORY_LIMIT};
+    let dir = tempfile::tempdir().unwrap();
+    let side = 1usize << 32;
+    let header = format!(
+        r#"{{"patch_embed.proj.weight":{{"dtype":"F32","shape":[0,3,{side},{side}],"data_offsets":[0,0]}}}}"#
+    );
+    let huge = crafted(dir.path(), "huge.safetensors", &header, &[]);
+    let linear = write(
+        dir.path(),
+        "linear.safetensors",
+        &[floats(
+            "patch_embed.proj.weight",
+            Dtype::F32,
+            &[2, 3 * 100 * 100],
+            &smooth_embedding(2, 100, 0.1),
+        )],
+        None,
+    );
+    for (file, patch) in [(huge, format!("{side}x{side}")), (linear, "100x100".into())] {
+        let ckpt = Checkpoint::open(&file).unwrap();
+        let hints = posgrid::kinds::Hints {
+            new_patch: Some((10, 10)),
+            patch_order: Some(posgrid::kinds::patch::Flatten::Cyx),
+            ..Default::default()
+        };
+        let found = posgrid::kinds::discover(&ckpt, &hints).unwrap();
+        let request = Request {
+            target: Target::Image(40, 40),
+            tensors: Vec::new(),
+            options: Default::default(),
+            allow_nonfinite: false,
+            memory_limit: DEFAULT_MEMORY_LIMIT,
+            rebuild_sincos: false,
+            window: None,
+            frames: None,
+            relative: Relative::Kernel,
+            new_patch: Some((10, 10)),
+        };
+        let err = build(&ckpt, &found, &request).unwrap_err();
+        assert_eq!(err.exit_code(), 6, "{err}");
+        let message = err.to_string();
+        assert!(message.contains("patch_embed.proj.weight"), "{message}");
+        assert!(message.contains(&patch), "{message}");
+    }
+}

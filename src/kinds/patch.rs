@@ -407,14 +407,26 @@ pub fn plan(
     if [p, q] == k.patch {
         return Ok(None);
     }
-    if p > patch_kernel::MAX_PATCH_SIDE || q > patch_kernel::MAX_PATCH_SIDE {
+    let max = patch_kernel::MAX_PATCH_SIDE;
+    if p > max || q > max {
         return Err(Error::Usage(format!(
-            "--new-patch {p}x{q}: patches larger than {} pixels a side are not resized",
-            patch_kernel::MAX_PATCH_SIDE
+            "--new-patch {p}x{q}: patches larger than {max} pixels a side are not resized"
         )));
     }
+    // Checked before any arithmetic on them: an empty kernel may claim any patch.
+    if k.patch.iter().any(|&side| side > max) {
+        return Err(Error::refused(
+            ckpt.source_path(),
+            format!(
+                "\"{}\" has patches of {}x{} pixels; patches larger than {max} pixels a side are not resized",
+                k.name, k.patch[0], k.patch[1]
+            ),
+        ));
+    }
     let new_shape = k.shape_for([p, q]);
-    let needed = (k.dim as u64 * k.channels as u64 * (p * q + k.patch[0] * k.patch[1]) as u64)
+    let needed = (k.dim as u64)
+        .saturating_mul(k.channels as u64)
+        .saturating_mul((p * q + k.patch[0] * k.patch[1]) as u64)
         .saturating_mul(24);
     if needed > request.memory_limit {
         return Err(Error::refused(
