@@ -17,6 +17,7 @@
 //! whole text is first validated as JSON with repeated keys refused (a reader that keeps the last
 //! of two keys would see another value than the one rewritten).
 
+use std::collections::{HashMap, HashSet};
 use std::fmt;
 use std::ops::Range;
 
@@ -149,7 +150,12 @@ enum Slots {
 #[derive(Debug, Clone, PartialEq, Eq, Serialize)]
 pub struct Skipped {
     pub path: Vec<String>,
+    pub key: SizeKey,
     pub reason: String,
+    /// A number that is no size (a window of 0 stands for global attention in some
+    /// configurations: a setting of its own).
+    #[serde(skip)]
+    pub number: bool,
 }
 
 /// Every size a configuration records, in file order.
@@ -168,9 +174,9 @@ pub struct Request {
     /// Input size (height, width) before and after.
     pub old_image: (usize, usize),
     pub new_image: (usize, usize),
-    /// Patch side before and after.
-    pub old_patch: usize,
-    pub new_patch: usize,
+    /// Patch (height, width) before and after.
+    pub old_patch: (usize, usize),
+    pub new_patch: (usize, usize),
     /// The attention windows that change: a `window_size` equal to an old one takes its new one.
     pub windows: Vec<WindowMove>,
 }
@@ -240,9 +246,14 @@ fn record(doc: &Document) -> Result<Recorded, ConfigError> {
 pub fn update(text: &str, changes: &Request) -> Result<(String, Vec<Change>), ConfigError> {
     let doc = Document::parse(text)?;
     let recorded = record(&doc)?;
+    let moves = moves_by_old(&changes.windows);
     let mut planned = Vec::new();
     for size in &recorded.sizes {
-        if let Some(target) = target_of(size, recorded.kind, changes) {
+        let target = match size.key {
+            SizeKey::WindowSize => window_target(size, &moves),
+            _ => target_of(size, recorded.kind, changes),
+        };
+        if let Some(target) = target {
             let writes = writes_for(size, target)?;
             if !writes.is_empty() {
                 planned.push((size, writes));
@@ -311,15 +322,12 @@ pub fn window_disagreements(recorded: &Recorded, windows: &[WindowMove]) -> Vec<
     if windows.len() > NAMED {
         olds.push(format!("{} more", windows.len() - NAMED));
     }
+    let known: HashSet<(usize, usize)> = windows.iter().flat_map(|m| [m.old, m.new]).collect();
     recorded
         .sizes
         .iter()
         .filter(|s| s.key == SizeKey::WindowSize)
-        .filter(|s| {
-            s.value
-                .pair()
-                .is_some_and(|p| !windows.iter().any(|m| m.old == p || m.new == p))
-        })
+        .filter(|s| s.value.pair().is_some_and(|p| !known.contains(&p)))
         .map(|s| {
             format!(
                 "{} records window {}, but the checkpoint's windowed tables have window {} (resized to {}); left as it is",
@@ -327,6 +335,31 @@ pub fn window_disagreements(recorded: &Recorded, windows: &[WindowMove]) -> Vec<
                 s.value,
                 olds.join(", "),
                 side(first.new)
+            )
+        })
+        .collect()
+}
+
+/// Warnings for the size keys posgrid does not read as sizes (a string, a list of per-stage
+/// windows, an object of other fields) where `req` changes what they record: [`update`] leaves
+/// them as they are, so they may still record the old size. A number that is no window (0 for
+/// global attention) is a setting of its own and not warned about.
+pub fn unread_warnings(recorded: &Recorded, req: &Request) -> Vec<String> {
+    recorded
+        .skipped
+        .iter()
+        .filter(|s| match s.key {
+            SizeKey::PatchSize => req.old_patch != req.new_patch,
+            SizeKey::WindowSize => !req.windows.is_empty() && !s.number,
+            SizeKey::ImageSize | SizeKey::Size | SizeKey::CropSize => {
+                req.old_image != req.new_image
+            }
+        })
+        .map(|s| {
+            format!(
+                "{} {}; left as it is, it may still record the old size",
+                dotted(&s.path),
+                s.reason
             )
         })
         .collect()
@@ -502,7 +535,9 @@ fn read_size(
         Err(ConfigError::BadSize { detail, .. }) if key == SizeKey::WindowSize => {
             out.skipped.push(Skipped {
                 path: path.to_vec(),
+                key,
                 reason: detail,
+                number: value.is_number(),
             });
             return Ok(());
         }
@@ -518,7 +553,9 @@ fn read_size(
         }),
         None => out.skipped.push(Skipped {
             path: path.to_vec(),
+            key,
             reason: format!("holds {}, not a size posgrid reads", describe(&value)),
+            number: false,
         }),
     }
     Ok(())
@@ -638,15 +675,10 @@ fn target_of(size: &RecordedSize, kind: FileKind, req: &Request) -> Option<Targe
     let (new_h, new_w) = req.new_image;
     let short = |(h, w): (usize, usize)| h.min(w);
     match (kind, size.key, size.value) {
-        (_, SizeKey::PatchSize, _) => {
-            (req.old_patch != req.new_patch).then_some(Target::Pair(req.new_patch, req.new_patch))
-        }
-        // Only a window that moves: stages whose window is already the new one keep theirs.
-        (_, SizeKey::WindowSize, value) => {
-            let old = value.pair()?;
-            let moved = req.windows.iter().find(|m| m.old == old)?;
-            Some(Target::Pair(moved.new.0, moved.new.1))
-        }
+        (_, SizeKey::PatchSize, _) => (req.old_patch != req.new_patch)
+            .then_some(Target::Pair(req.new_patch.0, req.new_patch.1)),
+        // Windows follow the windows that move ([`window_target`]).
+        (_, SizeKey::WindowSize, _) => None,
         (FileKind::Model, _, _) => {
             (req.old_image != req.new_image).then_some(Target::Pair(new_h, new_w))
         }
@@ -657,6 +689,27 @@ fn target_of(size: &RecordedSize, kind: FileKind, req: &Request) -> Option<Targe
             (value.pair() == Some(req.old_image)).then_some(Target::Pair(new_h, new_w))
         }
     }
+}
+
+/// A window and the window it moves to.
+type Moves = HashMap<(usize, usize), (usize, usize)>;
+
+/// The windows a request moves, by old window (the first move of each), for lookups in
+/// constant time: a hostile checkpoint may move thousands of windows and a hostile
+/// configuration hold thousands of window keys.
+fn moves_by_old(windows: &[WindowMove]) -> Moves {
+    let mut moves = Moves::new();
+    for m in windows {
+        moves.entry(m.old).or_insert(m.new);
+    }
+    moves
+}
+
+/// Only a window that moves takes a new value: stages whose window is already the new one
+/// keep theirs.
+fn window_target(size: &RecordedSize, moves: &Moves) -> Option<Target> {
+    let (h, w) = moves.get(&size.value.pair()?)?;
+    Some(Target::Pair(*h, *w))
 }
 
 /// A number written over the span of the number it replaces.

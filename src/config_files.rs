@@ -9,7 +9,7 @@ use std::path::{Path, PathBuf};
 use serde::Serialize;
 
 use crate::config::{self, Request, WindowMove};
-use crate::error::Result;
+use crate::error::{Error, Result};
 use crate::plan::Plan;
 
 /// One configuration value changed, for the report.
@@ -34,7 +34,7 @@ pub struct Updates {
 /// The model's grid before and after and its patch size, from the first change that moves the
 /// patch grid itself (an absolute table, a window-relative table spanning the grid, rotary
 /// buffers).
-pub fn model_sizes(plan: &Plan) -> Option<([usize; 2], [usize; 2], usize)> {
+pub fn model_sizes(plan: &Plan) -> Option<GridSizes> {
     plan.changes.iter().find_map(|c| c.grid_change())
 }
 
@@ -77,34 +77,60 @@ fn moved(old: [usize; 2], new: [usize; 2]) -> WindowMove {
     }
 }
 
-/// What the configuration files are updated for: the input size and patch from `grid` (the
-/// first change that moves the patch grid, else the configuration's own record taken to the
-/// target), the windows of the tables that follow `--window`.
-fn request_for(
-    grid: Option<([usize; 2], [usize; 2], usize)>,
-    plan: &Plan,
-    new_patch: Option<(usize, usize)>,
-) -> Request {
-    let windows = window_moves(plan);
-    let Some((from, to, patch)) = grid else {
-        return Request {
-            windows,
-            ..Request::default()
-        };
+/// The model's grid before and after, and the patch size it is cut in (pixels).
+type GridSizes = ([usize; 2], [usize; 2], usize);
+
+/// What the configuration files are updated for: the input size from `grid` (the first change
+/// that moves the patch grid, else the configuration's own record taken to the target), the
+/// patch from the kernel the plan resizes (also where the grid stays), the windows of the
+/// tables that follow `--window`. Errors: a new input size past what a configuration records.
+fn request_for(grid: Option<GridSizes>, plan: &Plan) -> Result<Request> {
+    let patches = plan.changes.iter().find_map(|c| c.patch_change());
+    let (old_patch, new_patch) = patches.map_or_else(Default::default, |(from, to)| {
+        ((from[0], from[1]), (to[0], to[1]))
+    });
+    let (old_image, new_image) = match grid {
+        Some((from, to, patch)) => {
+            let old = (from[0].saturating_mul(patch), from[1].saturating_mul(patch));
+            (
+                old,
+                input_size(to, patches.map_or([patch, patch], |(_, to)| to))?,
+            )
+        }
+        None => Default::default(),
     };
-    // A new patch size changes the recorded patch and, with the grid, the input size.
-    let (new_p, new_q) = new_patch.unwrap_or((patch, patch));
-    Request {
-        old_image: (from[0] * patch, from[1] * patch),
-        new_image: (to[0] * new_p, to[1] * new_q),
-        old_patch: patch,
-        new_patch: new_p,
-        windows,
+    Ok(Request {
+        old_image,
+        new_image,
+        old_patch,
+        new_patch,
+        windows: window_moves(plan),
+    })
+}
+
+/// The input size (height, width) of a `grid` of `patch`-pixel patches, refused past the
+/// largest side a configuration records (posgrid would not read back what it wrote; a product
+/// past 64 bits wrapped to 0).
+fn input_size(grid: [usize; 2], patch: [usize; 2]) -> Result<(usize, usize)> {
+    let side = |g: usize, p: usize| g.checked_mul(p).filter(|&s| s <= config::MAX_SIDE);
+    match (side(grid[0], patch[0]), side(grid[1], patch[1])) {
+        (Some(h), Some(w)) => Ok((h, w)),
+        _ => Err(Error::Usage(format!(
+            "a {}x{} grid of {}x{}-pixel patches takes {}x{}-pixel images, past the {} pixels a configuration records; choose a smaller target, or leave the configuration as it is with --keep-config",
+            grid[0],
+            grid[1],
+            patch[0],
+            patch[1],
+            grid[0] as u128 * patch[0] as u128,
+            grid[1] as u128 * patch[1] as u128,
+            config::MAX_SIDE
+        ))),
     }
 }
 
 /// Update the configuration files among `files` for `plan` (none with `keep`: only the
-/// warnings of recorded sizes that disagree with the checkpoint).
+/// warnings of recorded sizes that disagree with the checkpoint). Errors: a target the
+/// recorded input size cannot take (not with `keep`, which changes nothing).
 pub fn updates(
     files: &[PathBuf],
     plan: &Plan,
@@ -112,9 +138,20 @@ pub fn updates(
     keep: bool,
 ) -> Result<Updates> {
     let mut out = Updates::default();
-    let grid = model_sizes(plan).or_else(|| grid_from_config(files, plan, job));
-    let request = request_for(grid, plan, job.new_patch);
-    if grid.is_none() && request.windows.is_empty() {
+    let grid = match model_sizes(plan) {
+        Some(sizes) => Some(sizes),
+        None => {
+            grid_from_config(files, plan, job).or_else(|e| if keep { Ok(None) } else { Err(e) })?
+        }
+    };
+    let request = match request_for(grid, plan) {
+        Err(_) if keep => Request {
+            windows: window_moves(plan),
+            ..Request::default()
+        },
+        other => other?,
+    };
+    if request == Request::default() {
         return Ok(out);
     }
     for path in files
@@ -125,61 +162,102 @@ pub fn updates(
             .file_name()
             .map(|n| n.to_string_lossy().into_owned())
             .unwrap_or_default();
-        let Some(bytes) = read_capped(path)? else {
+        let file = update_file(path, grid, &request, keep)?;
+        out.warnings.extend(bounded(&name, file.warnings));
+        out.changes
+            .extend(file.changes.into_iter().map(|c| ConfigChange {
+                file: name.clone(),
+                path: c.path,
+                old: c.old,
+                new: c.new,
+            }));
+        out.edits
+            .extend(file.text.map(|t| (path.clone(), t.into_bytes())));
+    }
+    Ok(out)
+}
+
+/// Warnings of one file listed at most: a hostile configuration can hold hundreds of
+/// thousands of keys that disagree with the checkpoint.
+const MAX_FILE_WARNINGS: usize = 8;
+
+/// `warnings` of the file `name`, prefixed with it, the first [`MAX_FILE_WARNINGS`] and a count
+/// of the rest.
+fn bounded(name: &str, warnings: Vec<String>) -> Vec<String> {
+    let more = warnings.len().saturating_sub(MAX_FILE_WARNINGS);
+    let mut out: Vec<String> = warnings
+        .into_iter()
+        .take(MAX_FILE_WARNINGS)
+        .map(|w| format!("{name}: {w}"))
+        .collect();
+    if more > 0 {
+        out.push(format!("{name}: {more} more warnings like these left out"));
+    }
+    out
+}
+
+/// What one configuration file becomes: its new text (`None`: copied as it is), the values
+/// changed, and the warnings (without the file's name).
+#[derive(Default)]
+struct FileUpdate {
+    text: Option<String>,
+    changes: Vec<config::Change>,
+    warnings: Vec<String>,
+}
+
+/// Read one configuration file and update it for `request` (only the warnings with `keep`).
+/// Files that cannot be read as configurations are copied as they are, with a warning.
+fn update_file(
+    path: &Path,
+    grid: Option<GridSizes>,
+    request: &Request,
+    keep: bool,
+) -> Result<FileUpdate> {
+    let mut out = FileUpdate::default();
+    let Some(bytes) = read_capped(path)? else {
+        out.warnings.push(format!(
+            "over {} MiB, not read as a configuration; copied as it is",
+            config::MAX_TEXT_BYTES >> 20
+        ));
+        return Ok(out);
+    };
+    let read =
+        config::text_from_bytes(&bytes).and_then(|text| Ok((text, config::recorded_sizes(text)?)));
+    let (text, recorded) = match read {
+        Ok(read) => read,
+        Err(e) => {
             out.warnings.push(format!(
-                "{name}: over {} MiB, not read as a configuration; copied as it is",
-                config::MAX_TEXT_BYTES >> 20
+                "not read as a configuration ({e}); copied as it is"
             ));
-            continue;
-        };
-        let text = match config::text_from_bytes(&bytes) {
-            Ok(t) => t,
-            Err(e) => {
-                out.warnings.push(format!(
-                    "{name}: not read as a configuration ({e}); copied as it is"
-                ));
-                continue;
-            }
-        };
-        let recorded = match config::recorded_sizes(text) {
-            Ok(r) => r,
-            Err(e) => {
-                out.warnings.push(format!(
-                    "{name}: not read as a configuration ({e}); copied as it is"
-                ));
-                continue;
-            }
-        };
-        let mut found = grid.map_or_else(Vec::new, |(from, _, patch)| {
-            config::disagreements(&recorded, (from[0], from[1]), patch)
-        });
-        found.extend(config::window_disagreements(&recorded, &request.windows));
+            return Ok(out);
+        }
+    };
+    if let Some((from, _, patch)) = grid {
+        let grid = (from[0], from[1]);
         out.warnings
-            .extend(found.into_iter().map(|w| format!("{name}: {w}")));
-        if keep || recorded.sizes.is_empty() {
-            continue;
+            .extend(config::disagreements(&recorded, grid, patch));
+    }
+    out.warnings
+        .extend(config::window_disagreements(&recorded, &request.windows));
+    if keep {
+        return Ok(out);
+    }
+    out.warnings
+        .extend(config::unread_warnings(&recorded, request));
+    if recorded.sizes.is_empty() {
+        return Ok(out);
+    }
+    match config::update(text, request) {
+        Ok((new_text, changes)) if !changes.is_empty() => {
+            out.warnings
+                .extend(config::crop_fit_warnings(&recorded, request));
+            out.text = Some(new_text);
+            out.changes = changes;
         }
-        match config::update(text, &request) {
-            Ok((new_text, changes)) if !changes.is_empty() => {
-                out.warnings.extend(
-                    config::crop_fit_warnings(&recorded, &request)
-                        .into_iter()
-                        .map(|w| format!("{name}: {w}")),
-                );
-                out.changes
-                    .extend(changes.into_iter().map(|c| ConfigChange {
-                        file: name.clone(),
-                        path: c.path,
-                        old: c.old,
-                        new: c.new,
-                    }));
-                out.edits.push((path.clone(), new_text.into_bytes()));
-            }
-            Ok(_) => {}
-            Err(e) => out
-                .warnings
-                .push(format!("{name}: not updated ({e}); copied as it is")),
-        }
+        Ok(_) => {}
+        Err(e) => out
+            .warnings
+            .push(format!("not updated ({e}); copied as it is")),
     }
     Ok(out)
 }
@@ -229,25 +307,34 @@ fn recorded_grid_and_patch(files: &[PathBuf]) -> Option<(Sides, Sides, String)> 
 /// The model's grid before and after when no tensor of `plan` holds it (a windowed model whose
 /// checkpoint stores no masks: its tables follow the window, not the grid): the grid and patch
 /// `config.json` records, taken to the request's target. `None` when nothing changes or the
-/// configuration records no square patch.
+/// configuration records no square patch; an error when the target cannot apply to the
+/// recorded grid (an image the patch does not divide, a scale that leaves no patch).
 fn grid_from_config(
     files: &[PathBuf],
     plan: &Plan,
     request: &crate::plan::Request,
-) -> Option<([usize; 2], [usize; 2], usize)> {
+) -> Result<Option<GridSizes>> {
     if plan.changes.is_empty() {
-        return None;
+        return Ok(None);
     }
-    let ((h, w), (p, q), _) = recorded_grid_and_patch(files)?;
+    let Some(((h, w), (p, q), file)) = recorded_grid_and_patch(files) else {
+        return Ok(None);
+    };
     if p != q {
-        return None;
+        return Ok(None);
     }
     let sides = request.new_patch.map_or([p, q], |(a, b)| [a, b]);
+    let recorded = "the input size it records";
     let new = request
         .target
-        .grid_for(Path::new(""), "the configuration", [h, w], Some(sides))
-        .ok()?;
-    Some(([h, w], new, p))
+        .grid_for(Path::new(&file), recorded, [h, w], Some(sides))
+        .map_err(|e| match e {
+            Error::Usage(m) => Error::Usage(format!(
+                "{m}; or leave the configuration as it is with --keep-config"
+            )),
+            other => other,
+        })?;
+    Ok(Some(([h, w], new, p)))
 }
 
 /// [`recorded_grid`] for the configuration files that go with `source` opened from `input`:

@@ -7,7 +7,7 @@ use std::path::Path;
 
 use crate::checkpoint::TensorSource;
 use crate::error::{Error, Result};
-use crate::kinds::{absolute, Change, Discovery, Table};
+use crate::kinds::{absolute, Change, Discovery, Encoding, Table};
 use crate::resample::Options;
 
 /// The grid to resample to.
@@ -249,9 +249,6 @@ pub fn build(ckpt: &dyn TensorSource, found: &Discovery, request: &Request) -> R
         if found.tables.is_empty() && encodings.is_empty() {
             return Err(Error::table(path, no_table_message(found)));
         }
-        if let Some(message) = missing_kernel(found, request) {
-            return Err(Error::table(path, message));
-        }
         found.tables.iter().collect()
     } else {
         request
@@ -261,6 +258,9 @@ pub fn build(ckpt: &dyn TensorSource, found: &Discovery, request: &Request) -> R
             .map(|name| select(ckpt, found, name))
             .collect::<Result<_>>()?
     };
+    if let Some(message) = missing_kernel(found, &encodings, request) {
+        return Err(Error::table(path, message));
+    }
     let mut plan = Plan {
         changes: Vec::new(),
         already_at_target: Vec::new(),
@@ -346,25 +346,34 @@ pub fn unused_flags(found: &Discovery, request: &Request) -> Vec<String> {
     out
 }
 
-/// A new patch size with no patch-projection kernel to resize would leave the model projecting
-/// patches of the old size onto the new grid: refused, with what was looked at.
-fn missing_kernel(found: &Discovery, request: &Request) -> Option<String> {
+/// A new patch size with no patch-projection kernel among the `selected` encodings would leave
+/// the model projecting patches of the old size onto the new grid: refused, with the kernels
+/// `--tensor` left out or else what was looked at.
+fn missing_kernel(found: &Discovery, selected: &[&Encoding], request: &Request) -> Option<String> {
     let (p, q) = request.new_patch?;
-    if found
-        .encodings
-        .iter()
-        .any(|e| e.kind() == crate::kinds::Kind::PatchKernel)
-    {
+    let is_kernel = |e: &&Encoding| e.kind() == crate::kinds::Kind::PatchKernel;
+    if selected.iter().any(is_kernel) {
         return None;
     }
     let mut message = format!("--new-patch {p}x{q}: no patch-projection kernel to resize");
+    let left_out: Vec<String> = found
+        .encodings
+        .iter()
+        .filter(is_kernel)
+        .map(|e| format!("\"{}\"", e.name()))
+        .collect();
     let looked: Vec<String> = found
         .skipped
         .iter()
         .filter(|s| s.reason.contains("patch"))
         .map(|s| format!("\"{}\" ({})", s.name, s.reason))
         .collect();
-    if looked.is_empty() {
+    if !left_out.is_empty() {
+        message.push_str(&format!(
+            "; --tensor leaves out {}: name it with --tensor too",
+            left_out.join(", ")
+        ));
+    } else if looked.is_empty() {
         message.push_str(" (none found by name and shape)");
     } else {
         message.push_str(&format!("; looked at {}", looked.join(", ")));

@@ -37,10 +37,15 @@ pub fn matching_cell(i: usize, old: usize, new: usize) -> usize {
     (((i as f64 + 0.5) * new as f64 / old as f64).floor() as usize).min(new - 1)
 }
 
+/// Work (multiply-adds) below which a table is scored on the calling thread: waking the worker
+/// threads costs tens of microseconds, about what this much work takes, and a file may hold
+/// tens of thousands of small tables.
+const PARALLEL_WORK: u64 = 1 << 18;
+
 /// Unit-length copies of every row (zero rows stay zero).
 fn normalised(g: Grid) -> Result<Vec<f32>, OutOfMemory> {
     let mut out = try_collect(g.rows.len(), g.rows.iter().copied())?;
-    out.par_chunks_mut(g.d.max(1)).for_each(|row| {
+    let to_unit = |row: &mut [f32]| {
         let norm = row
             .iter()
             .map(|v| (*v as f64) * (*v as f64))
@@ -50,7 +55,12 @@ fn normalised(g: Grid) -> Result<Vec<f32>, OutOfMemory> {
             let inv = (1.0 / norm) as f32;
             row.iter_mut().for_each(|v| *v *= inv);
         }
-    });
+    };
+    if (out.len() as u64) < PARALLEL_WORK {
+        out.chunks_mut(g.d.max(1)).for_each(to_unit);
+    } else {
+        out.par_chunks_mut(g.d.max(1)).for_each(to_unit);
+    }
     Ok(out)
 }
 
@@ -474,33 +484,39 @@ pub fn score(
     let (arows, acols) = matching_refs(&rows, &cols, bs, after);
     let (bu, au) = (normalised(before)?, normalised(after)?);
     let d = before.d;
-    // References side by side, each worker with its own pair of maps (what fidelity_bytes
-    // counts per thread).
     let refs: Vec<_> = pairs(&rows, &cols)
         .into_iter()
         .zip(pairs(&arows, &acols))
         .collect();
-    let scores: Vec<Option<f64>> = refs
-        .par_iter()
-        .map_init(
-            || -> Result<_, OutOfMemory> {
-                Ok((
-                    try_filled(bs.0 * bs.1, 0.0f32)?,
-                    try_filled(as_.0 * as_.1, 0.0f32)?,
-                ))
-            },
-            |maps, &((r, c), (ar, ac))| {
-                let (bmap, amap) = maps.as_mut().map_err(|e| *e)?;
-                if !defined_row(before, r * before.w + c) || !defined_row(after, ar * after.w + ac)
-                {
-                    return Ok(None);
-                }
-                map_into(&bu, d, &bu[(r * before.w + c) * d..][..d], bmap);
-                map_into(&au, d, &au[(ar * after.w + ac) * d..][..d], amap);
-                correlation(bmap, bs, amap, as_)
-            },
-        )
-        .collect::<Result<_, OutOfMemory>>()?;
+    let maps = || -> Result<_, OutOfMemory> {
+        Ok((
+            try_filled(bs.0 * bs.1, 0.0f32)?,
+            try_filled(as_.0 * as_.1, 0.0f32)?,
+        ))
+    };
+    let score_one = |maps: &mut Result<(Vec<f32>, Vec<f32>), OutOfMemory>,
+                     &((r, c), (ar, ac)): &((usize, usize), (usize, usize))| {
+        let (bmap, amap) = maps.as_mut().map_err(|e| *e)?;
+        if !defined_row(before, r * before.w + c) || !defined_row(after, ar * after.w + ac) {
+            return Ok(None);
+        }
+        map_into(&bu, d, &bu[(r * before.w + c) * d..][..d], bmap);
+        map_into(&au, d, &au[(ar * after.w + ac) * d..][..d], amap);
+        correlation(bmap, bs, amap, as_)
+    };
+    let scores: Vec<Option<f64>> = if work.saturating_mul(refs.len() as u64) < PARALLEL_WORK {
+        // Handing a small table to the worker threads costs more than scoring it here.
+        let mut pair = maps();
+        refs.iter()
+            .map(|r| score_one(&mut pair, r))
+            .collect::<Result<_, _>>()?
+    } else {
+        // References side by side, each worker with its own pair of maps (what
+        // fidelity_bytes counts per thread).
+        refs.par_iter()
+            .map_init(maps, score_one)
+            .collect::<Result<_, _>>()?
+    };
     Ok((Fidelity::from_scores(&scores, &rows, &cols), note))
 }
 

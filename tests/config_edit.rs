@@ -15,7 +15,7 @@
 use std::path::Path;
 
 use posgrid::config::{
-    crop_fit_warnings, disagreements, recorded_sizes, text_from_bytes, update,
+    crop_fit_warnings, disagreements, recorded_sizes, text_from_bytes, unread_warnings, update,
     window_disagreements, Change, ConfigError, FileKind, Request, SizeKey, SizeValue, WindowMove,
     MAX_DEPTH, MAX_TEXT_BYTES,
 };
@@ -26,8 +26,8 @@ fn request(old_image: (usize, usize), new_image: (usize, usize), patch: (usize, 
     Request {
         old_image,
         new_image,
-        old_patch: patch.0,
-        new_patch: patch.1,
+        old_patch: (patch.0, patch.0),
+        new_patch: (patch.1, patch.1),
         windows: Vec::new(),
     }
 }
@@ -36,8 +36,8 @@ fn request(old_image: (usize, usize), new_image: (usize, usize), patch: (usize, 
 const TO_384: Request = Request {
     old_image: (224, 224),
     new_image: (384, 384),
-    old_patch: 16,
-    new_patch: 16,
+    old_patch: (16, 16),
+    new_patch: (16, 16),
     windows: Vec::new(),
 };
 
@@ -760,4 +760,75 @@ proptest! {
             prop_assert!(serde_json::from_str::<Value>(&output).is_ok());
         }
     }
+}
+
+/// A size key posgrid does not read as a size (a string, a list of per-stage windows, an
+/// object of other fields) stays as it is; where the request changes what it records, a
+/// warning names it, since it may still record the old size (it used to stay without a word).
+/// A window written as the number 0 stands for global attention: a setting, not warned about.
+#[test]
+fn size_keys_that_are_not_read_are_warned_about_when_their_size_changes() {
+    let text = r#"{"image_size": "224", "patch_size": "16", "window_size": [7, 7, 7, 7], "vision_config": {"window_size": 0}}"#;
+    let recorded = recorded_sizes(text).unwrap();
+    let grows = Request {
+        old_patch: (16, 16),
+        new_patch: (14, 14),
+        windows: vec![WindowMove {
+            old: (7, 7),
+            new: (12, 12),
+        }],
+        ..TO_384
+    };
+    let warnings = unread_warnings(&recorded, &grows);
+    assert_eq!(warnings.len(), 3, "{warnings:?}");
+    for (warning, key) in warnings
+        .iter()
+        .zip(["image_size", "patch_size", "window_size"])
+    {
+        assert!(warning.starts_with(key), "{warning}");
+        assert!(warning.contains("left as it is"), "{warning}");
+    }
+    assert!(warnings[0].contains("a string"), "{warnings:?}");
+    // Nothing changes: nothing to warn about.
+    assert!(unread_warnings(&recorded, &Request::default()).is_empty());
+    // Only the input size changes: only image_size.
+    let only_image = unread_warnings(&recorded, &TO_384);
+    assert_eq!(only_image.len(), 1, "{only_image:?}");
+}
+
+/// A hostile pair of inputs — a checkpoint whose blocks move 40 000 different windows and a
+/// 15 MB configuration of 300 000 vision sections, each with a window_size — is rewritten and
+/// compared in time linear in both (each key looked up once, not against every window): it
+/// took about ten seconds on the development machine, and takes about one now (mostly reading
+/// the text); the bound leaves room for a loaded machine.
+#[test]
+fn many_windows_against_many_window_keys_stay_linear() {
+    let windows: Vec<WindowMove> = (0..40_000)
+        .map(|n| WindowMove {
+            old: (2 + n / 150, 2 + n % 150),
+            new: (12, 12),
+        })
+        .collect();
+    let req = Request {
+        windows,
+        ..Request::default()
+    };
+    // Windows of 300 rows and more: none of them moves, so every lookup misses.
+    let sections: Vec<String> = (0..300_000)
+        .map(|n| {
+            format!(
+                "\"s{n}_vision_config\": {{\"window_size\": [{}, 7]}}",
+                300 + n % 97
+            )
+        })
+        .collect();
+    let text = format!("{{{}}}", sections.join(", "));
+    let start = std::time::Instant::now();
+    let recorded = recorded_sizes(&text).unwrap();
+    let (output, changes) = update(&text, &req).unwrap();
+    let warnings = window_disagreements(&recorded, &req.windows);
+    let took = start.elapsed();
+    assert!(changes.is_empty() && output == text);
+    assert_eq!(warnings.len(), 300_000);
+    assert!(took < std::time::Duration::from_secs(4), "{took:?}");
 }

@@ -1458,3 +1458,152 @@ fn per_axis_windows_and_the_grid_update_a_nested_vision_section() {
         assert_eq!((t.shape(), t.data()), (u.shape(), u.data()), "{name}");
     }
 }
+
+// ---------------------------------------------------------------------------------------------
+// A new patch size
+
+/// A non-square new patch (`--new-patch 16x14`, 448 px: a 28x32 grid) goes into a recorded
+/// `[h, w]` patch size whole; a single number cannot hold it, so the file stays as it is with a
+/// warning naming the key (as for a non-square window) — never a patch_size still saying 16.
+#[test]
+fn a_non_square_new_patch_goes_into_a_pair_or_a_warning() {
+    for (recorded, patch, image) in [
+        ("[16, 16]", json!([16, 14]), json!(448)),
+        ("16", json!(16), json!(224)),
+    ] {
+        let root = tempfile::tempdir().unwrap();
+        let dir = model_dir(root.path());
+        write_vit(&dir, "model.safetensors");
+        let text = format!("{{\"image_size\": 224, \"patch_size\": {recorded}}}\n");
+        std::fs::write(dir.join("config.json"), &text).unwrap();
+        let out = root.path().join("out");
+        let report = resize_json(&dir, &out, &["--image", "448", "--new-patch", "16x14"]);
+        let written: Value =
+            serde_json::from_str(&std::fs::read_to_string(out.join("config.json")).unwrap())
+                .unwrap();
+        assert_eq!(written["patch_size"], patch, "{recorded}: {report}");
+        assert_eq!(written["image_size"], image, "{recorded}: {report}");
+        if recorded == "16" {
+            let warned = report["warnings"].as_array().unwrap().iter().any(|w| {
+                let w = w.as_str().unwrap();
+                w.starts_with("config.json:") && w.contains("patch_size") && w.contains("16x14")
+            });
+            assert!(warned, "{report}");
+        }
+    }
+}
+
+/// A 14-pixel backbone moved to 16-pixel patches at the same token count (224 px → 256 px, a
+/// 16x16 grid both times): the position table is already at its grid and stays, the kernel
+/// changes, and config.json's patch_size follows the kernel even where the file records no
+/// input size to take the grid from.
+#[test]
+fn the_patch_size_follows_the_kernel_when_the_grid_stays() {
+    let root = tempfile::tempdir().unwrap();
+    let dir = model_dir(root.path());
+    let tensors = vec![
+        floats(
+            "pos_embed",
+            Dtype::F32,
+            &[1, 257, D],
+            &smooth_table(1, 16, 16, D, 4),
+        ),
+        floats(
+            "patch_embed.proj.weight",
+            Dtype::F32,
+            &[D, 3, 14, 14],
+            &noise(D * 3 * 196, 5, 0.1),
+        ),
+    ];
+    write(&dir, "model.safetensors", &tensors, None);
+    std::fs::write(dir.join("config.json"), "{\"patch_size\": 14}\n").unwrap();
+    let out = root.path().join("out");
+    let report = resize_json(&dir, &out, &["--image", "256", "--new-patch", "16"]);
+    assert_eq!(
+        report["config_changes"],
+        json!([{"file": "config.json", "path": ["patch_size"], "old": 14, "new": 16}]),
+        "{report}"
+    );
+    assert_eq!(
+        std::fs::read_to_string(out.join("config.json")).unwrap(),
+        "{\"patch_size\": 16}\n"
+    );
+}
+
+/// A windowed model whose checkpoint holds no grid takes its input size from config.json
+/// (224 px of 4-pixel patches). A target that cannot apply to that record — an image the
+/// patch does not divide, a scale that leaves no patch, a grid whose input size overflows (it
+/// wrapped to image_size 0) or passes the largest size a configuration may record — is a usage
+/// error naming the problem (exit 2), nothing written, where it used to keep the old size (or
+/// write 0) without a word; `--keep-config` leaves the file alone and resizes the weights.
+#[test]
+fn a_target_the_recorded_input_size_cannot_take_is_refused() {
+    for (args, words) in [
+        (
+            &["--image", "383"][..],
+            &["config.json", "383", "4-pixel"][..],
+        ),
+        (&["--scale", "1/1000"], &["config.json", "scale"]),
+        (
+            &["--grid", "4611686018427387904"],
+            &["4611686018427387904", "--keep-config"],
+        ),
+        (&["--grid", "300000"], &["1200000", "--keep-config"]),
+    ] {
+        let root = tempfile::tempdir().unwrap();
+        let dir = model_dir(root.path());
+        write(&dir, "model.safetensors", &windowed_tensors(), None);
+        std::fs::write(
+            dir.join("config.json"),
+            WINDOWED_CONFIG.replace("@WINDOW@", "7"),
+        )
+        .unwrap();
+        let before = snapshot(&dir);
+        let out = root.path().join("out");
+        let all = [args, &["--window", "12"]].concat();
+        let o = resize(&dir, &out, &all);
+        assert_eq!(code(&o), 2, "{args:?}: {}", stderr(&o));
+        for w in words {
+            assert!(stderr(&o).contains(w), "{w}: {}", stderr(&o));
+        }
+        assert!(!out.exists(), "{args:?}");
+        assert_eq!(snapshot(&dir), before);
+        let kept = [&all[..], &["--keep-config"]].concat();
+        let o = resize(&dir, &out, &kept);
+        assert_eq!(code(&o), 0, "{args:?}: {}", stderr(&o));
+        assert_eq!(
+            std::fs::read(out.join("config.json")).unwrap(),
+            before["config.json"]
+        );
+    }
+}
+
+/// A configuration of a thousand vision sections, each recording a window the checkpoint does
+/// not have, gives a few warnings and a count of the rest, not a thousand lines (a 16 MB file
+/// gave 300 000).
+#[test]
+fn a_configuration_full_of_disagreements_gives_a_bounded_list_of_warnings() {
+    let root = tempfile::tempdir().unwrap();
+    let dir = model_dir(root.path());
+    write(&dir, "model.safetensors", &windowed_tensors(), None);
+    let sections: Vec<String> = (0..1000)
+        .map(|n| format!("\"s{n}_vision_config\": {{\"window_size\": 9}}"))
+        .collect();
+    let text = format!("{{\"window_size\": 7, {}}}\n", sections.join(", "));
+    std::fs::write(dir.join("config.json"), &text).unwrap();
+    let out = root.path().join("out");
+    let report = resize_json(&dir, &out, &["--image", "224", "--window", "12"]);
+    let about_config: Vec<&str> = report["warnings"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .filter_map(Value::as_str)
+        .filter(|w| w.starts_with("config.json:"))
+        .collect();
+    assert!(about_config.len() <= 9, "{}", about_config.len());
+    assert!(
+        about_config.last().unwrap().contains("992 more"),
+        "{about_config:?}"
+    );
+    assert_eq!(report["config_changes"][0]["path"], json!(["window_size"]));
+}

@@ -419,3 +419,313 @@ fn channels_first(v: &[f64], [d, c, p, q]: [usize; 4]) -> Vec<f64> {
     }
     out
 }
+
+/// A hostile checkpoint run through `resize` with `args`: the outcome, whether OUT appeared,
+/// and the input checked unchanged.
+struct Attempt {
+    output: std::process::Output,
+    wrote: bool,
+}
+
+fn attempt(tensors: &[common::T], args: &[&str]) -> Attempt {
+    let dir = tempfile::tempdir().unwrap();
+    let file = write(dir.path(), "in.safetensors", tensors, None);
+    let before = std::fs::read(&file).unwrap();
+    let out = dir.path().join("out.safetensors");
+    let mut all = vec!["resize", s(&file), "-o", s(&out)];
+    all.extend_from_slice(args);
+    let output = posgrid(&all);
+    assert_eq!(std::fs::read(&file).unwrap(), before, "the input changed");
+    Attempt {
+        wrote: out.exists(),
+        output,
+    }
+}
+
+impl Attempt {
+    /// Refused with exit `code`, the file and every one of `words` named, nothing written.
+    fn refused(&self, code: i32, words: &[&str]) {
+        let err = stderr(&self.output);
+        assert_eq!(common::code(&self.output), code, "{err}");
+        assert!(err.contains("in.safetensors"), "{err}");
+        for w in words {
+            assert!(err.contains(w), "{w}: {err}");
+        }
+        assert!(!self.wrote, "an output was written");
+    }
+}
+
+fn small_table(dim: usize) -> common::T {
+    floats(
+        "pos_embed",
+        Dtype::F32,
+        &[1, 17, dim],
+        &noise(17 * dim, 5, 0.1),
+    )
+}
+
+/// A matrix named as a patch embedding with no inputs at all (`[D, 0]`, a shape the format
+/// allows): refused as no kernel to resize (exit 4), naming it, never a crash.
+#[test]
+fn an_embedding_without_inputs_is_refused_not_a_crash() {
+    let empty = floats("patch_embed.proj.weight", Dtype::F32, &[16, 0], &[]);
+    attempt(
+        &[empty, small_table(16)],
+        &["--image", "40", "--new-patch", "10"],
+    )
+    .refused(4, &["patch_embed.proj.weight", "0 inputs"]);
+}
+
+/// A convolution kernel with zero-pixel patches (`[D, C, 0, 0]`, `[0, 0, C, D]` or a tubelet
+/// kernel `[D, C, t, 0, 0]`) sets no patch size: sizing by image is refused as an unknown patch
+/// (exit 4), never a division by zero; a new patch size finds no kernel to resize (exit 4).
+#[test]
+fn kernels_with_empty_patches_set_no_patch_size() {
+    for shape in [&[16, 3, 0, 0][..], &[0, 0, 3, 16], &[16, 3, 2, 0, 0]] {
+        let kernel = floats("patch_embed.proj.weight", Dtype::F32, shape, &[]);
+        attempt(&[kernel, small_table(16)], &["--image", "40"])
+            .refused(4, &["pos_embed", "patch size is unknown"]);
+        let kernel = floats("patch_embed.proj.weight", Dtype::F32, shape, &[]);
+        attempt(
+            &[kernel, small_table(16)],
+            &["--image", "40", "--new-patch", "10"],
+        )
+        .refused(4, &["--new-patch 10x10", "no patch-projection kernel"]);
+    }
+}
+
+/// A smooth linear embedding `[D, 3·p·p]` flattened channel by channel (each channel's patch a
+/// low-frequency cosine, as trained kernels are smooth; common practice), times `scale`.
+fn smooth_embedding(dim: usize, p: usize, scale: f64) -> Vec<f64> {
+    let mut v = Vec::with_capacity(dim * 3 * p * p);
+    for d in 0..dim {
+        for c in 0..3 {
+            let (fy, fx) = (0.1 + 0.05 * (d % 4) as f64, 0.1 + 0.04 * c as f64);
+            for y in 0..p {
+                for x in 0..p {
+                    v.push(scale * ((fy * y as f64).cos() + (fx * x as f64 + d as f64).sin()));
+                }
+            }
+        }
+    }
+    v
+}
+
+/// NaN or infinity in a patch kernel cannot go through the pseudo-inverse, so `--allow-nonfinite`
+/// cannot help: refused with exit 6 naming the values (not sent looking for a flattening order
+/// the values were never going to tell), for a linear embedding with or without `--patch-order`
+/// and for a convolution kernel with `--allow-nonfinite`.
+#[test]
+fn non_finite_patch_kernels_are_refused_for_what_they_hold() {
+    for bad in [f64::NAN, f64::INFINITY] {
+        let mut linear = smooth_embedding(16, 8, 0.1);
+        linear[5] = bad;
+        let embedding = || floats("patch_embed.proj.weight", Dtype::F32, &[16, 192], &linear);
+        for extra in [&[][..], &["--patch-order", "cyx"], &["--allow-nonfinite"]] {
+            let mut args = vec!["--image", "40", "--new-patch", "10"];
+            args.extend_from_slice(extra);
+            let run = attempt(&[embedding(), small_table(16)], &args);
+            run.refused(6, &["patch_embed.proj.weight", "NaN or infinite"]);
+            assert!(!stderr(&run.output).contains("--patch-order"), "{extra:?}");
+            assert!(
+                !stderr(&run.output).contains("--allow-nonfinite"),
+                "{extra:?}"
+            );
+        }
+        let conv = floats(
+            "patch_embed.proj.weight",
+            Dtype::F32,
+            &[16, 3, 8, 8],
+            &linear,
+        );
+        let args = ["--image", "40", "--new-patch", "10", "--allow-nonfinite"];
+        let run = attempt(&[conv, small_table(16)], &args);
+        run.refused(6, &["patch_embed.proj.weight", "NaN or infinite"]);
+        assert!(!stderr(&run.output).contains("--allow-nonfinite"));
+    }
+}
+
+/// Values that do not tell the flattening order say why in words, never with a NaN roughness:
+/// flat patches (a constant matrix). Values near the largest F64 still tell it (the roughness
+/// is a ratio, computed without overflow), and a one-pixel patch (`[D, 3]`) is the same in
+/// both orders, so it needs no flag.
+#[test]
+fn the_flattening_order_is_read_from_any_finite_values() {
+    let flat = floats(
+        "patch_embed.proj.weight",
+        Dtype::F32,
+        &[16, 192],
+        &[0.5; 16 * 192],
+    );
+    let run = attempt(
+        &[flat, small_table(16)],
+        &["--image", "40", "--new-patch", "10"],
+    );
+    run.refused(4, &["patch_embed.proj.weight", "flat", "--patch-order"]);
+    assert!(
+        !stderr(&run.output).contains("NaN"),
+        "{}",
+        stderr(&run.output)
+    );
+
+    let huge = smooth_embedding(16, 8, 1e300);
+    let huge = floats("patch_embed.proj.weight", Dtype::F64, &[16, 192], &huge);
+    let run = attempt(
+        &[huge, small_table(16)],
+        &["--image", "64", "--new-patch", "16", "--dry-run"],
+    );
+    assert_eq!(code(&run.output), 0, "{}", stderr(&run.output));
+    assert!(
+        stderr(&run.output).contains("channel by channel (cyx)"),
+        "{}",
+        stderr(&run.output)
+    );
+
+    let pixel = floats(
+        "patch_embed.proj.weight",
+        Dtype::F32,
+        &[16, 3],
+        &noise(48, 9, 1.0),
+    );
+    let run = attempt(
+        &[pixel, small_table(16)],
+        &["--image", "8", "--new-patch", "2"],
+    );
+    assert_eq!(code(&run.output), 0, "{}", stderr(&run.output));
+    assert!(run.wrote);
+}
+
+/// `--tensor` naming the tables but not the patch kernel would write tables for the new patch
+/// beside a kernel that still projects old-size patches: refused (exit 4) naming the kernel,
+/// as a new patch size without any kernel is. Naming the kernel too resizes both.
+#[test]
+fn a_new_patch_that_leaves_out_its_kernel_is_refused() {
+    let kernel = || {
+        floats(
+            "patch_embed.proj.weight",
+            Dtype::F32,
+            &[16, 3, 8, 8],
+            &smooth_embedding(16, 8, 0.1),
+        )
+    };
+    let args = [
+        "--image",
+        "50",
+        "--new-patch",
+        "10",
+        "--tensor",
+        "pos_embed",
+    ];
+    attempt(&[kernel(), small_table(16)], &args).refused(
+        4,
+        &["--new-patch 10x10", "patch_embed.proj.weight", "--tensor"],
+    );
+    let both = [&args[..], &["--tensor", "patch_embed.proj.weight"]].concat();
+    let run = attempt(&[kernel(), small_table(16)], &both);
+    assert_eq!(code(&run.output), 0, "{}", stderr(&run.output));
+    assert!(run.wrote);
+}
+
+/// `--patch-order` where it decides nothing — no new patch size (scan, or resize without
+/// `--new-patch`), or a convolution kernel whose shape gives its layout — is a warning saying
+/// it is ignored, as `--window` on a file without windows is: a typo in a script should not
+/// pass silently.
+#[test]
+fn a_patch_order_that_decides_nothing_is_a_warning() {
+    let dir = tempfile::tempdir().unwrap();
+    let conv = floats(
+        "patch_embed.proj.weight",
+        Dtype::F32,
+        &[16, 3, 8, 8],
+        &smooth_embedding(16, 8, 0.1),
+    );
+    let file = write(dir.path(), "in.safetensors", &[conv, small_table(16)], None);
+    let out = dir.path().join("out.safetensors");
+    for args in [
+        &["scan", s(&file), "--patch-order", "yxc"][..],
+        &[
+            "resize",
+            s(&file),
+            "-o",
+            s(&out),
+            "--grid",
+            "5",
+            "--patch-order",
+            "yxc",
+            "--dry-run",
+        ],
+        &[
+            "resize",
+            s(&file),
+            "-o",
+            s(&out),
+            "--image",
+            "40",
+            "--new-patch",
+            "10",
+            "--patch-order",
+            "yxc",
+            "--dry-run",
+        ],
+    ] {
+        let o = posgrid(args);
+        assert_eq!(code(&o), 0, "{}", stderr(&o));
+        let warning = stderr(&o)
+            .lines()
+            .find(|l| l.contains("--patch-order"))
+            .map(str::to_string);
+        let warning = warning.unwrap_or_else(|| panic!("{args:?}: no warning"));
+        assert!(warning.contains("ignored"), "{warning}");
+    }
+}
+
+/// A kernel whose patches are larger than the resize takes (64 a side) is refused at planning,
+/// before any value is computed, naming it and its patch — with an empty kernel of enormous
+/// patches (`[0, 3, 2^32, 2^32]`, zero bytes), whose patch area does not fit 64 bits.
+#[test]
+fn kernels_of_patches_too_large_are_refused_at_planning() {
+    use posgrid::plan::{build, Relative, Request, Target, DEFAULT_MEMORY_LIMIT};
+    let dir = tempfile::tempdir().unwrap();
+    let side = 1usize << 32;
+    let header = format!(
+        r#"{{"patch_embed.proj.weight":{{"dtype":"F32","shape":[0,3,{side},{side}],"data_offsets":[0,0]}}}}"#
+    );
+    let huge = crafted(dir.path(), "huge.safetensors", &header, &[]);
+    let linear = write(
+        dir.path(),
+        "linear.safetensors",
+        &[floats(
+            "patch_embed.proj.weight",
+            Dtype::F32,
+            &[2, 3 * 100 * 100],
+            &smooth_embedding(2, 100, 0.1),
+        )],
+        None,
+    );
+    for (file, patch) in [(huge, format!("{side}x{side}")), (linear, "100x100".into())] {
+        let ckpt = Checkpoint::open(&file).unwrap();
+        let hints = posgrid::kinds::Hints {
+            new_patch: Some((10, 10)),
+            patch_order: Some(posgrid::kinds::patch::Flatten::Cyx),
+            ..Default::default()
+        };
+        let found = posgrid::kinds::discover(&ckpt, &hints).unwrap();
+        let request = Request {
+            target: Target::Image(40, 40),
+            tensors: Vec::new(),
+            options: Default::default(),
+            allow_nonfinite: false,
+            memory_limit: DEFAULT_MEMORY_LIMIT,
+            rebuild_sincos: false,
+            window: None,
+            frames: None,
+            relative: Relative::Kernel,
+            new_patch: Some((10, 10)),
+        };
+        let err = build(&ckpt, &found, &request).unwrap_err();
+        assert_eq!(err.exit_code(), 6, "{err}");
+        let message = err.to_string();
+        assert!(message.contains("patch_embed.proj.weight"), "{message}");
+        assert!(message.contains(&patch), "{message}");
+    }
+}

@@ -369,6 +369,11 @@ pub trait Change: std::fmt::Debug + Send + Sync {
     fn grid_change(&self) -> Option<([usize; 2], [usize; 2], usize)> {
         None
     }
+    /// The patch (rows, columns of pixels) before and after, when this change resizes a
+    /// patch-projection kernel (what configuration files record as `patch_size`).
+    fn patch_change(&self) -> Option<([usize; 2], [usize; 2])> {
+        None
+    }
     /// The attention window before and after, when this change follows `--window` (what
     /// configuration files record as `window_size`).
     fn window_change(&self) -> Option<WindowSides> {

@@ -70,7 +70,7 @@ pub struct PatchKernel {
     pub channels: usize,
     pub dim: usize,
     /// How a linear embedding flattens a patch, and what said so (`flag`, `values`, or
-    /// `one_channel` where both orders are the same).
+    /// `one_channel` and `one_pixel` where both orders are the same).
     #[serde(skip_serializing_if = "Option::is_none")]
     pub flatten: Option<Flatten>,
     #[serde(skip_serializing_if = "Option::is_none")]
@@ -81,6 +81,11 @@ pub struct PatchKernel {
 /// the absolute tables took their patch size from, else the best-named one.
 pub(super) fn find(source: &dyn TensorSource, hints: &Hints, found: &mut Discovery) -> Result<()> {
     if hints.new_patch.is_none() {
+        if hints.patch_order.is_some() {
+            found.warnings.push(
+                "--patch-order: linear patch embeddings are read only for a new patch size (resize --new-patch); ignored".into(),
+            );
+        }
         return Ok(());
     }
     let mut names: Vec<String> = found
@@ -97,6 +102,12 @@ pub(super) fn find(source: &dyn TensorSource, hints: &Hints, found: &mut Discove
     names.dedup();
     if names.is_empty() {
         return find_linear(source, hints, found);
+    }
+    if hints.patch_order.is_some() {
+        found.warnings.push(format!(
+            "--patch-order: \"{}\" is a convolution kernel, whose shape gives its layout; ignored",
+            names[0]
+        ));
     }
     for name in names {
         let entry = source.find(&name).expect("checked above");
@@ -116,8 +127,8 @@ fn reading(e: &TensorEntry) -> Option<PatchKernel> {
         return None;
     }
     let (layout, dim, channels, patch) = match e.shape[..] {
-        [d, c, p, q] if c <= 64 && p == q => (KernelLayout::ChannelsFirst, d, c, [p, q]),
-        [p, q, c, d] if c <= 64 && p == q => (KernelLayout::ChannelsLast, d, c, [p, q]),
+        [d, c, p, q] if c <= 64 && p == q && p > 0 => (KernelLayout::ChannelsFirst, d, c, [p, q]),
+        [p, q, c, d] if c <= 64 && p == q && p > 0 => (KernelLayout::ChannelsLast, d, c, [p, q]),
         _ => return None,
     };
     Some(PatchKernel {
@@ -165,9 +176,7 @@ fn find_linear(source: &dyn TensorSource, hints: &Hints, found: &mut Discovery) 
     Ok(())
 }
 
-/// A matrix `[a, b]` read as a linear patch embedding, or why not. Which axis is the width D:
-/// the name's suffix (`weight` is a linear layer's `[out, in]`, `kernel` a dense layer's
-/// `[in, out]`; common practice), else the one axis equal to a position table's width.
+/// A matrix read as a linear patch embedding, or why not.
 fn linear_reading(
     source: &dyn TensorSource,
     e: &TensorEntry,
@@ -175,31 +184,16 @@ fn linear_reading(
     hints: &Hints,
     warnings: &mut Vec<String>,
 ) -> Result<std::result::Result<PatchKernel, String>> {
-    let [a, b] = e.shape[..] else {
-        return Ok(Err("not a matrix".into()));
+    let layout = match linear_layout(e, widths) {
+        Ok(layout) => layout,
+        Err(why) => return Ok(Err(why)),
     };
-    let fits = |d: usize| widths.is_empty() || widths.contains(&d);
-    let lower = e.name.to_ascii_lowercase();
-    let layout = if lower.ends_with("weight") {
-        KernelLayout::LinearOutIn
-    } else if lower.ends_with("kernel") {
-        KernelLayout::LinearInOut
-    } else {
-        match (!widths.is_empty() && fits(a), !widths.is_empty() && fits(b)) {
-            (true, false) => KernelLayout::LinearOutIn,
-            (false, true) => KernelLayout::LinearInOut,
-            _ => {
-                return Ok(Err(format!(
-                    "which axis of [{a}, {b}] is the embedding width is unclear"
-                )))
-            }
-        }
+    let (dim, inputs) = match (layout, &e.shape[..]) {
+        (KernelLayout::LinearInOut, &[a, b]) => (b, a),
+        (_, &[a, b]) => (a, b),
+        _ => return Ok(Err("not a matrix".into())),
     };
-    let (dim, inputs) = match layout {
-        KernelLayout::LinearInOut => (b, a),
-        _ => (a, b),
-    };
-    if !fits(dim) {
+    if !widths.is_empty() && !widths.contains(&dim) {
         return Ok(Err(format!(
             "its width {dim} is not the position tables' ({widths:?})"
         )));
@@ -210,7 +204,7 @@ fn linear_reading(
             None => format!("{inputs} inputs are not 3·p·p; pass --patch P to read C·P·P"),
         }));
     };
-    let mut kernel = PatchKernel {
+    let kernel = PatchKernel {
         name: e.name.clone(),
         kind: Kind::PatchKernel,
         dtype: e.dtype,
@@ -222,42 +216,84 @@ fn linear_reading(
         flatten: None,
         flatten_from: None,
     };
-    let (order, from) = if channels == 1 {
-        (Flatten::Cyx, "one_channel")
-    } else if let Some(order) = hints.patch_order {
-        (order, "flag")
-    } else if e.byte_len() > MAX_ORDER_READ {
+    Ok(
+        linear_order(source, e, &kernel, hints, warnings)?.map(|(order, from)| PatchKernel {
+            flatten: Some(order),
+            flatten_from: Some(from),
+            ..kernel
+        }),
+    )
+}
+
+/// Which axis of a matrix `[a, b]` is the width D: the name's suffix (`weight` is a linear
+/// layer's `[out, in]`, `kernel` a dense layer's `[in, out]`; common practice), else the one
+/// axis equal to a position table's width.
+fn linear_layout(e: &TensorEntry, widths: &[usize]) -> std::result::Result<KernelLayout, String> {
+    let lower = e.name.to_ascii_lowercase();
+    if lower.ends_with("weight") {
+        return Ok(KernelLayout::LinearOutIn);
+    }
+    if lower.ends_with("kernel") {
+        return Ok(KernelLayout::LinearInOut);
+    }
+    match e.shape[..] {
+        [a, b] if widths.contains(&a) && !widths.contains(&b) => Ok(KernelLayout::LinearOutIn),
+        [a, b] if widths.contains(&b) && !widths.contains(&a) => Ok(KernelLayout::LinearInOut),
+        _ => Err(format!(
+            "which axis of {:?} is the embedding width is unclear",
+            e.shape
+        )),
+    }
+}
+
+/// How `kernel` (the embedding `e`) flattens a patch and what said so, or why that is unknown:
+/// nothing to tell with one channel or one pixel, else `--patch-order`, else the values.
+fn linear_order(
+    source: &dyn TensorSource,
+    e: &TensorEntry,
+    kernel: &PatchKernel,
+    hints: &Hints,
+    warnings: &mut Vec<String>,
+) -> Result<std::result::Result<(Flatten, &'static str), String>> {
+    if kernel.channels == 1 {
+        return Ok(Ok((Flatten::Cyx, "one_channel")));
+    }
+    if kernel.patch == [1, 1] {
+        return Ok(Ok((Flatten::Cyx, "one_pixel")));
+    }
+    if let Some(order) = hints.patch_order {
+        return Ok(Ok((order, "flag")));
+    }
+    if e.byte_len() > MAX_ORDER_READ {
         return Ok(Err(format!(
             "over {} MiB, its flattening order is not read from the values; pass --patch-order cyx or yxc",
             MAX_ORDER_READ >> 20
         )));
-    } else {
-        let v = values::decode_f64(e.dtype, &source.bytes(e)?).map_err(|err| {
-            values::value_error(source.source_path(), "reading a patch embedding", err)
-        })?;
-        match flatten_order(&kernel, &v) {
-            Ok((order, note)) => {
-                warnings.push(format!(
-                    "{}: read as a linear patch embedding flattened {note}; --patch-order overrides",
-                    e.name
-                ));
-                (order, "values")
-            }
-            Err(why) => return Ok(Err(format!("{why}; pass --patch-order cyx or yxc"))),
+    }
+    let raw = source.bytes(e)?;
+    refuse_nonfinite(source.source_path(), &e.name, e.dtype, &raw)?;
+    let v = values::decode_f64(e.dtype, &raw).map_err(|err| {
+        values::value_error(source.source_path(), "reading a patch embedding", err)
+    })?;
+    Ok(match flatten_order(kernel, &v) {
+        Ok((order, note)) => {
+            warnings.push(format!(
+                "{}: read as a linear patch embedding flattened {note}; --patch-order overrides",
+                e.name
+            ));
+            Ok((order, "values"))
         }
-    };
-    kernel.flatten = Some(order);
-    kernel.flatten_from = Some(from);
-    Ok(Ok(kernel))
+        Err(why) => Err(format!("{why}; pass --patch-order cyx or yxc")),
+    })
 }
 
 /// Channels C and patch side p with `inputs = C·p·p`: p from `--patch`, else C = 3 (colour
 /// images, common practice) when `inputs / 3` is a square.
 fn channels_and_side(inputs: usize, patch: Option<usize>) -> Option<(usize, usize)> {
     let channels_for = |p: usize| {
-        let area = p.checked_mul(p)?;
-        (area > 0 && inputs % area == 0 && (1..=64).contains(&(inputs / area)))
-            .then_some((inputs / area, p))
+        let area = p.checked_mul(p).filter(|&a| a > 0)?;
+        let channels = inputs / area;
+        (inputs % area == 0 && (1..=64).contains(&channels)).then_some((channels, p))
     };
     match patch {
         Some(p) => channels_for(p),
@@ -287,7 +323,9 @@ fn flatten_order(
         };
         let canonical = rearrange(v, reading.axes(), CANONICAL, reading.sizes(kernel.patch))
             .map_err(|e| e.to_string())?;
-        rough[at] = roughness(&canonical, kernel.patch);
+        rough[at] = roughness(&canonical, kernel.patch).ok_or(
+            "its patches are flat (each holds one value), so the values do not tell the flattening order",
+        )?;
     }
     let [cyx, yxc] = rough;
     let clear = |a: f64, b: f64| a <= 0.5 && a <= 0.5 * b;
@@ -306,27 +344,46 @@ fn flatten_order(
 }
 
 /// Mean squared difference of neighbouring pixels over twice the variance, over every `p×q`
-/// patch of `v` (each patch's mean removed); NaN when every patch is flat.
-fn roughness(v: &[f64], [p, q]: [usize; 2]) -> f64 {
+/// patch of finite values `v` (each patch's mean removed); `None` where it is undefined (every
+/// patch flat, or a patch of one pixel).
+fn roughness(v: &[f64], [p, q]: [usize; 2]) -> Option<f64> {
+    // A ratio: values scaled to at most 1 give the same one, and their squares cannot overflow.
+    let largest = v.iter().fold(0.0f64, |m, x| m.max(x.abs()));
     let (mut diffs, mut pairs, mut spread) = (0.0, 0usize, 0.0);
     for patch in v.chunks_exact(p * q) {
-        let mean = patch.iter().sum::<f64>() / patch.len() as f64;
-        spread += patch.iter().map(|x| (x - mean).powi(2)).sum::<f64>();
+        let at = |y: usize, x: usize| patch[y * q + x] / largest;
+        let mean = patch.iter().map(|x| x / largest).sum::<f64>() / patch.len() as f64;
+        spread += patch
+            .iter()
+            .map(|x| (x / largest - mean).powi(2))
+            .sum::<f64>();
         for y in 0..p {
             for x in 0..q {
-                let here = patch[y * q + x];
                 if x + 1 < q {
-                    diffs += (patch[y * q + x + 1] - here).powi(2);
+                    diffs += (at(y, x + 1) - at(y, x)).powi(2);
                     pairs += 1;
                 }
                 if y + 1 < p {
-                    diffs += (patch[(y + 1) * q + x] - here).powi(2);
+                    diffs += (at(y + 1, x) - at(y, x)).powi(2);
                     pairs += 1;
                 }
             }
         }
     }
-    (diffs / pairs as f64) / (2.0 * spread / v.len() as f64)
+    let rough = (diffs / pairs as f64) / (2.0 * spread / v.len() as f64);
+    rough.is_finite().then_some(rough)
+}
+
+/// NaN or infinity cannot go through the pseudo-inverse (`--allow-nonfinite` cannot help):
+/// a kernel holding them is refused for what it holds.
+fn refuse_nonfinite(path: &std::path::Path, name: &str, dtype: Dtype, raw: &[u8]) -> Result<()> {
+    match values::count_nonfinite(dtype, raw) {
+        0 => Ok(()),
+        bad => Err(Error::refused(
+            path,
+            format!("\"{name}\" holds {bad} NaN or infinite value(s); a patch kernel cannot be resized through them"),
+        )),
+    }
 }
 
 /// One kernel to resize.
@@ -350,14 +407,26 @@ pub fn plan(
     if [p, q] == k.patch {
         return Ok(None);
     }
-    if p > patch_kernel::MAX_PATCH_SIDE || q > patch_kernel::MAX_PATCH_SIDE {
+    let max = patch_kernel::MAX_PATCH_SIDE;
+    if p > max || q > max {
         return Err(Error::Usage(format!(
-            "--new-patch {p}x{q}: patches larger than {} pixels a side are not resized",
-            patch_kernel::MAX_PATCH_SIDE
+            "--new-patch {p}x{q}: patches larger than {max} pixels a side are not resized"
         )));
     }
+    // Checked before any arithmetic on them: an empty kernel may claim any patch.
+    if k.patch.iter().any(|&side| side > max) {
+        return Err(Error::refused(
+            ckpt.source_path(),
+            format!(
+                "\"{}\" has patches of {}x{} pixels; patches larger than {max} pixels a side are not resized",
+                k.name, k.patch[0], k.patch[1]
+            ),
+        ));
+    }
     let new_shape = k.shape_for([p, q]);
-    let needed = (k.dim as u64 * k.channels as u64 * (p * q + k.patch[0] * k.patch[1]) as u64)
+    let needed = (k.dim as u64)
+        .saturating_mul(k.channels as u64)
+        .saturating_mul((p * q + k.patch[0] * k.patch[1]) as u64)
         .saturating_mul(24);
     if needed > request.memory_limit {
         return Err(Error::refused(
@@ -475,9 +544,7 @@ impl Change for PatchChange {
         let k = &self.kernel;
         let entry = ckpt.find(&k.name).expect("planned kernels exist");
         let raw = ckpt.bytes(entry)?;
-        if !allow_nonfinite {
-            super::refuse_nonfinite(path, &k.name, entry.dtype, &raw, "")?;
-        }
+        refuse_nonfinite(path, &k.name, entry.dtype, &raw)?;
         let what = format!("resizing \"{}\"", k.name);
         let oom = |e| values::out_of_memory(path, &what, e);
         let v = values::decode_f64(entry.dtype, &raw)
@@ -540,6 +607,10 @@ impl Change for PatchChange {
             "flatten": self.kernel.flatten,
             "basis_resize": patch_kernel::default_options().kernel,
         })
+    }
+
+    fn patch_change(&self) -> Option<([usize; 2], [usize; 2])> {
+        Some((self.kernel.patch, self.to))
     }
 
     fn needed_bytes(&self) -> u64 {

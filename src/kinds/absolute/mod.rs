@@ -788,14 +788,15 @@ fn all_explanations(rows: usize) -> Vec<(usize, (usize, usize))> {
 }
 
 /// Patch-projection kernels `[D, C, p, p]` or `[p, p, C, D]` as (entry, D, p); tensors named
-/// like position tables are not kernels.
+/// like position tables are not kernels, nor is a kernel of empty patches (it would make every
+/// image a grid of zero-pixel patches).
 fn patch_kernels(entries: &[TensorEntry]) -> Vec<(&TensorEntry, usize, usize)> {
     entries
         .iter()
         .filter(|e| values::is_float(e.dtype) && !is_position_name(&e.name))
         .filter_map(|e| match e.shape.as_slice() {
-            [d, c, p, q] if p == q && *c <= 64 => Some((e, *d, *p)),
-            [p, q, c, d] if p == q && *c <= 64 => Some((e, *d, *p)),
+            [d, c, p, q] if p == q && *p > 0 && *c <= 64 => Some((e, *d, *p)),
+            [p, q, c, d] if p == q && *p > 0 && *c <= 64 => Some((e, *d, *p)),
             _ => None,
         })
         .collect()
@@ -851,7 +852,7 @@ pub(crate) fn tubelet_kernels(entries: &[TensorEntry]) -> Vec<Tubelet<'_>> {
         .iter()
         .filter(|e| values::is_float(e.dtype) && !is_position_name(&e.name))
         .filter_map(|e| match e.shape.as_slice() {
-            [d, c, t, p, q] if p == q && *c <= 64 && *t >= 1 => Some(Tubelet {
+            [d, c, t, p, q] if p == q && *p > 0 && *c <= 64 && *t >= 1 => Some(Tubelet {
                 entry: e,
                 dim: *d,
                 frames: *t,
