@@ -1607,3 +1607,93 @@ fn a_configuration_full_of_disagreements_gives_a_bounded_list_of_warnings() {
     );
     assert_eq!(report["config_changes"][0]["path"], json!(["window_size"]));
 }
+
+/// Sub-directories of a model directory (an exported graph, a tokenizer folder) are not copied:
+/// the report says which, so the user can copy them; the files at the top are all there.
+#[test]
+fn sub_directories_left_out_are_named_in_a_warning() {
+    let root = tempfile::tempdir().unwrap();
+    let dir = model_dir(root.path());
+    write(&dir, "model.safetensors", &vit_tensors(7), None);
+    write_side_files(&dir);
+    std::fs::create_dir(dir.join("onnx")).unwrap();
+    std::fs::write(dir.join("onnx").join("model.onnx"), b"graph").unwrap();
+    std::fs::create_dir(dir.join("1_Pooling")).unwrap();
+    let out = root.path().join("out");
+    let report = resize_json(&dir, &out, &["--image", "384"]);
+    let warning = report["warnings"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .filter_map(Value::as_str)
+        .find(|w| w.contains("sub-directories not copied"))
+        .unwrap_or_else(|| panic!("no warning: {report}"));
+    assert!(warning.contains("\"1_Pooling\", \"onnx\""), "{warning}");
+    assert!(!out.join("onnx").exists());
+    for name in ["model.safetensors", ".gitattributes", "README.md"] {
+        assert!(out.join(name).is_file(), "{name}");
+    }
+}
+
+/// A downloaded model's cache folder: every file of the revision's folder is a link to a blob
+/// elsewhere (common practice of a widely used model hub's client, from memory). The links are
+/// read through: the output holds regular files, the configuration updated, and the blobs are
+/// unchanged. A dangling link or one to a device is refused, naming it, with nothing written.
+#[test]
+fn a_cache_folder_of_links_is_read_through_its_links() {
+    let root = tempfile::tempdir().unwrap();
+    let blobs = root.path().join("blobs");
+    let snapshot = root.path().join("snapshots").join("0123abcd");
+    std::fs::create_dir_all(&blobs).unwrap();
+    std::fs::create_dir_all(&snapshot).unwrap();
+    write(&blobs, "b1", &vit_tensors(3), None);
+    let config = VIT_CONFIG.replace("@IMAGE@", "224");
+    std::fs::write(blobs.join("b2"), &config).unwrap();
+    for (name, blob) in [("model.safetensors", "b1"), ("config.json", "b2")] {
+        std::os::unix::fs::symlink(format!("../../blobs/{blob}"), snapshot.join(name)).unwrap();
+    }
+    let before = snapshot_bytes(&blobs);
+    let out = root.path().join("out");
+    let report = resize_json(&snapshot, &out, &["--image", "384"]);
+    assert_eq!(
+        report["config_changes"].as_array().unwrap().len(),
+        1,
+        "{report}"
+    );
+    for name in ["model.safetensors", "config.json"] {
+        let meta = std::fs::symlink_metadata(out.join(name)).unwrap();
+        assert!(meta.is_file(), "{name} is a regular file in the output");
+    }
+    let written = std::fs::read_to_string(out.join("config.json")).unwrap();
+    assert_eq!(written, VIT_CONFIG.replace("@IMAGE@", "384"));
+    assert_eq!(snapshot_bytes(&blobs), before, "the blobs are unchanged");
+
+    for (name, target) in [
+        ("dangling.json", "../../blobs/missing"),
+        ("zero.json", "/dev/zero"),
+    ] {
+        let link = snapshot.join(name);
+        std::os::unix::fs::symlink(target, &link).unwrap();
+        let out = root.path().join(format!("out-{name}"));
+        let o = resize(&snapshot, &out, &["--image", "384"]);
+        assert_eq!(code(&o), 3, "{name}: {}", stderr(&o));
+        assert!(stderr(&o).contains(name), "{name}: {}", stderr(&o));
+        assert!(!out.exists());
+        std::fs::remove_file(&link).unwrap();
+    }
+}
+
+fn snapshot_bytes(dir: &Path) -> Vec<(String, Vec<u8>)> {
+    let mut files: Vec<_> = std::fs::read_dir(dir)
+        .unwrap()
+        .map(|e| e.unwrap())
+        .map(|e| {
+            (
+                e.file_name().to_string_lossy().into_owned(),
+                std::fs::read(e.path()).unwrap(),
+            )
+        })
+        .collect();
+    files.sort();
+    files
+}

@@ -31,14 +31,18 @@ pub struct ModelDir {
     pub weights: PathBuf,
     /// Every other regular file (hidden files included), sorted by name.
     pub others: Vec<PathBuf>,
+    /// Names of the sub-directories, which are not copied (sorted).
+    pub subdirs: Vec<String>,
 }
 
 impl ModelDir {
     /// Find the one checkpoint of `dir`. Refused: no checkpoint, several (listed, with how
-    /// to choose), sub-directories are ignored, special files are refused.
+    /// to choose), special files. Links count as what they point at; sub-directories are
+    /// listed, not copied.
     pub fn find(dir: &Path) -> Result<Self> {
         let mut weights = Vec::new();
         let mut others = Vec::new();
+        let mut subdirs = Vec::new();
         let listing = fs::read_dir(dir).map_err(|e| Error::read(dir, e))?;
         for (count, entry) in listing.enumerate() {
             if count >= MAX_ENTRIES {
@@ -50,16 +54,24 @@ impl ModelDir {
                 ));
             }
             let entry = entry.map_err(|e| Error::read(dir, e))?;
-            let kind = entry.file_type().map_err(|e| Error::read(dir, e))?;
             let path = entry.path();
+            let mut kind = entry.file_type().map_err(|e| Error::read(dir, e))?;
+            // A link is taken for what it points at: a downloaded model's cache folder is
+            // links to its files. A dangling link or a loop cannot be read.
+            if kind.is_symlink() {
+                kind = fs::metadata(&path)
+                    .map_err(|e| Error::read(&path, e))?
+                    .file_type();
+            }
             if kind.is_dir() {
+                subdirs.push(entry.file_name().to_string_lossy().into_owned());
                 continue;
             }
             if !kind.is_file() {
                 return Err(invalid(
                     dir,
                     format!(
-                        "holds \"{}\", which is not a regular file (a link or a special file); a model directory is copied file by file",
+                        "holds \"{}\", which is not a regular file or a directory (a device, a pipe or a socket, or a link to one); a model directory is copied file by file",
                         entry.file_name().to_string_lossy()
                     ),
                 ));
@@ -72,11 +84,13 @@ impl ModelDir {
         }
         weights.sort();
         others.sort();
+        subdirs.sort();
         match weights.as_slice() {
             [one] => Ok(ModelDir {
                 dir: dir.to_path_buf(),
                 weights: one.clone(),
                 others,
+                subdirs,
             }),
             [] => Err(invalid(
                 dir,
@@ -98,6 +112,29 @@ impl ModelDir {
                 ))
             }
         }
+    }
+
+    /// A warning naming the sub-directories the output leaves out (the first few, then a
+    /// count): the files at the top of a model directory are what posgrid copies.
+    pub fn subdirs_not_copied(&self) -> Option<String> {
+        const LISTED: usize = 8;
+        if self.subdirs.is_empty() {
+            return None;
+        }
+        let mut names: Vec<String> = self
+            .subdirs
+            .iter()
+            .take(LISTED)
+            .map(|n| format!("\"{n}\""))
+            .collect();
+        if self.subdirs.len() > LISTED {
+            names.push(format!("and {} more", self.subdirs.len() - LISTED));
+        }
+        Some(format!(
+            "{}: sub-directories not copied ({}): posgrid copies the files at the top of a model directory; copy them into the output by hand if the model needs them",
+            self.dir.display(),
+            names.join(", ")
+        ))
     }
 
     /// The weights file's name.
@@ -207,6 +244,7 @@ pub fn write_dir(
         size += fill_side_file(&mut file, p, &out.edits, progress)?;
         file.commit()?;
     }
+    warnings.extend(md.subdirs_not_copied());
     // Checked again: OUTDIR may have appeared during the write.
     crate::write::check_destination_model_dir(&md.dir, dest.path, dest.force)?;
     Ok(super::writer::Written {

@@ -198,7 +198,8 @@ impl ShardedSet {
         let mut found: Vec<PathBuf> = fs::read_dir(&self.dir)
             .map_err(|e| Error::read(&self.dir, e))?
             .filter_map(|e| e.ok())
-            .filter(|e| e.file_type().is_ok_and(|t| t.is_file()))
+            // Links count as what they point at (a downloaded model's cache folder).
+            .filter(|e| fs::metadata(e.path()).is_ok_and(|m| m.is_file()))
             .filter(|e| {
                 let n = e.file_name();
                 let text = n.to_string_lossy();
