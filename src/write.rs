@@ -764,7 +764,8 @@ fn input_files(dir: &Path) -> Vec<String> {
     };
     entries
         .flatten()
-        .filter(|e| e.file_type().is_ok_and(|t| t.is_file()))
+        // Links count as what they point at, as when the input directory is read.
+        .filter(|e| fs::metadata(e.path()).is_ok_and(|m| m.is_file()))
         .map(|e| e.file_name().to_string_lossy().into_owned())
         .collect()
 }

@@ -1667,6 +1667,9 @@ fn a_cache_folder_of_links_is_read_through_its_links() {
     let written = std::fs::read_to_string(out.join("config.json")).unwrap();
     assert_eq!(written, VIT_CONFIG.replace("@IMAGE@", "384"));
     assert_eq!(snapshot_bytes(&blobs), before, "the blobs are unchanged");
+    // The output of a folder of links is recognised as posgrid's own by --force.
+    let again = resize(&snapshot, &out, &["--image", "448", "--force"]);
+    assert_eq!(code(&again), 0, "{}", stderr(&again));
 
     for (name, target) in [
         ("dangling.json", "../../blobs/missing"),
