@@ -348,19 +348,8 @@ fn small_config(old_image: &'static str, patch: &'static str) -> Config {
 /// The tensors of a small single-tower model: a 14x14 grid of 16-pixel patches (224 px) and
 /// one class slot.
 fn vit_tensors(seed: u64) -> Vec<T> {
-    vec![
-        floats(
-            "pos_embed",
-            Dtype::F32,
-            &[1, 197, D],
-            &smooth_table(1, 14, 14, D, seed),
-        ),
-        floats(
-            "patch_embed.proj.weight",
-            Dtype::F32,
-            &[D, 3, 16, 16],
-            &noise(D * 768, seed + 1, 0.1),
-        ),
+    let mut tensors = table_and_kernel(14, 16, seed);
+    tensors.extend([
         floats(
             "cls_token",
             Dtype::F32,
@@ -372,6 +361,26 @@ fn vit_tensors(seed: u64) -> Vec<T> {
             Dtype::F32,
             &[2, D],
             &noise(2 * D, seed + 3, 0.1),
+        ),
+    ]);
+    tensors
+}
+
+/// A position table on a `grid`x`grid` grid with one class slot, and a patch kernel of
+/// `patch`-pixel patches beside it.
+fn table_and_kernel(grid: usize, patch: usize, seed: u64) -> Vec<T> {
+    vec![
+        floats(
+            "pos_embed",
+            Dtype::F32,
+            &[1, 1 + grid * grid, D],
+            &smooth_table(1, grid, grid, D, seed),
+        ),
+        floats(
+            "patch_embed.proj.weight",
+            Dtype::F32,
+            &[D, 3, patch, patch],
+            &noise(D * 3 * patch * patch, seed + 1, 0.1),
         ),
     ]
 }
@@ -699,27 +708,12 @@ fn the_text_summary_lists_every_configuration_change() {
 #[test]
 fn pytorch_bin_with_config() {
     let root = tempfile::tempdir().unwrap();
-    let small = write(
-        root.path(),
-        "small.safetensors",
-        &[
-            floats(
-                "pos_embed",
-                Dtype::F32,
-                &[1, 145, D],
-                &smooth_table(1, 12, 12, D, 3),
-            ),
-            floats(
-                "patch_embed.proj.weight",
-                Dtype::F32,
-                &[D, 3, 16, 16],
-                &noise(D * 768, 4, 0.1),
-            ),
-            floats("cls_token", Dtype::F32, &[1, 1, D], &noise(D, 5, 0.1)),
-            floats("head.weight", Dtype::F32, &[2, D], &noise(2 * D, 6, 0.1)),
-        ],
-        None,
-    );
+    let mut tensors = table_and_kernel(12, 16, 3);
+    tensors.extend([
+        floats("cls_token", Dtype::F32, &[1, 1, D], &noise(D, 5, 0.1)),
+        floats("head.weight", Dtype::F32, &[2, D], &noise(2 * D, 6, 0.1)),
+    ]);
+    let small = write(root.path(), "small.safetensors", &tensors, None);
     let pth = root.path().join("made.pth");
     resize_json(&small, &pth, &["--image", "224", "--format", "pytorch"]);
     let dir = model_dir(root.path());
@@ -1501,20 +1495,7 @@ fn a_non_square_new_patch_goes_into_a_pair_or_a_warning() {
 fn the_patch_size_follows_the_kernel_when_the_grid_stays() {
     let root = tempfile::tempdir().unwrap();
     let dir = model_dir(root.path());
-    let tensors = vec![
-        floats(
-            "pos_embed",
-            Dtype::F32,
-            &[1, 257, D],
-            &smooth_table(1, 16, 16, D, 4),
-        ),
-        floats(
-            "patch_embed.proj.weight",
-            Dtype::F32,
-            &[D, 3, 14, 14],
-            &noise(D * 3 * 196, 5, 0.1),
-        ),
-    ];
+    let tensors = table_and_kernel(16, 14, 4);
     write(&dir, "model.safetensors", &tensors, None);
     std::fs::write(dir.join("config.json"), "{\"patch_size\": 14}\n").unwrap();
     let out = root.path().join("out");
