@@ -109,34 +109,7 @@ pub fn run(job: &ResizeJob) -> Result<ResizeReport> {
     let mut plan = plan::build(&source, &found, &job.request)?;
     // Tables the output does not hold are not resized.
     plan.retain(|name| selection::out_name(name, &selection).is_some());
-    let mut report = ResizeReport {
-        input: job.input.clone(),
-        output: job.output.clone(),
-        dry_run: job.dry_run,
-        nothing_to_do: plan.is_noop(),
-        tables: plan.changes.iter().map(|c| c.report()).collect(),
-        already_at_target: plan.already_at_target.clone(),
-        companions: plan.companions(),
-        copied: {
-            let rewritten = plan.new_shapes();
-            source
-                .entries()
-                .iter()
-                .filter(|t| !rewritten.contains_key(t.name.as_str()))
-                .map(|t| t.name.clone())
-                .collect()
-        },
-        bytes_written: 0,
-        output_size: 0,
-        bytes_shared: 0,
-        bytes_copied: 0,
-        shards_rewritten: None,
-        shards_copied: None,
-        map: None,
-        dropped: Vec::new(),
-        config_changes: Vec::new(),
-        warnings: found.warnings.clone(),
-    };
+    let mut report = planned_report(job, &source, &plan, found.warnings.clone());
     if plan.is_noop() {
         return Ok(report);
     }
@@ -147,7 +120,64 @@ pub fn run(job: &ResizeJob) -> Result<ResizeReport> {
         bytes: new_data,
         images,
     } = compute(&source, &plan, job.request.allow_nonfinite)?;
-    for (report_table, (change, images)) in report.tables.iter_mut().zip(&images) {
+    score(&mut report, &images, job);
+    let mut output = output_of(&job.output, &source, &plan, &selection, &new_data);
+    output.edits = update_configs(&source, job, format, &plan, &mut report)?;
+    account_for(&mut report, &source, &output, &plan)?;
+    writer.check(&output)?;
+    let preview = writer.preview(&output)?;
+    report.output_size = preview.size;
+    if let Some(layout) = preview.layout {
+        report.shards_rewritten = Some(layout.rewritten);
+        report.shards_copied = Some(layout.copied);
+    }
+    report.warnings.extend(preview.notes);
+    if job.dry_run {
+        return Ok(report);
+    }
+    let figure = draw_map(job, &images, &mut report.warnings)?;
+    write_and_commit(job, &source, writer.as_ref(), &output, figure, &mut report)?;
+    Ok(report)
+}
+
+/// The report of `plan` before anything is computed or written.
+fn planned_report(
+    job: &ResizeJob,
+    source: &Source,
+    plan: &Plan,
+    warnings: Vec<String>,
+) -> ResizeReport {
+    let rewritten = plan.new_shapes();
+    ResizeReport {
+        input: job.input.clone(),
+        output: job.output.clone(),
+        dry_run: job.dry_run,
+        nothing_to_do: plan.is_noop(),
+        tables: plan.changes.iter().map(|c| c.report()).collect(),
+        already_at_target: plan.already_at_target.clone(),
+        companions: plan.companions(),
+        copied: source
+            .entries()
+            .iter()
+            .filter(|t| !rewritten.contains_key(t.name.as_str()))
+            .map(|t| t.name.clone())
+            .collect(),
+        bytes_written: 0,
+        output_size: 0,
+        bytes_shared: 0,
+        bytes_copied: 0,
+        shards_rewritten: None,
+        shards_copied: None,
+        map: None,
+        dropped: Vec::new(),
+        config_changes: Vec::new(),
+        warnings,
+    }
+}
+
+/// The fidelity of every change with images, or the reason it is not scored.
+fn score(report: &mut ResizeReport, images: &[(&dyn Change, Option<Images>)], job: &ResizeJob) {
+    for (report_table, (change, images)) in report.tables.iter_mut().zip(images) {
         match images {
             Some(Images {
                 unscored: Some(why),
@@ -168,23 +198,6 @@ pub fn run(job: &ResizeJob) -> Result<ResizeReport> {
             None => {}
         }
     }
-    let mut output = output_of(&job.output, &source, &plan, &selection, &new_data);
-    output.edits = update_configs(&source, job, format, &plan, &mut report)?;
-    account_for(&mut report, &source, &output, &plan)?;
-    writer.check(&output)?;
-    let preview = writer.preview(&output)?;
-    report.output_size = preview.size;
-    if let Some(layout) = preview.layout {
-        report.shards_rewritten = Some(layout.rewritten);
-        report.shards_copied = Some(layout.copied);
-    }
-    report.warnings.extend(preview.notes);
-    if job.dry_run {
-        return Ok(report);
-    }
-    let figure = draw_map(job, &images, &mut report.warnings)?;
-    write_and_commit(job, &source, writer.as_ref(), &output, figure, &mut report)?;
-    Ok(report)
 }
 
 /// The output entries: every tensor the selection keeps, under its output name, with its new
