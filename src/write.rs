@@ -658,27 +658,59 @@ fn check_destination_dir_with(
 }
 
 /// `--force` replaces a model directory's output only if it holds nothing but regular files
-/// named like the files of the input directory (what posgrid writes there); anything else is
-/// refused with the reason, and nothing is removed.
+/// and directories named like the files and sub-directories of the input directory, at the
+/// same places (what posgrid writes there); anything else is refused with the reason, and
+/// nothing is removed.
 pub fn recognise_previous_model_dir(output: &Path, input_dir: &Path) -> Result<()> {
-    let copied = input_files(input_dir);
+    recognise_tree(output, output, input_dir, 0)
+}
+
+fn recognise_tree(root: &Path, output: &Path, input_dir: &Path, depth: usize) -> Result<()> {
+    use crate::checkpoint::directory::{HISTORY_DIR, MAX_DEPTH};
+    let (files, dirs) = input_names(input_dir);
     for entry in fs::read_dir(output).map_err(|e| Error::read(output, e))? {
         let entry = entry.map_err(|e| Error::read(output, e))?;
         let name = entry.file_name().to_string_lossy().into_owned();
         let meta = fs::symlink_metadata(entry.path()).map_err(|e| Error::read(output, e))?;
-        let why = if !meta.is_file() {
-            format!("holds \"{name}\", which is {}", kind_name(&meta))
-        } else if !copied.contains(&name) {
-            format!("holds \"{name}\", which is not a file of the input directory")
+        let shown = entry
+            .path()
+            .strip_prefix(root)
+            .map_or(name.clone(), |p| p.display().to_string());
+        let copied_dir = dirs.contains(&name) && name != HISTORY_DIR && depth < MAX_DEPTH;
+        let why = if meta.is_dir() && copied_dir {
+            recognise_tree(root, &entry.path(), &input_dir.join(&name), depth + 1)?;
+            continue;
+        } else if !meta.is_file() {
+            format!("holds \"{shown}\", which is {}", kind_name(&meta))
+        } else if !files.contains(&name) {
+            format!("holds \"{shown}\", which is not a file of the input directory")
         } else {
             continue;
         };
         return Err(Error::write(
-            output,
+            root,
             format!("{why}; --force replaces only a directory that posgrid wrote from this model directory, so it was left as it is"),
         ));
     }
     Ok(())
+}
+
+/// The names of the regular files (links read through) and of the real sub-directories of
+/// `dir`.
+fn input_names(dir: &Path) -> (Vec<String>, Vec<String>) {
+    let (mut files, mut dirs) = (Vec::new(), Vec::new());
+    let Ok(entries) = fs::read_dir(dir) else {
+        return (files, dirs);
+    };
+    for e in entries.flatten() {
+        let name = e.file_name().to_string_lossy().into_owned();
+        if fs::metadata(e.path()).is_ok_and(|m| m.is_file()) {
+            files.push(name);
+        } else if e.file_type().is_ok_and(|t| t.is_dir()) {
+            dirs.push(name);
+        }
+    }
+    (files, dirs)
 }
 
 /// `--force` replaces a directory only if it looks like an earlier output set of posgrid:

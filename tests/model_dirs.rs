@@ -1589,31 +1589,85 @@ fn a_configuration_full_of_disagreements_gives_a_bounded_list_of_warnings() {
     assert_eq!(report["config_changes"][0]["path"], json!(["window_size"]));
 }
 
-/// Sub-directories of a model directory (an exported graph, a tokenizer folder) are not copied:
-/// the report says which, so the user can copy them; the files at the top are all there.
+/// Sub-directories of a model directory (an exported graph, a pooling module's folder) are
+/// copied with everything in them, byte for byte; a repository's history (`.git`) and links to
+/// directories are left out and named in a warning. `--force` recognises the output, nested
+/// directories included, as posgrid's own; a device file deep in the tree is refused by name.
 #[test]
-fn sub_directories_left_out_are_named_in_a_warning() {
+fn sub_directories_are_copied_and_what_is_left_out_is_named() {
     let root = tempfile::tempdir().unwrap();
     let dir = model_dir(root.path());
     write(&dir, "model.safetensors", &vit_tensors(7), None);
     write_side_files(&dir);
-    std::fs::create_dir(dir.join("onnx")).unwrap();
-    std::fs::write(dir.join("onnx").join("model.onnx"), b"graph").unwrap();
-    std::fs::create_dir(dir.join("1_Pooling")).unwrap();
+    let nested = [
+        ("onnx/model.onnx", &b"graph"[..]),
+        ("1_Pooling/config.json", b"{\"image_size\": 224}\n"),
+        ("a/b/c/.hidden", b"deep"),
+        (".git/HEAD", b"ref: refs/heads/main\n"),
+    ];
+    for (rel, bytes) in nested {
+        let path = dir.join(rel);
+        std::fs::create_dir_all(path.parent().unwrap()).unwrap();
+        std::fs::write(path, bytes).unwrap();
+    }
+    std::fs::create_dir(dir.join("empty")).unwrap();
+    std::os::unix::fs::symlink(root.path(), dir.join("elsewhere")).unwrap();
     let out = root.path().join("out");
     let report = resize_json(&dir, &out, &["--image", "384"]);
+    for (rel, bytes) in &nested[..3] {
+        assert_eq!(std::fs::read(out.join(rel)).unwrap(), *bytes, "{rel}");
+    }
+    assert!(out.join("empty").is_dir());
+    assert!(!out.join(".git").exists() && !out.join("elsewhere").exists());
+    // Only the top level's configuration records the model's size.
+    let changed: Vec<&str> = report["config_changes"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .filter_map(|c| c["file"].as_str())
+        .collect();
+    assert!(
+        !changed.iter().any(|f| f.contains("Pooling")),
+        "{changed:?}"
+    );
     let warning = report["warnings"]
         .as_array()
         .unwrap()
         .iter()
         .filter_map(Value::as_str)
-        .find(|w| w.contains("sub-directories not copied"))
+        .find(|w| w.contains("not copied"))
         .unwrap_or_else(|| panic!("no warning: {report}"));
-    assert!(warning.contains("\"1_Pooling\", \"onnx\""), "{warning}");
-    assert!(!out.join("onnx").exists());
-    for name in ["model.safetensors", ".gitattributes", "README.md"] {
-        assert!(out.join(name).is_file(), "{name}");
+    for part in [
+        "\".git\" (a repository's history)",
+        "\"elsewhere\" (a link to a directory)",
+    ] {
+        assert!(warning.contains(part), "{part}: {warning}");
     }
+
+    let again = resize(&dir, &out, &["--image", "448", "--force"]);
+    assert_eq!(code(&again), 0, "{}", stderr(&again));
+    // Something posgrid did not write, deep in the old output: --force leaves it alone.
+    std::fs::write(out.join("a/b/stranger.txt"), b"mine").unwrap();
+    let refused = resize(&dir, &out, &["--image", "448", "--force"]);
+    assert_eq!(code(&refused), 5, "{}", stderr(&refused));
+    assert!(
+        stderr(&refused).contains("a/b/stranger.txt"),
+        "{}",
+        stderr(&refused)
+    );
+    assert!(out.join("a/b/stranger.txt").exists());
+
+    let fifo = dir.join("a/b/pipe");
+    let made = std::process::Command::new("mkfifo")
+        .arg(&fifo)
+        .status()
+        .unwrap();
+    assert!(made.success());
+    let elsewhere = root.path().join("out-2");
+    let o = resize(&dir, &elsewhere, &["--image", "384"]);
+    assert_eq!(code(&o), 3, "{}", stderr(&o));
+    assert!(stderr(&o).contains("\"pipe\""), "{}", stderr(&o));
+    assert!(!elsewhere.exists());
 }
 
 /// A downloaded model's cache folder: every file of the revision's folder is a link to a blob

@@ -1,8 +1,8 @@
 //! Model directories: one checkpoint file (any container posgrid reads) beside its
 //! configuration, preprocessing configuration and other files, as models are usually
 //! distributed. The weights are read like a file; every other regular file of the directory,
-//! hidden ones included, goes to the output directory (configuration files updated to the new
-//! size). A directory with a shard index is a sharded set instead (see `sharded`).
+//! hidden ones included, and its sub-directories go to the output directory (configuration
+//! files at the top updated to the new size). A directory with a shard index is a sharded set instead (see `sharded`).
 
 use std::fs;
 use std::path::{Path, PathBuf};
@@ -20,8 +20,15 @@ const NOT_WEIGHTS: [&str; 5] = [
     "optimizer.bin",
 ];
 
-/// The most entries a model directory may list (bounded work on a hostile directory).
+/// The most entries a model directory may list, sub-directories included (bounded work on a
+/// hostile directory).
 const MAX_ENTRIES: usize = 10_000;
+
+/// Sub-directories deeper than this are not copied (named in a warning).
+pub const MAX_DEPTH: usize = 8;
+
+/// A repository's history: not part of the model, and as large again as its weights.
+pub const HISTORY_DIR: &str = ".git";
 
 /// A model directory: its weights file and the other files beside it.
 #[derive(Debug, Clone)]
@@ -29,68 +36,132 @@ pub struct ModelDir {
     pub dir: PathBuf,
     /// The one checkpoint file.
     pub weights: PathBuf,
-    /// Every other regular file (hidden files included), sorted by name.
+    /// Every other regular file at the top (hidden files included), sorted by name.
     pub others: Vec<PathBuf>,
-    /// Names of the sub-directories, which are not copied (sorted).
-    pub subdirs: Vec<String>,
+    /// Files in sub-directories, with their paths relative to `dir` (copied as they are).
+    pub nested: Vec<(PathBuf, PathBuf)>,
+    /// Sub-directories to make in the output, relative to `dir`, parents first.
+    pub nested_dirs: Vec<PathBuf>,
+    /// Sub-directories not copied, relative to `dir`, with the reason.
+    pub left_out: Vec<(String, &'static str)>,
+}
+
+/// One entry of a directory listing, links read through.
+enum Listed {
+    File(PathBuf),
+    Dir(PathBuf),
+    /// A link to a directory: not followed (it may lead anywhere, or in a loop).
+    LinkedDir,
+}
+
+/// The entries of `dir`, sorted by name, counted against `budget`. Special files are refused.
+fn list(dir: &Path, budget: &mut usize) -> Result<Vec<(String, Listed)>> {
+    let mut out = Vec::new();
+    for entry in fs::read_dir(dir).map_err(|e| Error::read(dir, e))? {
+        if *budget == 0 {
+            return Err(invalid(
+                dir,
+                format!(
+                    "holds more than {MAX_ENTRIES} entries with its sub-directories; name the checkpoint file instead"
+                ),
+            ));
+        }
+        *budget -= 1;
+        let entry = entry.map_err(|e| Error::read(dir, e))?;
+        let path = entry.path();
+        let name = entry.file_name().to_string_lossy().into_owned();
+        let own = entry.file_type().map_err(|e| Error::read(dir, e))?;
+        // A link is taken for what it points at: a downloaded model's cache folder is links
+        // to its files. A dangling link or a loop cannot be read.
+        let kind = match own.is_symlink() {
+            true => fs::metadata(&path)
+                .map_err(|e| Error::read(&path, e))?
+                .file_type(),
+            false => own,
+        };
+        let listed = if kind.is_file() {
+            Listed::File(path)
+        } else if kind.is_dir() && own.is_symlink() {
+            Listed::LinkedDir
+        } else if kind.is_dir() {
+            Listed::Dir(path)
+        } else {
+            return Err(invalid(
+                dir,
+                format!(
+                    "holds \"{name}\", which is not a regular file or a directory (a device, a pipe or a socket, or a link to one); a model directory is copied file by file"
+                ),
+            ));
+        };
+        out.push((name, listed));
+    }
+    out.sort_by(|a, b| a.0.cmp(&b.0));
+    Ok(out)
+}
+
+/// What a model directory's sub-directories hold: the files to copy and the directories to
+/// make (relative paths), and the sub-directories left out.
+#[derive(Default)]
+struct Tree {
+    files: Vec<(PathBuf, PathBuf)>,
+    dirs: Vec<PathBuf>,
+    left_out: Vec<(String, &'static str)>,
+}
+
+impl Tree {
+    /// Take in sub-directory `path` (relative `rel`, at `depth`) and everything below it.
+    fn take(&mut self, path: &Path, rel: PathBuf, depth: usize, budget: &mut usize) -> Result<()> {
+        if rel.file_name() == Some(std::ffi::OsStr::new(HISTORY_DIR)) {
+            let shown = rel.display().to_string();
+            self.left_out.push((shown, "a repository's history"));
+            return Ok(());
+        }
+        if depth > MAX_DEPTH {
+            let why = "deeper than the levels posgrid copies";
+            self.left_out.push((rel.display().to_string(), why));
+            return Ok(());
+        }
+        self.dirs.push(rel.clone());
+        for (name, listed) in list(path, budget)? {
+            match listed {
+                Listed::File(file) => self.files.push((file, rel.join(&name))),
+                Listed::Dir(sub) => self.take(&sub, rel.join(&name), depth + 1, budget)?,
+                Listed::LinkedDir => {
+                    let shown = rel.join(&name).display().to_string();
+                    self.left_out.push((shown, "a link to a directory"));
+                }
+            }
+        }
+        Ok(())
+    }
 }
 
 impl ModelDir {
     /// Find the one checkpoint of `dir`. Refused: no checkpoint, several (listed, with how
-    /// to choose), special files. Links count as what they point at; sub-directories are
-    /// listed, not copied.
+    /// to choose), special files. Links to files count as the files; sub-directories are
+    /// copied (a repository's history, links to directories and trees deeper than
+    /// [`MAX_DEPTH`] are left out and named).
     pub fn find(dir: &Path) -> Result<Self> {
         let mut weights = Vec::new();
         let mut others = Vec::new();
-        let mut subdirs = Vec::new();
-        let listing = fs::read_dir(dir).map_err(|e| Error::read(dir, e))?;
-        for (count, entry) in listing.enumerate() {
-            if count >= MAX_ENTRIES {
-                return Err(invalid(
-                    dir,
-                    format!(
-                        "holds more than {MAX_ENTRIES} entries; name the checkpoint file instead"
-                    ),
-                ));
-            }
-            let entry = entry.map_err(|e| Error::read(dir, e))?;
-            let path = entry.path();
-            let mut kind = entry.file_type().map_err(|e| Error::read(dir, e))?;
-            // A link is taken for what it points at: a downloaded model's cache folder is
-            // links to its files. A dangling link or a loop cannot be read.
-            if kind.is_symlink() {
-                kind = fs::metadata(&path)
-                    .map_err(|e| Error::read(&path, e))?
-                    .file_type();
-            }
-            if kind.is_dir() {
-                subdirs.push(entry.file_name().to_string_lossy().into_owned());
-                continue;
-            }
-            if !kind.is_file() {
-                return Err(invalid(
-                    dir,
-                    format!(
-                        "holds \"{}\", which is not a regular file or a directory (a device, a pipe or a socket, or a link to one); a model directory is copied file by file",
-                        entry.file_name().to_string_lossy()
-                    ),
-                ));
-            }
-            if is_weights(&path) {
-                weights.push(path);
-            } else {
-                others.push(path);
+        let mut tree = Tree::default();
+        let mut budget = MAX_ENTRIES;
+        for (name, listed) in list(dir, &mut budget)? {
+            match listed {
+                Listed::File(path) if is_weights(&path) => weights.push(path),
+                Listed::File(path) => others.push(path),
+                Listed::Dir(path) => tree.take(&path, PathBuf::from(&name), 1, &mut budget)?,
+                Listed::LinkedDir => tree.left_out.push((name, "a link to a directory")),
             }
         }
-        weights.sort();
-        others.sort();
-        subdirs.sort();
         match weights.as_slice() {
             [one] => Ok(ModelDir {
                 dir: dir.to_path_buf(),
                 weights: one.clone(),
                 others,
-                subdirs,
+                nested: tree.files,
+                nested_dirs: tree.dirs,
+                left_out: tree.left_out,
             }),
             [] => Err(invalid(
                 dir,
@@ -114,24 +185,24 @@ impl ModelDir {
         }
     }
 
-    /// A warning naming the sub-directories the output leaves out (the first few, then a
-    /// count): the files at the top of a model directory are what posgrid copies.
-    pub fn subdirs_not_copied(&self) -> Option<String> {
+    /// A warning naming the sub-directories the output leaves out and why (the first few,
+    /// then a count).
+    pub fn left_out_warning(&self) -> Option<String> {
         const LISTED: usize = 8;
-        if self.subdirs.is_empty() {
+        if self.left_out.is_empty() {
             return None;
         }
         let mut names: Vec<String> = self
-            .subdirs
+            .left_out
             .iter()
             .take(LISTED)
-            .map(|n| format!("\"{n}\""))
+            .map(|(n, why)| format!("\"{n}\" ({why})"))
             .collect();
-        if self.subdirs.len() > LISTED {
-            names.push(format!("and {} more", self.subdirs.len() - LISTED));
+        if self.left_out.len() > LISTED {
+            names.push(format!("and {} more", self.left_out.len() - LISTED));
         }
         Some(format!(
-            "{}: sub-directories not copied ({}): posgrid copies the files at the top of a model directory; copy them into the output by hand if the model needs them",
+            "{}: not copied: {}; copy them into the output by hand if the model needs them",
             self.dir.display(),
             names.join(", ")
         ))
@@ -235,16 +306,24 @@ pub fn write_dir(
     let mut warnings = written.warnings;
     // A rename inside the temporary directory: nothing is visible before the directory is.
     warnings.extend(commit_all(vec![written.pending])?);
-    for p in &md.others {
+    for d in &md.nested_dirs {
+        let made = dir.path().join(d);
+        fs::create_dir(&made)
+            .map_err(|e| Error::write(&made, format!("cannot make the directory: {e}")))?;
+    }
+    let top = md.others.iter().map(|p| {
         let name = p.file_name().expect("listed files have names");
+        (p, PathBuf::from(name))
+    });
+    for (p, rel) in top.chain(md.nested.iter().map(|(p, rel)| (p, rel.clone()))) {
         let mut file = AtomicFile::create_with(
-            &dir.path().join(name),
+            &dir.path().join(rel),
             &OutputRules::like(p, dest.sync, false),
         )?;
         size += fill_side_file(&mut file, p, &out.edits, progress)?;
         file.commit()?;
     }
-    warnings.extend(md.subdirs_not_copied());
+    warnings.extend(md.left_out_warning());
     // Checked again: OUTDIR may have appeared during the write.
     crate::write::check_destination_model_dir(&md.dir, dest.path, dest.force)?;
     Ok(super::writer::Written {
