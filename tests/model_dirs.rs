@@ -1603,6 +1603,7 @@ fn sub_directories_are_copied_and_what_is_left_out_is_named() {
         ("onnx/model.onnx", &b"graph"[..]),
         ("1_Pooling/config.json", b"{\"image_size\": 224}\n"),
         ("a/b/c/.hidden", b"deep"),
+        ("checkpoint-500/model.safetensors", b"an earlier checkpoint"),
         (".git/HEAD", b"ref: refs/heads/main\n"),
     ];
     for (rel, bytes) in nested {
@@ -1614,7 +1615,7 @@ fn sub_directories_are_copied_and_what_is_left_out_is_named() {
     std::os::unix::fs::symlink(root.path(), dir.join("elsewhere")).unwrap();
     let out = root.path().join("out");
     let report = resize_json(&dir, &out, &["--image", "384"]);
-    for (rel, bytes) in &nested[..3] {
+    for (rel, bytes) in &nested[..4] {
         assert_eq!(std::fs::read(out.join(rel)).unwrap(), *bytes, "{rel}");
     }
     assert!(out.join("empty").is_dir());
@@ -1643,6 +1644,15 @@ fn sub_directories_are_copied_and_what_is_left_out_is_named() {
     ] {
         assert!(warning.contains(part), "{part}: {warning}");
     }
+    assert!(
+        report["warnings"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .filter_map(Value::as_str)
+            .any(|w| w.contains("at the old size: \"checkpoint-500/model.safetensors\"")),
+        "{report}"
+    );
 
     let again = resize(&dir, &out, &["--image", "448", "--force"]);
     assert_eq!(code(&again), 0, "{}", stderr(&again));

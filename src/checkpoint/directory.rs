@@ -185,27 +185,36 @@ impl ModelDir {
         }
     }
 
-    /// A warning naming the sub-directories the output leaves out and why (the first few,
-    /// then a count).
-    pub fn left_out_warning(&self) -> Option<String> {
-        const LISTED: usize = 8;
-        if self.left_out.is_empty() {
-            return None;
-        }
-        let mut names: Vec<String> = self
+    /// Warnings for what the output does not carry over as the model needs it: sub-directories
+    /// left out (and why), and checkpoint files in sub-directories, copied at the old size
+    /// (a trainer's earlier checkpoints, say).
+    pub fn tree_warnings(&self) -> Vec<String> {
+        let left_out: Vec<String> = self
             .left_out
             .iter()
-            .take(LISTED)
             .map(|(n, why)| format!("\"{n}\" ({why})"))
             .collect();
-        if self.left_out.len() > LISTED {
-            names.push(format!("and {} more", self.left_out.len() - LISTED));
+        let old_size: Vec<String> = self
+            .nested
+            .iter()
+            .filter(|(path, _)| is_weights(path))
+            .map(|(_, rel)| format!("\"{}\"", rel.display()))
+            .collect();
+        let dir = self.dir.display();
+        let mut out = Vec::new();
+        if !left_out.is_empty() {
+            out.push(format!(
+                "{dir}: not copied: {}; copy them into the output by hand if the model needs them",
+                first_few(&left_out)
+            ));
         }
-        Some(format!(
-            "{}: not copied: {}; copy them into the output by hand if the model needs them",
-            self.dir.display(),
-            names.join(", ")
-        ))
+        if !old_size.is_empty() {
+            out.push(format!(
+                "{dir}: checkpoint files in sub-directories are copied as they are, at the old size: {}; resize them on their own if the model uses them",
+                first_few(&old_size)
+            ));
+        }
+        out
     }
 
     /// The weights file's name.
@@ -219,6 +228,16 @@ impl ModelDir {
             .iter()
             .filter(|p| p.extension().is_some_and(|e| e == "json"))
     }
+}
+
+/// The first eight of `items`, then how many more.
+fn first_few(items: &[String]) -> String {
+    const LISTED: usize = 8;
+    let mut shown: Vec<String> = items.iter().take(LISTED).cloned().collect();
+    if items.len() > LISTED {
+        shown.push(format!("and {} more", items.len() - LISTED));
+    }
+    shown.join(", ")
 }
 
 fn is_weights(path: &Path) -> bool {
@@ -323,7 +342,7 @@ pub fn write_dir(
         size += fill_side_file(&mut file, p, &out.edits, progress)?;
         file.commit()?;
     }
-    warnings.extend(md.left_out_warning());
+    warnings.extend(md.tree_warnings());
     // Checked again: OUTDIR may have appeared during the write.
     crate::write::check_destination_model_dir(&md.dir, dest.path, dest.force)?;
     Ok(super::writer::Written {
