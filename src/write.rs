@@ -670,12 +670,14 @@ fn recognise_tree(root: &Path, output: &Path, input_dir: &Path, depth: usize) ->
     let (files, dirs) = input_names(input_dir);
     for entry in fs::read_dir(output).map_err(|e| Error::read(output, e))? {
         let entry = entry.map_err(|e| Error::read(output, e))?;
-        let name = entry.file_name().to_string_lossy().into_owned();
+        let name = entry.file_name();
         let meta = fs::symlink_metadata(entry.path()).map_err(|e| Error::read(output, e))?;
         let shown = entry
             .path()
             .strip_prefix(root)
-            .map_or(name.clone(), |p| p.display().to_string());
+            .map_or(name.to_string_lossy().into_owned(), |p| {
+                p.display().to_string()
+            });
         let copied_dir = dirs.contains(&name) && name != HISTORY_DIR && depth < MAX_DEPTH;
         let why = if meta.is_dir() && copied_dir {
             recognise_tree(root, &entry.path(), &input_dir.join(&name), depth + 1)?;
@@ -696,14 +698,14 @@ fn recognise_tree(root: &Path, output: &Path, input_dir: &Path, depth: usize) ->
 }
 
 /// The names of the regular files (links read through) and of the real sub-directories of
-/// `dir`.
-fn input_names(dir: &Path) -> (Vec<String>, Vec<String>) {
+/// `dir`, as the file system spells them.
+fn input_names(dir: &Path) -> (Vec<std::ffi::OsString>, Vec<std::ffi::OsString>) {
     let (mut files, mut dirs) = (Vec::new(), Vec::new());
     let Ok(entries) = fs::read_dir(dir) else {
         return (files, dirs);
     };
     for e in entries.flatten() {
-        let name = e.file_name().to_string_lossy().into_owned();
+        let name = e.file_name();
         if fs::metadata(e.path()).is_ok_and(|m| m.is_file()) {
             files.push(name);
         } else if e.file_type().is_ok_and(|t| t.is_dir()) {

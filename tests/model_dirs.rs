@@ -1613,12 +1613,16 @@ fn sub_directories_are_copied_and_what_is_left_out_is_named() {
     }
     std::fs::create_dir(dir.join("empty")).unwrap();
     std::os::unix::fs::symlink(root.path(), dir.join("elsewhere")).unwrap();
+    // A name that is not UTF-8 keeps its bytes.
+    let odd: &std::ffi::OsStr = std::os::unix::ffi::OsStrExt::from_bytes(b"w\xff.bin");
+    std::fs::write(dir.join("onnx").join(odd), b"odd").unwrap();
     let out = root.path().join("out");
     let report = resize_json(&dir, &out, &["--image", "384"]);
     for (rel, bytes) in &nested[..4] {
         assert_eq!(std::fs::read(out.join(rel)).unwrap(), *bytes, "{rel}");
     }
     assert!(out.join("empty").is_dir());
+    assert_eq!(std::fs::read(out.join("onnx").join(odd)).unwrap(), b"odd");
     assert!(!out.join(".git").exists() && !out.join("elsewhere").exists());
     // Only the top level's configuration records the model's size.
     let changed: Vec<&str> = report["config_changes"]

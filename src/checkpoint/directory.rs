@@ -54,8 +54,9 @@ enum Listed {
     LinkedDir,
 }
 
-/// The entries of `dir`, sorted by name, counted against `budget`. Special files are refused.
-fn list(dir: &Path, budget: &mut usize) -> Result<Vec<(String, Listed)>> {
+/// The entries of `dir` by name (as the file system spells it: not always UTF-8), sorted,
+/// counted against `budget`. Special files are refused.
+fn list(dir: &Path, budget: &mut usize) -> Result<Vec<(std::ffi::OsString, Listed)>> {
     let mut out = Vec::new();
     for entry in fs::read_dir(dir).map_err(|e| Error::read(dir, e))? {
         if *budget == 0 {
@@ -69,7 +70,7 @@ fn list(dir: &Path, budget: &mut usize) -> Result<Vec<(String, Listed)>> {
         *budget -= 1;
         let entry = entry.map_err(|e| Error::read(dir, e))?;
         let path = entry.path();
-        let name = entry.file_name().to_string_lossy().into_owned();
+        let name = entry.file_name();
         let own = entry.file_type().map_err(|e| Error::read(dir, e))?;
         // A link is taken for what it points at: a downloaded model's cache folder is links
         // to its files. A dangling link or a loop cannot be read.
@@ -89,7 +90,8 @@ fn list(dir: &Path, budget: &mut usize) -> Result<Vec<(String, Listed)>> {
             return Err(invalid(
                 dir,
                 format!(
-                    "holds \"{name}\", which is not a regular file or a directory (a device, a pipe or a socket, or a link to one); a model directory is copied file by file"
+                    "holds \"{}\", which is not a regular file or a directory (a device, a pipe or a socket, or a link to one); a model directory is copied file by file",
+                    name.to_string_lossy()
                 ),
             ));
         };
@@ -151,7 +153,9 @@ impl ModelDir {
                 Listed::File(path) if is_weights(&path) => weights.push(path),
                 Listed::File(path) => others.push(path),
                 Listed::Dir(path) => tree.take(&path, PathBuf::from(&name), 1, &mut budget)?,
-                Listed::LinkedDir => tree.left_out.push((name, "a link to a directory")),
+                Listed::LinkedDir => tree
+                    .left_out
+                    .push((name.to_string_lossy().into_owned(), "a link to a directory")),
             }
         }
         match weights.as_slice() {
