@@ -471,6 +471,24 @@ fn resize(input: &Path, out: &Path, extra: &[&str]) -> Output {
     posgrid(&args)
 }
 
+/// The warnings of a report.
+fn warnings(report: &Value) -> Vec<&str> {
+    report["warnings"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .filter_map(Value::as_str)
+        .collect()
+}
+
+/// The first warning of `report` that `matches`; the test fails, showing the report, if none.
+fn warning(report: &Value, matches: impl Fn(&str) -> bool) -> &str {
+    warnings(report)
+        .into_iter()
+        .find(|w| matches(w))
+        .unwrap_or_else(|| panic!("no such warning: {report}"))
+}
+
 /// A run that must succeed with `--json`: its report.
 fn resize_json(input: &Path, out: &Path, extra: &[&str]) -> Value {
     let mut args = vec!["--json"];
@@ -573,12 +591,12 @@ fn check_directory_with(
         "config_changes"
     );
     // Problems with a configuration file are warnings that start with its name.
-    let warnings = report["warnings"].as_array().unwrap();
+    let all = warnings(&report);
     for config in configs {
         let prefix = format!("{}:", config.file);
-        let about: Vec<&str> = warnings
+        let about: Vec<&str> = all
             .iter()
-            .filter_map(Value::as_str)
+            .copied()
             .filter(|w| w.starts_with(&prefix))
             .collect();
         if config.warns.is_empty() {
@@ -895,14 +913,7 @@ fn a_recorded_size_that_disagrees_with_the_checkpoint_is_a_warning() {
     let o = resize(&dir, &out, &["--image", "384", "--json"]);
     assert_eq!(code(&o), 0, "{}", stderr(&o));
     let report: Value = serde_json::from_slice(&o.stdout).unwrap();
-    let warning = report["warnings"]
-        .as_array()
-        .unwrap()
-        .iter()
-        .filter_map(Value::as_str)
-        .find(|w| w.contains("config.json"))
-        .unwrap_or_else(|| panic!("no warning: {report}"))
-        .to_string();
+    let warning = warning(&report, |w| w.contains("config.json")).to_string();
     for part in ["image_size", "256", "224", "14x14", "16"] {
         assert!(warning.contains(part), "{part}: {warning}");
     }
@@ -911,14 +922,7 @@ fn a_recorded_size_that_disagrees_with_the_checkpoint_is_a_warning() {
     // With --keep-config the warning stays and the file is untouched.
     let kept = root.path().join("kept");
     let report = resize_json(&dir, &kept, &["--image", "384", "--keep-config"]);
-    assert!(
-        report["warnings"]
-            .as_array()
-            .unwrap()
-            .iter()
-            .any(|w| w.as_str() == Some(warning.as_str())),
-        "{report}"
-    );
+    assert!(warnings(&report).contains(&warning.as_str()), "{report}");
     assert_eq!(
         std::fs::read(kept.join("config.json")).unwrap(),
         vit_config("256").before().as_bytes()
@@ -1077,18 +1081,9 @@ fn a_file_output_from_a_directory_warns_that_the_configs_keep_the_old_size() {
     assert_eq!(entries(root.path()), ["model", "out.safetensors"]);
     check_safetensors(&weights, &out, "pos_embed", &[1, 577, D], &[]);
     assert_eq!(report["config_changes"], json!([]));
-    let warnings: Vec<&str> = report["warnings"]
-        .as_array()
-        .unwrap()
-        .iter()
-        .filter_map(Value::as_str)
-        .collect();
-    assert!(
-        warnings.iter().any(|w| w.contains("config.json")
-            && w.contains("old input size")
-            && w.contains("directory")),
-        "{warnings:?}"
-    );
+    warning(&report, |w| {
+        w.contains("config.json") && w.contains("old input size") && w.contains("directory")
+    });
     assert_eq!(snapshot(&dir), before);
 }
 
@@ -1101,11 +1096,8 @@ fn a_single_file_with_a_config_beside_it_warns() {
     // Control: no configuration beside it, no such warning.
     let report = resize_json(&weights, &out, &["--image", "384"]);
     let mentions_old_size = |r: &Value| {
-        r["warnings"]
-            .as_array()
-            .unwrap()
+        warnings(r)
             .iter()
-            .filter_map(Value::as_str)
             .any(|w| w.contains("config.json") && w.contains("old input size"))
     };
     assert!(!mentions_old_size(&report), "{report}");
@@ -1127,15 +1119,9 @@ fn a_file_output_from_a_sharded_set_warns_that_the_configs_keep_the_old_size() {
     let out = root.path().join("out.safetensors");
     let report = resize_json(&dir, &out, &["--image", "384"]);
     assert!(out.is_file());
-    assert!(
-        report["warnings"]
-            .as_array()
-            .unwrap()
-            .iter()
-            .filter_map(Value::as_str)
-            .any(|w| w.contains("config.json") && w.contains("old input size")),
-        "{report}"
-    );
+    warning(&report, |w| {
+        w.contains("config.json") && w.contains("old input size")
+    });
 }
 
 #[test]
@@ -1391,13 +1377,7 @@ fn a_window_size_that_disagrees_or_cannot_hold_the_window_is_a_warning() {
         let out = root.path().join("out");
         let report = resize_json(&dir, &out, &["--image", "224", "--window", args]);
         assert_eq!(report["config_changes"], json!([]));
-        let warning = report["warnings"]
-            .as_array()
-            .unwrap()
-            .iter()
-            .filter_map(Value::as_str)
-            .find(|w| w.starts_with("config.json:"))
-            .unwrap_or_else(|| panic!("no warning: {report}"));
+        let warning = warning(&report, |w| w.starts_with("config.json:"));
         for part in parts {
             assert!(warning.contains(part), "{part}: {warning}");
         }
@@ -1478,11 +1458,9 @@ fn a_non_square_new_patch_goes_into_a_pair_or_a_warning() {
         assert_eq!(written["patch_size"], patch, "{recorded}: {report}");
         assert_eq!(written["image_size"], image, "{recorded}: {report}");
         if recorded == "16" {
-            let warned = report["warnings"].as_array().unwrap().iter().any(|w| {
-                let w = w.as_str().unwrap();
+            warning(&report, |w| {
                 w.starts_with("config.json:") && w.contains("patch_size") && w.contains("16x14")
             });
-            assert!(warned, "{report}");
         }
     }
 }
@@ -1574,11 +1552,8 @@ fn a_configuration_full_of_disagreements_gives_a_bounded_list_of_warnings() {
     std::fs::write(dir.join("config.json"), &text).unwrap();
     let out = root.path().join("out");
     let report = resize_json(&dir, &out, &["--image", "224", "--window", "12"]);
-    let about_config: Vec<&str> = report["warnings"]
-        .as_array()
-        .unwrap()
-        .iter()
-        .filter_map(Value::as_str)
+    let about_config: Vec<&str> = warnings(&report)
+        .into_iter()
         .filter(|w| w.starts_with("config.json:"))
         .collect();
     assert!(about_config.len() <= 9, "{}", about_config.len());
@@ -1635,28 +1610,16 @@ fn sub_directories_are_copied_and_what_is_left_out_is_named() {
         !changed.iter().any(|f| f.contains("Pooling")),
         "{changed:?}"
     );
-    let warning = report["warnings"]
-        .as_array()
-        .unwrap()
-        .iter()
-        .filter_map(Value::as_str)
-        .find(|w| w.contains("not copied"))
-        .unwrap_or_else(|| panic!("no warning: {report}"));
+    let left_out = warning(&report, |w| w.contains("not copied"));
     for part in [
         "\".git\" (a repository's history)",
         "\"elsewhere\" (a link to a directory)",
     ] {
-        assert!(warning.contains(part), "{part}: {warning}");
+        assert!(left_out.contains(part), "{part}: {left_out}");
     }
-    assert!(
-        report["warnings"]
-            .as_array()
-            .unwrap()
-            .iter()
-            .filter_map(Value::as_str)
-            .any(|w| w.contains("at the old size: \"checkpoint-500/model.safetensors\"")),
-        "{report}"
-    );
+    warning(&report, |w| {
+        w.contains("at the old size: \"checkpoint-500/model.safetensors\"")
+    });
 
     let again = resize(&dir, &out, &["--image", "448", "--force"]);
     assert_eq!(code(&again), 0, "{}", stderr(&again));
