@@ -2,6 +2,7 @@
 
 mod common;
 
+use common::golden::Golden;
 use common::*;
 use posgrid::checkpoint::{Checkpoint, TensorSource};
 use safetensors::Dtype;
@@ -100,11 +101,9 @@ fn channels_last_kernels_take_non_square_patches_the_right_way_round() {
 /// interpolate with antialias=True, ŵ by numpy's pinv).
 #[test]
 fn shrunk_kernels_use_the_framework_antialiased_resize() {
-    let path = std::path::Path::new(env!("CARGO_MANIFEST_DIR"))
-        .join("fixtures/golden/patch_cases.safetensors");
-    let golden = Checkpoint::open(&path).unwrap();
-    let w = values(&golden, "bilinear_aa_8_6.w");
-    let expected = values(&golden, "bilinear_aa_8_6.w_new");
+    let golden = Golden::open("fixtures/golden/patch_cases.safetensors");
+    let w = golden.read_f64("bilinear_aa_8_6.w").0;
+    let expected = golden.read_f64("bilinear_aa_8_6.w_new").0;
     let count = w.len() / 64;
     let got = resized_kernel(
         &[count, 1, 8, 8],
@@ -124,31 +123,17 @@ fn shrunk_kernels_use_the_framework_antialiased_resize() {
 /// both flattening orders and both storages, checked there against the framework's convolution,
 /// unfold and a channels-last flatten; their pseudo-inverse resizes by numpy's pinv; random
 /// patches resized by the framework's interpolate, with the old outputs.
-struct LinearGolden {
-    ckpt: Checkpoint,
-    cases: Vec<serde_json::Value>,
+fn linear_golden() -> Golden {
+    Golden::open("fixtures/golden/linear_patch_cases.safetensors")
 }
 
-impl LinearGolden {
-    fn open() -> Self {
-        let path = std::path::Path::new(env!("CARGO_MANIFEST_DIR"))
-            .join("fixtures/golden/linear_patch_cases.safetensors");
-        let ckpt = Checkpoint::open(&path).unwrap();
-        let meta = ckpt.header().metadata.clone().unwrap_or_default();
-        let cases = &meta.iter().find(|(k, _)| k == "cases").unwrap().1;
-        let cases = serde_json::from_str(cases).unwrap();
-        LinearGolden { ckpt, cases }
-    }
+/// Tensor `what` of `case` and its shape.
+fn get(golden: &Golden, case: &serde_json::Value, what: &str) -> (Vec<f64>, Vec<usize>) {
+    golden.read_f64(&format!("{}.{what}", case["name"].as_str().unwrap()))
+}
 
-    fn get(&self, case: &serde_json::Value, what: &str) -> (Vec<f64>, Vec<usize>) {
-        let name = format!("{}.{what}", case["name"].as_str().unwrap());
-        let shape = self.ckpt.find(&name).unwrap().shape.clone();
-        (values(&self.ckpt, &name), shape)
-    }
-
-    fn case(&self, name: &str) -> &serde_json::Value {
-        self.cases.iter().find(|c| c["name"] == name).unwrap()
-    }
+fn case_named<'a>(golden: &'a Golden, name: &str) -> &'a serde_json::Value {
+    golden.cases.iter().find(|c| c["name"] == name).unwrap()
 }
 
 fn side(case: &serde_json::Value, key: &str) -> usize {
@@ -166,11 +151,11 @@ fn embedding_name(case: &serde_json::Value) -> &'static str {
 
 /// Resize the case's embedding with a 4x4 grid of the new patch; the new matrix and the report.
 fn resize_linear(
-    golden: &LinearGolden,
+    golden: &Golden,
     case: &serde_json::Value,
     extra: &[&str],
 ) -> (std::process::Output, Option<Vec<f64>>) {
-    let (w, shape) = golden.get(case, "w");
+    let (w, shape) = get(golden, case, "w");
     let image = (4 * side(case, "to")).to_string();
     let new_patch = side(case, "to").to_string();
     let mut args = vec!["--image", &image, "--new-patch", &new_patch, "--json"];
@@ -218,7 +203,7 @@ fn project(x: &[f64], w: &[f64], inputs: usize, dim: usize, out_in: bool) -> Vec
 /// (the 1e-5).
 #[test]
 fn linear_embeddings_match_numpy_and_project_resized_patches_as_before() {
-    let golden = LinearGolden::open();
+    let golden = linear_golden();
     let mut checked = 0;
     // The square case holds every principal component, so no order is smoother: read apart.
     let smooth = |c: &&serde_json::Value| {
@@ -228,7 +213,7 @@ fn linear_embeddings_match_numpy_and_project_resized_patches_as_before() {
         let (o, got) = resize_linear(&golden, case, &[]);
         assert_eq!(code(&o), 0, "{}: {}", case["name"], stderr(&o));
         let got = got.unwrap();
-        let (expected, _) = golden.get(case, "w_new");
+        let (expected, _) = get(&golden, case, "w_new");
         let err = worst_relative(&got, &expected);
         assert!(
             err <= 1e-6,
@@ -244,8 +229,8 @@ fn linear_embeddings_match_numpy_and_project_resized_patches_as_before() {
             .unwrap();
         assert_eq!(change["method"], "pseudo-inverse");
         if side(case, "to") > side(case, "from") {
-            let (bx, _) = golden.get(case, "bx");
-            let (y, _) = golden.get(case, "y");
+            let (bx, _) = get(&golden, case, "bx");
+            let (y, _) = get(&golden, case, "y");
             let inputs = 3 * side(case, "to") * side(case, "to");
             let projected = project(
                 &bx,
@@ -266,15 +251,15 @@ fn linear_embeddings_match_numpy_and_project_resized_patches_as_before() {
 /// that settles it, nothing is written; with the flag it is resized as numpy's pinv says.
 #[test]
 fn an_unclear_flattening_order_needs_the_flag() {
-    let golden = LinearGolden::open();
-    let case = golden.case("noise_out_in_8_12");
+    let golden = linear_golden();
+    let case = case_named(&golden, "noise_out_in_8_12");
     let (o, got) = resize_linear(&golden, case, &[]);
     assert_ne!(code(&o), 0, "{}", String::from_utf8_lossy(&o.stdout));
     assert!(stderr(&o).contains("--patch-order"), "{}", stderr(&o));
     assert!(got.is_none());
     let (o, got) = resize_linear(&golden, case, &["--patch-order", "cyx"]);
     assert_eq!(code(&o), 0, "{}", stderr(&o));
-    let (expected, _) = golden.get(case, "w_new");
+    let (expected, _) = get(&golden, case, "w_new");
     let err = worst_relative(&got.unwrap(), &expected);
     assert!(err <= 1e-6, "{err:.1e}");
 }
@@ -319,16 +304,16 @@ fn a_new_patch_without_a_kernel_is_refused() {
 /// principal components, so the order is given by the flag) read both ways gives numpy's result.
 #[test]
 fn square_linear_embeddings_are_read_by_their_name() {
-    let golden = LinearGolden::open();
-    let case = golden.case("square_yxc_out_in_4_6");
-    let (expected, _) = golden.get(case, "w_new");
+    let golden = linear_golden();
+    let case = case_named(&golden, "square_yxc_out_in_4_6");
+    let (expected, _) = get(&golden, case, "w_new");
     let (o, got) = resize_linear(&golden, case, &["--patch-order", "yxc"]);
     assert_eq!(code(&o), 0, "{}", stderr(&o));
     let err = worst_relative(&got.unwrap(), &expected);
     assert!(err <= 1e-6, "as a weight: {err:.1e}");
 
     // The same matrix stored [in, out] under a dense layer's name.
-    let (w, _) = golden.get(case, "w");
+    let (w, _) = get(&golden, case, "w");
     let (dim, inputs) = (48, 48);
     let transpose = |v: &[f64], rows: usize, cols: usize| -> Vec<f64> {
         (0..v.len())
@@ -358,11 +343,9 @@ fn square_linear_embeddings_are_read_by_their_name() {
 /// at its target).
 #[test]
 fn new_patch_kernels_match_the_pseudo_inverse_of_numpy() {
-    let path = std::path::Path::new(env!("CARGO_MANIFEST_DIR"))
-        .join("fixtures/golden/patch_cases.safetensors");
-    let golden = Checkpoint::open(&path).unwrap();
-    let w = values(&golden, "bilinear_14_16.w");
-    let expected = values(&golden, "bilinear_14_16.w_new");
+    let golden = Golden::open("fixtures/golden/patch_cases.safetensors");
+    let w = golden.read_f64("bilinear_14_16.w").0;
+    let expected = golden.read_f64("bilinear_14_16.w_new").0;
     let count = w.len() / (14 * 14);
     let args = ["--image", "64", "--new-patch", "16", "--json"];
     for channels_last_layout in [false, true] {

@@ -8,67 +8,42 @@
 //!   otherwise, and the four Penrose conditions for a rank-deficient B;
 //! - the definition of B itself: the engine's 2-D resampling of each basis image.
 
-use posgrid::checkpoint::Checkpoint;
+mod common;
+
+use common::golden::Golden;
 use posgrid::rebuild::patch_kernel::{
     default_options, projector, rank, resize_kernels, resize_matrix, PatchKernelError,
     MAX_PATCH_SIDE,
 };
 use posgrid::resample::{resample, Antialias, Coords, Edges, Kernel, Options, ResampleError};
-use posgrid::values::{decode_f64, decode_ints};
+use posgrid::values::decode_ints;
 use serde_json::Value;
 
 const GOLDEN: &str = "fixtures/golden/patch_cases.safetensors";
 
 type Sides = (usize, usize);
 
-struct Golden {
-    ckpt: Checkpoint,
-    cases: Vec<Value>,
+/// A stored tensor of integers, as indices.
+fn ints(golden: &Golden, name: &str) -> Vec<usize> {
+    let (bytes, t) = golden.raw(name);
+    let values = decode_ints(t.dtype, &bytes).unwrap();
+    values.into_iter().map(|v| v as usize).collect()
 }
 
-impl Golden {
-    fn open() -> Self {
-        let ckpt = Checkpoint::open(GOLDEN).unwrap();
-        let meta = ckpt.metadata().unwrap();
-        let cases_json = &meta.iter().find(|(k, _)| k == "cases").unwrap().1;
-        let cases = serde_json::from_str(cases_json).unwrap();
-        Golden { ckpt, cases }
-    }
-
-    fn bytes(&self, name: &str) -> (Vec<u8>, posgrid::checkpoint::TensorEntry) {
-        let t = self
-            .ckpt
-            .tensor(name)
-            .unwrap_or_else(|| panic!("{name} missing from {GOLDEN}"));
-        (self.ckpt.read_bytes(t).unwrap(), t.clone())
-    }
-
-    fn floats(&self, name: &str) -> Vec<f64> {
-        let (bytes, t) = self.bytes(name);
-        decode_f64(t.dtype, &bytes).unwrap()
-    }
-
-    fn ints(&self, name: &str) -> Vec<usize> {
-        let (bytes, t) = self.bytes(name);
-        let values = decode_ints(t.dtype, &bytes).unwrap();
-        values.into_iter().map(|v| v as usize).collect()
-    }
-
-    /// The case's B, dense row-major, from its compressed rows.
-    fn resize_matrix(&self, case: &Case) -> Vec<f64> {
-        let ptr = self.ints(&format!("{}.b_ptr", case.name));
-        let col = self.ints(&format!("{}.b_col", case.name));
-        let val = self.floats(&format!("{}.b_val", case.name));
-        let (rows, cols) = case.dims();
-        assert_eq!(ptr.len(), rows + 1, "{}: row pointers", case.name);
-        let mut b = vec![0.0; rows * cols];
-        for r in 0..rows {
-            for k in ptr[r]..ptr[r + 1] {
-                b[r * cols + col[k]] = val[k];
-            }
+/// The case's B, dense row-major, from its compressed rows.
+fn golden_matrix(golden: &Golden, case: &Case) -> Vec<f64> {
+    let ptr = ints(golden, &format!("{}.b_ptr", case.name));
+    let col = ints(golden, &format!("{}.b_col", case.name));
+    let (val, _) = golden.read_f64(&format!("{}.b_val", case.name));
+    let (rows, cols) = case.dims();
+    assert_eq!(ptr.len(), rows + 1, "{}: row pointers", case.name);
+    let mut b = vec![0.0; rows * cols];
+    for r in 0..rows {
+        for k in ptr[r]..ptr[r + 1] {
+            b[r * cols + col[k]] = val[k];
         }
-        b
     }
+    b
 }
 
 struct Case {
@@ -131,7 +106,7 @@ impl Case {
 }
 
 fn golden_cases() -> (Golden, Vec<Case>) {
-    let golden = Golden::open();
+    let golden = Golden::open(GOLDEN);
     let cases = golden.cases.iter().map(Case::of).collect();
     (golden, cases)
 }
@@ -155,7 +130,7 @@ fn resize_matrix_matches_the_framework_interpolate() {
     let (golden, cases) = golden_cases();
     for case in &cases {
         let ours = resize_matrix(case.from, case.to, &case.opts).unwrap();
-        let theirs = golden.resize_matrix(case);
+        let theirs = golden_matrix(&golden, case);
         let worst = ours
             .iter()
             .zip(&theirs)
@@ -170,8 +145,8 @@ fn resize_matrix_matches_the_framework_interpolate() {
 fn resized_kernels_match_numpy_pinv() {
     let (golden, cases) = golden_cases();
     for case in &cases {
-        let w = golden.floats(&format!("{}.w", case.name));
-        let expected = golden.floats(&format!("{}.w_new", case.name));
+        let w = golden.read_f64(&format!("{}.w", case.name)).0;
+        let expected = golden.read_f64(&format!("{}.w_new", case.name)).0;
         let count = w.len() / case.dims().1;
         let got = resize_kernels(&w, count, case.from, case.to, &case.opts).unwrap();
         let err = relative_error(&got, &expected);
@@ -186,7 +161,7 @@ fn projector_matches_numpy_pinv() {
     let stored: Vec<&Case> = cases.iter().filter(|c| c.projector).collect();
     assert_eq!(stored.len(), 2);
     for case in stored {
-        let expected = golden.floats(&format!("{}.projector", case.name));
+        let expected = golden.read_f64(&format!("{}.projector", case.name)).0;
         let got = projector(case.from, case.to, &case.opts).unwrap();
         let err = relative_error(&got, &expected);
         assert!(

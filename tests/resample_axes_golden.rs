@@ -8,37 +8,13 @@
 //!
 //! Tolerance: 1e-5 of the largest |value| of the reference output.
 
-use posgrid::checkpoint::Checkpoint;
-use posgrid::resample::{resample_grid, Antialias, Coords, Edges, Kernel, Options};
-use posgrid::values::decode_f32;
+mod common;
+
+use common::golden::{case_options, Golden};
+use posgrid::resample::resample_grid;
 use serde_json::Value;
 
 const GOLDEN: &str = "fixtures/golden/axes_cases.safetensors";
-
-struct Golden {
-    ckpt: Checkpoint,
-    cases: Vec<Value>,
-}
-
-impl Golden {
-    fn open() -> Self {
-        let ckpt = Checkpoint::open(GOLDEN).unwrap();
-        let meta = ckpt.metadata().unwrap();
-        let cases_json = &meta.iter().find(|(k, _)| k == "cases").unwrap().1;
-        let cases = serde_json::from_str(cases_json).unwrap();
-        Golden { ckpt, cases }
-    }
-
-    /// A stored tensor's values and shape.
-    fn read(&self, name: &str) -> (Vec<f32>, Vec<usize>) {
-        let t = self
-            .ckpt
-            .tensor(name)
-            .unwrap_or_else(|| panic!("{name} missing from {GOLDEN}"));
-        let bytes = self.ckpt.read_bytes(t).unwrap();
-        (decode_f32(t.dtype, &bytes).unwrap(), t.shape.clone())
-    }
-}
 
 fn sizes(case: &Value, key: &str) -> Vec<usize> {
     case[key]
@@ -47,34 +23,6 @@ fn sizes(case: &Value, key: &str) -> Vec<usize> {
         .iter()
         .map(|v| v.as_u64().unwrap() as usize)
         .collect()
-}
-
-/// The options a case's reference call was made with, in posgrid's words. The framework's
-/// 'linear' and 'trilinear' are the linear kernel on each axis.
-fn options_of(case: &Value) -> Options {
-    Options {
-        kernel: match case["mode"].as_str().unwrap() {
-            "linear" | "trilinear" => Kernel::Bilinear,
-            "cubic" => Kernel::Bicubic,
-            m => panic!("mode {m}"),
-        },
-        coords: match case["coordinate_transformation_mode"].as_str().unwrap() {
-            "half_pixel" => Coords::HalfPixel,
-            "align_corners" => Coords::AlignCorners,
-            c => panic!("coords {c}"),
-        },
-        edges: if case["exclude_outside"] == 1 {
-            Edges::Renormalize
-        } else {
-            Edges::Clamp
-        },
-        antialias: if case["antialias"] == 1 {
-            Antialias::On
-        } else {
-            Antialias::Off
-        },
-        cubic_a: case["cubic_coeff_a"].as_f64().unwrap(),
-    }
 }
 
 /// The worst error of one case relative to the largest |value| of its reference output.
@@ -87,7 +35,7 @@ fn check_case(golden: &Golden, case: &Value) -> f64 {
     let d = *in_shape.last().unwrap();
     assert_eq!(in_shape[..from.len()], from[..], "{name}: input shape");
     assert_eq!(out_shape[..to.len()], to[..], "{name}: output shape");
-    let got = resample_grid(&input, &from, d, &to, &options_of(case)).unwrap();
+    let got = resample_grid(&input, &from, d, &to, &case_options(case)).unwrap();
     assert_eq!(got.len(), expected.len(), "{name} ({source}): size");
     let scale = expected.iter().fold(0.0f64, |m, v| m.max(v.abs() as f64));
     let mut worst = 0.0f64;
@@ -104,7 +52,7 @@ fn check_case(golden: &Golden, case: &Value) -> f64 {
 
 /// Every case of one reference and grid rank; returns how many there were.
 fn check_all(source: &str, rank: usize) -> usize {
-    let golden = Golden::open();
+    let golden = Golden::open(GOLDEN);
     let chosen: Vec<&Value> = golden
         .cases
         .iter()
@@ -146,6 +94,6 @@ fn three_axes_match_the_framework_trilinear_interpolate() {
 
 #[test]
 fn the_golden_file_holds_only_one_and_three_axis_cases() {
-    let golden = Golden::open();
+    let golden = Golden::open(GOLDEN);
     assert_eq!(golden.cases.len(), 28 + 7 + 14 + 6);
 }

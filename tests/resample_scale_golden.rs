@@ -17,56 +17,18 @@
 //! The properties at the end are checked against the engine's own size-based path, whose
 //! golden files are tests/resample_golden.rs and tests/resample_axes_golden.rs.
 
-use posgrid::checkpoint::Checkpoint;
+mod common;
+
+use common::golden::{case_options, Golden};
 use posgrid::resample::weights::{source_coordinate, source_coordinate_mapped};
 use posgrid::resample::{
     resample_grid, resample_grid_scaled, scaled_side, try_axis_weights, try_axis_weights_mapped,
     Antialias, Coords, Edges, Kernel, Options, ResampleError, ScaleProblem,
 };
-use posgrid::values::decode_f32;
 use proptest::prelude::*;
 use serde_json::Value;
 
 const GOLDEN: &str = "fixtures/golden/scale_cases.safetensors";
-
-struct Golden {
-    ckpt: Checkpoint,
-    meta: Vec<(String, String)>,
-    cases: Vec<Value>,
-}
-
-impl Golden {
-    fn open() -> Self {
-        let ckpt = Checkpoint::open(GOLDEN).unwrap();
-        let meta = ckpt.metadata().unwrap().to_vec();
-        let mut golden = Golden {
-            ckpt,
-            meta,
-            cases: Vec::new(),
-        };
-        golden.cases = serde_json::from_str(&golden.meta_text("cases")).unwrap();
-        golden
-    }
-
-    fn meta_text(&self, key: &str) -> String {
-        let found = self.meta.iter().find(|(k, _)| k == key);
-        found.unwrap_or_else(|| panic!("{key} missing")).1.clone()
-    }
-
-    fn meta_json(&self, key: &str) -> Value {
-        serde_json::from_str(&self.meta_text(key)).unwrap()
-    }
-
-    /// A stored tensor's values and shape.
-    fn read(&self, name: &str) -> (Vec<f32>, Vec<usize>) {
-        let t = self
-            .ckpt
-            .tensor(name)
-            .unwrap_or_else(|| panic!("{name} missing from {GOLDEN}"));
-        let bytes = self.ckpt.read_bytes(t).unwrap();
-        (decode_f32(t.dtype, &bytes).unwrap(), t.shape.clone())
-    }
-}
 
 fn sizes(case: &Value, key: &str) -> Vec<usize> {
     let list = case[key].as_array().unwrap();
@@ -93,33 +55,6 @@ fn scales_meant(case: &Value) -> Vec<f64> {
         .collect()
 }
 
-/// The options a case's reference call was made with, in posgrid's words.
-fn options_of(case: &Value) -> Options {
-    Options {
-        kernel: match case["mode"].as_str().unwrap() {
-            "linear" | "bilinear" => Kernel::Bilinear,
-            "cubic" | "bicubic" => Kernel::Bicubic,
-            m => panic!("mode {m}"),
-        },
-        coords: match case["coordinate_transformation_mode"].as_str().unwrap() {
-            "half_pixel" => Coords::HalfPixel,
-            "align_corners" => Coords::AlignCorners,
-            c => panic!("coords {c}"),
-        },
-        edges: if case["exclude_outside"] == 1 {
-            Edges::Renormalize
-        } else {
-            Edges::Clamp
-        },
-        antialias: if case["antialias"] == 1 {
-            Antialias::On
-        } else {
-            Antialias::Off
-        },
-        cubic_a: case["cubic_coeff_a"].as_f64().unwrap(),
-    }
-}
-
 /// The worst error of the engine given `scales` on one case, relative to the largest |value|
 /// of the reference output; panics past 1e-5.
 fn check_case(golden: &Golden, case: &Value, scales: &[f64]) -> f64 {
@@ -131,7 +66,7 @@ fn check_case(golden: &Golden, case: &Value, scales: &[f64]) -> f64 {
     let d = *in_shape.last().unwrap();
     assert_eq!(in_shape[..from.len()], from[..], "{name}: input shape");
     assert_eq!(out_shape[..to.len()], to[..], "{name}: output shape");
-    let (got, got_sizes) = resample_grid_scaled(&input, &from, d, scales, &options_of(case))
+    let (got, got_sizes) = resample_grid_scaled(&input, &from, d, scales, &case_options(case))
         .unwrap_or_else(|e| panic!("{name}: {e}"));
     assert_eq!(
         got_sizes, to,
@@ -163,7 +98,7 @@ fn torch_scales(case: &Value) -> Vec<f64> {
 
 /// Every case of one reference and scale kind; returns how many there were.
 fn check_all(source: &str, kind: &str) -> usize {
-    let golden = Golden::open();
+    let golden = Golden::open(GOLDEN);
     let chosen: Vec<&Value> = golden
         .cases
         .iter()
@@ -233,7 +168,7 @@ fn float32_exact_scales_match_the_framework_interpolate() {
 fn a_kept_side_matches_the_framework_where_it_uses_the_scale() {
     // The framework's linear kernels and its antialiased ones leave a kept side as it is
     // (recorded per axis by the generator); its plain bicubic moves it, as the operator does.
-    let golden = Golden::open();
+    let golden = Golden::open(GOLDEN);
     let copied: Vec<(String, Value)> = golden
         .cases
         .iter()
@@ -262,7 +197,7 @@ fn the_scale_as_meant_stays_within_tolerance_of_the_float32_one() {
     // The onnx cases use the float32 rounding of s; the rounding moves values by about 1e-6
     // of max |x| (recorded by the generator), so the scale as meant passes the same bound and
     // gives the same sizes.
-    let golden = Golden::open();
+    let golden = Golden::open(GOLDEN);
     let onnx: Vec<&Value> = golden
         .cases
         .iter()
@@ -281,7 +216,7 @@ fn the_scale_as_meant_stays_within_tolerance_of_the_float32_one() {
 
 #[test]
 fn every_case_is_in_the_file() {
-    let golden = Golden::open();
+    let golden = Golden::open(GOLDEN);
     assert_eq!(golden.cases.len(), (12 + 10) * 3 + (2 + 4) * 2);
     let kinds = ["plain", "nudged", "dyadic", "kept side"];
     assert!(golden
@@ -295,7 +230,7 @@ fn the_worked_example_samples_where_the_scale_says() {
     // 37 -> 16 with a nudge of 0.1 (s = 16.1/37): output cell 15 samples
     // (15 + 0.5)·37/16.1 - 0.5 = 35.121..., not the size-based 35.34375. Values from the
     // generator, which checked them against both references on a ramp.
-    let example = Golden::open().meta_json("worked_example");
+    let example = Golden::open(GOLDEN).meta_json("worked_example");
     let s = 16.1 / 37.0;
     assert_eq!(scaled_side(37, s), Some(16));
     let x = source_coordinate_mapped(15, 37, 16, Some(s), Coords::HalfPixel);
@@ -323,7 +258,7 @@ fn the_worked_example_samples_where_the_scale_says() {
 fn float32_rounding_can_change_a_side() {
     // 24/37 rounded to float32 lies below 24/37: floor(37·s32) = 23 (recorded by the generator,
     // which therefore does not use that scale).
-    let recorded = Golden::open().meta_json("refused_plain_scale");
+    let recorded = Golden::open(GOLDEN).meta_json("refused_plain_scale");
     let s32 = f64::from((24.0f64 / 37.0) as f32);
     assert_eq!(scaled_side(37, 24.0 / 37.0), Some(24));
     assert_eq!(scaled_side(37, s32), Some(23));

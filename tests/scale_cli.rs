@@ -5,18 +5,10 @@
 
 mod common;
 
+use common::golden::Golden;
 use common::*;
 use posgrid::checkpoint::{Checkpoint, TensorSource};
 use safetensors::Dtype;
-
-fn golden() -> (Checkpoint, Vec<serde_json::Value>) {
-    let path = std::path::Path::new(env!("CARGO_MANIFEST_DIR"))
-        .join("fixtures/golden/scale_cases.safetensors");
-    let ckpt = Checkpoint::open(&path).unwrap();
-    let meta = ckpt.header().metadata.clone().unwrap_or_default();
-    let cases = meta.iter().find(|(k, _)| k == "cases").unwrap().1.clone();
-    (ckpt, serde_json::from_str(&cases).unwrap())
-}
 
 fn values(ckpt: &Checkpoint, name: &str) -> Vec<f64> {
     let e = ckpt.find(name).unwrap();
@@ -25,9 +17,9 @@ fn values(ckpt: &Checkpoint, name: &str) -> Vec<f64> {
 
 #[test]
 fn scale_factors_match_the_framework_interpolate_with_a_float_scale() {
-    let (ckpt, cases) = golden();
+    let golden = Golden::open("fixtures/golden/scale_cases.safetensors");
     let mut checked = 0;
-    for case in cases.iter().filter(|c| c["source"] == "torch") {
+    for case in golden.cases.iter().filter(|c| c["source"] == "torch") {
         // Where floor(in·s) keeps a side but s != 1, some framework modes copy that axis as
         // if s were 1 (recorded by the generator); posgrid samples with s, as the standard does.
         if case["kept_axes_copied"]
@@ -42,8 +34,8 @@ fn scale_factors_match_the_framework_interpolate_with_a_float_scale() {
         let from: Vec<usize> = serde_json::from_value(case["from"].clone()).unwrap();
         let to: Vec<usize> = serde_json::from_value(case["to"].clone()).unwrap();
         let text: Vec<String> = serde_json::from_value(case["scale_text"].clone()).unwrap();
-        let input = values(&ckpt, case["input"].as_str().unwrap());
-        let expected = values(&ckpt, &format!("{}.output", case["name"].as_str().unwrap()));
+        let (input, _) = golden.read_f64(case["input"].as_str().unwrap());
+        let (expected, _) = golden.read_f64(&format!("{}.output", case["name"].as_str().unwrap()));
         let dir = tempfile::tempdir().unwrap();
         let file = write(
             dir.path(),
