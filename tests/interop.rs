@@ -65,12 +65,17 @@ fn resize_and_check(py: &Path, script: &Path, verb: &str, input: &Path, output: 
         .arg("-o")
         .arg(output)
         .args(["--image", "36", "--quiet"]));
+    check_with(py, script, verb, input, output, "9");
+}
+
+/// Have the Python side check `output` against `input` with `verb` (the new grid's side given).
+fn check_with(py: &Path, script: &Path, verb: &str, input: &Path, output: &Path, side: &str) {
     let said = run(Command::new(py)
         .arg(script)
         .arg(verb)
         .arg(input)
         .arg(output)
-        .arg("9"));
+        .arg(side));
     assert!(said.starts_with("ok"), "{said}");
 }
 
@@ -249,13 +254,7 @@ fn model_directories_read_back_with_json_and_the_reference_library() {
     let v: serde_json::Value = serde_json::from_str(&json).unwrap();
     // config.json's image_size; the preprocessing crop and shortest edge (24 px, the old size).
     assert_eq!(v["config_changes"].as_array().unwrap().len(), 3, "{v}");
-    let said = run(Command::new(&py)
-        .arg(&script)
-        .arg("check-model-dir")
-        .arg(&input)
-        .arg(&output)
-        .arg("9"));
-    assert!(said.starts_with("ok"), "{said}");
+    check_with(&py, &script, "check-model-dir", &input, &output, "9");
 }
 
 #[test]
@@ -278,11 +277,5 @@ fn tables_moved_to_the_end_of_the_data_area_load_in_the_reference_library() {
         .arg("-o")
         .arg(&output)
         .args(["--grid", "5", "--quiet"]));
-    let said = run(Command::new(&py)
-        .arg(&script)
-        .arg("check-moving")
-        .arg(&input)
-        .arg(&output)
-        .arg("5"));
-    assert!(said.starts_with("ok"), "{said}");
+    check_with(&py, &script, "check-moving", &input, &output, "5");
 }
