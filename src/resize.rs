@@ -459,7 +459,7 @@ fn check_outputs(source: &Source, job: &ResizeJob, format: Format) -> Result<()>
     let set = source.downcast::<ShardedSet>();
     let model_dir = model_dir_output(source, job)?;
     match (format, set, model_dir) {
-        (_, _, Some(md)) => write::check_destination_model_dir(&md.dir, &job.output, job.force)?,
+        (_, _, Some(md)) => write::check_destination_model_dir(md, &job.output, job.force)?,
         (Format::ShardedSafetensors, Some(set), _) => {
             write::check_destination_dir(set.dir(), &job.output, job.force)?
         }

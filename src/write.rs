@@ -18,6 +18,8 @@ use std::os::unix::ffi::OsStrExt;
 use std::os::unix::fs::{DirBuilderExt, MetadataExt, OpenOptionsExt, PermissionsExt};
 use std::path::{Path, PathBuf};
 
+use crate::checkpoint::directory::ModelDir;
+
 use crate::error::{Error, Result};
 
 use signals::{deregister, temporaries, Temporary};
@@ -600,20 +602,22 @@ impl AtomicFile {
 /// exists without `force`; with `force`, refuse one that is not recognisably an earlier
 /// output set (see [`recognise_previous_set`]); check that its parent exists.
 pub fn check_destination_dir(input_dir: &Path, output: &Path, force: bool) -> Result<()> {
-    check_destination_dir_with(input_dir, output, force, recognise_previous_set)
+    let recognise = |out: &Path| recognise_previous_set(out, input_dir);
+    check_destination_dir_with(input_dir, output, force, &recognise)
 }
 
 /// As [`check_destination_dir`] for a model directory's output: `--force` replaces only a
 /// directory that looks like an earlier output of the same model directory.
-pub fn check_destination_model_dir(input_dir: &Path, output: &Path, force: bool) -> Result<()> {
-    check_destination_dir_with(input_dir, output, force, recognise_previous_model_dir)
+pub fn check_destination_model_dir(md: &ModelDir, output: &Path, force: bool) -> Result<()> {
+    let recognise = |out: &Path| recognise_previous_model_dir(out, md);
+    check_destination_dir_with(&md.dir, output, force, &recognise)
 }
 
 fn check_destination_dir_with(
     input_dir: &Path,
     output: &Path,
     force: bool,
-    recognise: fn(&Path, &Path) -> Result<()>,
+    recognise: &dyn Fn(&Path) -> Result<()>,
 ) -> Result<()> {
     let parent = parent_dir(output);
     if !parent.is_dir() {
@@ -654,65 +658,42 @@ fn check_destination_dir_with(
             "already exists; pass --force to replace it",
         ));
     }
-    recognise(output, input_dir)
+    recognise(output)
 }
 
-/// `--force` replaces a model directory's output only if it holds nothing but regular files
-/// and directories named like the files and sub-directories of the input directory, at the
-/// same places (what posgrid writes there); anything else is refused with the reason, and
-/// nothing is removed.
-pub fn recognise_previous_model_dir(output: &Path, input_dir: &Path) -> Result<()> {
-    recognise_tree(output, output, input_dir, 0)
-}
-
-fn recognise_tree(root: &Path, output: &Path, input_dir: &Path, depth: usize) -> Result<()> {
-    use crate::checkpoint::directory::{HISTORY_DIR, MAX_DEPTH};
-    let (files, dirs) = input_names(input_dir);
-    for entry in fs::read_dir(output).map_err(|e| Error::read(output, e))? {
-        let entry = entry.map_err(|e| Error::read(output, e))?;
-        let name = entry.file_name();
-        let meta = fs::symlink_metadata(entry.path()).map_err(|e| Error::read(output, e))?;
-        let shown = entry
-            .path()
-            .strip_prefix(root)
-            .map_or(name.to_string_lossy().into_owned(), |p| {
-                p.display().to_string()
-            });
-        let copied_dir = dirs.contains(&name) && name != HISTORY_DIR && depth < MAX_DEPTH;
-        let why = if meta.is_dir() && copied_dir {
-            recognise_tree(root, &entry.path(), &input_dir.join(&name), depth + 1)?;
-            continue;
-        } else if !meta.is_file() {
-            format!("holds \"{shown}\", which is {}", kind_name(&meta))
-        } else if !files.contains(&name) {
-            format!("holds \"{shown}\", which is not a file of the input directory")
-        } else {
-            continue;
-        };
-        return Err(Error::write(
-            root,
-            format!("{why}; --force replaces only a directory that posgrid wrote from this model directory, so it was left as it is"),
-        ));
-    }
-    Ok(())
-}
-
-/// The names of the regular files (links read through) and of the real sub-directories of
-/// `dir`, as the file system spells them.
-fn input_names(dir: &Path) -> (Vec<std::ffi::OsString>, Vec<std::ffi::OsString>) {
-    let (mut files, mut dirs) = (Vec::new(), Vec::new());
-    let Ok(entries) = fs::read_dir(dir) else {
-        return (files, dirs);
-    };
-    for e in entries.flatten() {
-        let name = e.file_name();
-        if fs::metadata(e.path()).is_ok_and(|m| m.is_file()) {
-            files.push(name);
-        } else if e.file_type().is_ok_and(|t| t.is_dir()) {
-            dirs.push(name);
+/// `--force` replaces a model directory's output only if it holds nothing but what posgrid
+/// writes there for `md`: regular files and directories at the places of the files and
+/// sub-directories it copies. Anything else is refused with the reason, and nothing is
+/// removed.
+pub fn recognise_previous_model_dir(output: &Path, md: &ModelDir) -> Result<()> {
+    let (files, dirs) = md.written();
+    let mut pending = vec![PathBuf::new()];
+    while let Some(rel) = pending.pop() {
+        let here = output.join(&rel);
+        for entry in fs::read_dir(&here).map_err(|e| Error::read(&here, e))? {
+            let entry = entry.map_err(|e| Error::read(&here, e))?;
+            let at = rel.join(entry.file_name());
+            let meta = fs::symlink_metadata(entry.path()).map_err(|e| Error::read(&here, e))?;
+            let why = if meta.is_dir() && dirs.contains(&at) {
+                pending.push(at);
+                continue;
+            } else if !meta.is_file() {
+                format!("holds \"{}\", which is {}", at.display(), kind_name(&meta))
+            } else if !files.contains(&at) {
+                format!(
+                    "holds \"{}\", which is not a file of the input directory",
+                    at.display()
+                )
+            } else {
+                continue;
+            };
+            return Err(Error::write(
+                output,
+                format!("{why}; --force replaces only a directory that posgrid wrote from this model directory, so it was left as it is"),
+            ));
         }
     }
-    (files, dirs)
+    Ok(())
 }
 
 /// `--force` replaces a directory only if it looks like an earlier output set of posgrid:

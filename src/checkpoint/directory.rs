@@ -4,6 +4,7 @@
 //! hidden ones included, and its sub-directories go to the output directory (configuration
 //! files at the top updated to the new size). A directory with a shard index is a sharded set instead (see `sharded`).
 
+use std::collections::HashSet;
 use std::fs;
 use std::path::{Path, PathBuf};
 
@@ -25,10 +26,10 @@ const NOT_WEIGHTS: [&str; 5] = [
 const MAX_ENTRIES: usize = 10_000;
 
 /// Sub-directories deeper than this are not copied (named in a warning).
-pub const MAX_DEPTH: usize = 8;
+const MAX_DEPTH: usize = 8;
 
 /// A repository's history: not part of the model, and as large again as its weights.
-pub const HISTORY_DIR: &str = ".git";
+const HISTORY_DIR: &str = ".git";
 
 /// A model directory: its weights file and the other files beside it.
 #[derive(Debug, Clone)]
@@ -187,6 +188,17 @@ impl ModelDir {
                 ))
             }
         }
+    }
+
+    /// What posgrid writes in the output directory, relative to it: the files (the weights
+    /// under their own name, every other file) and the sub-directories.
+    pub fn written(&self) -> (HashSet<PathBuf>, HashSet<PathBuf>) {
+        let top = std::iter::once(&self.weights).chain(&self.others);
+        let files = top
+            .filter_map(|p| p.file_name().map(PathBuf::from))
+            .chain(self.nested.iter().map(|(_, rel)| rel.clone()))
+            .collect();
+        (files, self.nested_dirs.iter().cloned().collect())
     }
 
     /// Warnings for what the output does not carry over as the model needs it: sub-directories
@@ -348,7 +360,7 @@ pub fn write_dir(
     }
     warnings.extend(md.tree_warnings());
     // Checked again: OUTDIR may have appeared during the write.
-    crate::write::check_destination_model_dir(&md.dir, dest.path, dest.force)?;
+    crate::write::check_destination_model_dir(md, dest.path, dest.force)?;
     Ok(super::writer::Written {
         pending: Pending::Dir(dir),
         size,
