@@ -215,17 +215,12 @@ pub fn plan(
     let needed = (rows as u64)
         .saturating_mul(table.channels as u64)
         .saturating_mul(32);
-    if needed > request.memory_limit {
-        return Err(Error::refused(
-            path,
-            format!(
-                "resizing \"{}\" to {rows} rows needs about {} MiB, over the {} MiB guard; raise it with --memory-limit",
-                table.name,
-                needed >> 20,
-                request.memory_limit >> 20
-            ),
-        ));
-    }
+    crate::kinds::within_guard(
+        path,
+        &format!("resizing \"{}\" to {rows} rows", table.name),
+        needed,
+        request.memory_limit,
+    )?;
     Ok(Some(AxialChange {
         table: table.clone(),
         to,

@@ -70,6 +70,27 @@ impl std::str::FromStr for Channels {
     }
 }
 
+/// Refuse a change that needs more memory than the guard allows: `what` says what the change
+/// does (`resizing "pos_embed" to 24x24`), and the message adds the figures and the flag.
+pub(crate) fn within_guard(
+    path: &std::path::Path,
+    what: &str,
+    needed: u64,
+    limit: u64,
+) -> Result<()> {
+    if needed <= limit {
+        return Ok(());
+    }
+    Err(crate::error::Error::refused(
+        path,
+        format!(
+            "{what} needs about {} MiB, over the {} MiB guard; raise it with --memory-limit",
+            needed >> 20,
+            limit >> 20
+        ),
+    ))
+}
+
 /// The kind of a grid-dependent tensor, as `scan` and the reports name it.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
 #[serde(rename_all = "snake_case")]

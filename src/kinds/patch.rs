@@ -428,17 +428,12 @@ pub fn plan(
         .saturating_mul(k.channels as u64)
         .saturating_mul((p * q + k.patch[0] * k.patch[1]) as u64)
         .saturating_mul(24);
-    if needed > request.memory_limit {
-        return Err(Error::refused(
-            ckpt.source_path(),
-            format!(
-                "resizing \"{}\" needs about {} MiB, over the {} MiB guard; raise it with --memory-limit",
-                k.name,
-                needed >> 20,
-                request.memory_limit >> 20
-            ),
-        ));
-    }
+    crate::kinds::within_guard(
+        ckpt.source_path(),
+        &format!("resizing \"{}\"", k.name),
+        needed,
+        request.memory_limit,
+    )?;
     Ok(Some(PatchChange {
         kernel: k.clone(),
         to: [p, q],

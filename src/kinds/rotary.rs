@@ -210,17 +210,12 @@ pub fn plan(
     let needed = (cells as u64)
         .saturating_mul(2 * b.axis_dim as u64)
         .saturating_mul(40);
-    if needed > request.memory_limit {
-        return Err(Error::refused(
-            path,
-            format!(
-                "rebuilding \"{}\" for {h}x{w} needs about {} MiB, over the {} MiB guard; raise it with --memory-limit",
-                b.name,
-                needed >> 20,
-                request.memory_limit >> 20
-            ),
-        ));
-    }
+    crate::kinds::within_guard(
+        path,
+        &format!("rebuilding \"{}\" for {h}x{w}", b.name),
+        needed,
+        request.memory_limit,
+    )?;
     Ok(Some(RotaryChange {
         buffers: b.clone(),
         to: [h, w],

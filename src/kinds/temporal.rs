@@ -99,17 +99,12 @@ pub fn plan(
     resample::validate((t.frames, 1), (to, 1), &request.options)
         .map_err(|e| Error::usage_in(path, format!("{}: {e}", t.name)))?;
     let needed = (to as u64).saturating_mul(t.dim as u64).saturating_mul(32);
-    if needed > request.memory_limit {
-        return Err(Error::refused(
-            path,
-            format!(
-                "resizing \"{}\" to {to} frames needs about {} MiB, over the {} MiB guard; raise it with --memory-limit",
-                t.name,
-                needed >> 20,
-                request.memory_limit >> 20
-            ),
-        ));
-    }
+    crate::kinds::within_guard(
+        path,
+        &format!("resizing \"{}\" to {to} frames", t.name),
+        needed,
+        request.memory_limit,
+    )?;
     let mut new_shape = t.shape.clone();
     let at = new_shape.len() - 2;
     new_shape[at] = to;

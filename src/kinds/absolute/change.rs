@@ -91,17 +91,12 @@ pub fn plan(
         Layout::GridChannelsFirst => vec![1, table.dim, to[0], to[1]],
     };
     let needed = needed_bytes(table, [t_from * from[0], from[1]], [t_to * to[0], to[1]]);
-    if needed > request.memory_limit {
-        return Err(Error::refused(
-            path,
-            format!(
-                "resizing \"{}\" to {target} needs about {} MiB, over the {} MiB guard; raise it with --memory-limit",
-                table.name,
-                needed >> 20,
-                request.memory_limit >> 20
-            ),
-        ));
-    }
+    crate::kinds::within_guard(
+        path,
+        &format!("resizing \"{}\" to {target}", table.name),
+        needed,
+        request.memory_limit,
+    )?;
     let rebuild = request.rebuild_sincos && table.kind == Kind::Sincos;
     let scale = request.target.scale();
     if scale.is_some() && t_from != t_to {

@@ -72,19 +72,12 @@ pub fn plan(
     let (rows, index_shape) = new_sizes(path, table, to, to_side)?;
     refuse_narrow_index(ckpt, table, rows, to)?;
     let needed = needed_bytes(table, rows, &index_shape, &masks);
-    if needed > request.memory_limit {
-        return Err(Error::refused(
-            path,
-            format!(
-                "resizing \"{}\" to window {}x{} needs about {} MiB, over the {} MiB guard; raise it with --memory-limit",
-                table.name,
-                to[0],
-                to[1],
-                needed >> 20,
-                request.memory_limit >> 20
-            ),
-        ));
-    }
+    crate::kinds::within_guard(
+        path,
+        &format!("resizing \"{}\" to window {}x{}", table.name, to[0], to[1]),
+        needed,
+        request.memory_limit,
+    )?;
     let o = &request.options;
     let antialias_applied = !geometric
         && o.kernel != resample::Kernel::Nearest
